@@ -1,0 +1,24 @@
+"""lensrec: a workbench for CMB lensing reconstruction and delensing on the HEALPix sphere.
+
+The public API is the list in ``__all__``; other modules are importable but not promised.
+All results describe simulations of idealised surveys, not survey-ready measurements.
+"""
+
+from __future__ import annotations
+
+__version__ = "0.1.0"
+
+from .experiment import Experiment, available_experiments, load_experiment
+from .io import OutputExistsError
+from .spectra import Spectra, fiducial_spectra, spectra_from_camb
+
+__all__ = [
+    "__version__",
+    "Experiment",
+    "available_experiments",
+    "load_experiment",
+    "OutputExistsError",
+    "Spectra",
+    "fiducial_spectra",
+    "spectra_from_camb",
+]

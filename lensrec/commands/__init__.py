@@ -1,0 +1,1 @@
+"""One module per lensrec subcommand (see lensrec.cli)."""

@@ -11,6 +11,7 @@ __version__ = "0.1.0"
 from .experiment import Experiment, available_experiments, load_experiment
 from .io import OutputExistsError
 from .spectra import Spectra, fiducial_spectra, spectra_from_camb
+from .tensor_forecast import sigma_r
 
 __all__ = [
     "__version__",
@@ -21,4 +22,5 @@ __all__ = [
     "Spectra",
     "fiducial_spectra",
     "spectra_from_camb",
+    "sigma_r",
 ]

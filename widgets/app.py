@@ -1,0 +1,94 @@
+"""The workbench app: one shared state object and six sections in tabs."""
+
+from __future__ import annotations
+
+import html
+
+import ipywidgets as widgets
+
+import lensrec
+
+from .experiment_panel import ExperimentSection
+from .section import Section
+from .state import WorkbenchState
+
+__all__ = ["Workbench", "library_function"]
+
+
+def library_function(name: str):
+    """The lensrec function ``name`` if this installation has it, else None."""
+    return getattr(lensrec, name, None)
+
+
+class MissingLibrarySection(Section):
+    """Stands in for a section whose lensrec functions are not in this installation."""
+
+    def __init__(self, state, title: str, name: str, needs: tuple[str, ...]):
+        self.title, self.name = title, name
+        super().__init__(state)
+        missing = ", ".join(f"<code>lensrec.{html.escape(n)}</code>" for n in needs)
+        self.note = widgets.HTML(
+            f"<p>This section needs {missing}, which this lensrec installation does not provide yet. "
+            "Update lensrec (<code>make install</code> in the repository) and restart the kernel to use it.</p>"
+        )
+        self.layout(controls=[self.note])
+        self.status.warn(f"{title} is unavailable: lensrec lacks {', '.join(needs)}.")
+
+
+class Workbench(widgets.VBox):
+    """The lensrec workbench: Experiment, Estimator noise, Sky, Reconstruction, Delensing, Validation.
+
+    Parameters
+    ----------
+    experiment : str, path or lensrec.Experiment, optional
+        Starting experiment (a shipped name such as ``"deep_highland"``, a TOML path, or an Experiment);
+        default ``"deep_highland"``.
+    spectra : lensrec.Spectra, optional
+        Theory spectra; default the embedded fiducial cosmology.
+    delay : float
+        Quiet time in seconds before live plots recompute after a change (default 0.3).
+
+    Attributes
+    ----------
+    state : WorkbenchState
+        The shared data every section reads and writes.
+    sections : dict of str to Section
+        ``"experiment"``, ``"noise"``, ``"sky"``, ``"reconstruction"``, ``"delensing"``, ``"validation"``.
+
+    Examples
+    --------
+    >>> from widgets import Workbench
+    >>> app = Workbench()
+    >>> list(app.sections)[0]
+    'experiment'
+    """
+
+    def __init__(self, experiment="deep_highland", spectra=None, delay: float = 0.3):
+        self.state = WorkbenchState(experiment=experiment, spectra=spectra)
+        self.sections = {"experiment": ExperimentSection(self.state)}
+        for name, title, needs in (
+            ("noise", "Estimator noise", ("reconstruction_noise",)),
+            ("sky", "Sky", ("simulate_sky",)),
+            ("reconstruction", "Reconstruction", ("reconstruct",)),
+            ("delensing", "Delensing", ("lensing_b_template", "delensing_forecast")),
+            ("validation", "Validation", ("run_suite",)),
+        ):
+            self.sections[name] = MissingLibrarySection(self.state, title, name, needs)
+        self.tabs = widgets.Tab(
+            children=[s.panel for s in self.sections.values()], titles=[s.title for s in self.sections.values()]
+        )
+        self.tabs.add_class("lensrec-tabs")
+        header = widgets.HTML(
+            f"<div style='font-size:120%;font-weight:600'>lensrec workbench "
+            f"<span style='font-weight:400;color:#7f8c8d;font-size:80%'>v{html.escape(lensrec.__version__)} · "
+            "simulated skies of idealised surveys</span></div>"
+        )
+        super().__init__([header, self.tabs])
+        self.add_class("lensrec-workbench")
+
+    def __getitem__(self, name: str) -> Section:
+        return self.sections[name]
+
+    def wait(self, timeout: float = 120.0) -> bool:
+        """Wait for all background work in every section (test hook); True when everything finished."""
+        return all([section.wait(timeout) for section in self.sections.values()])

@@ -1,0 +1,176 @@
+"""The workbench's plot style and the figure-in-a-widget view that every section draws into.
+
+Figures are plain :class:`matplotlib.figure.Figure` objects (no pyplot state, so worker threads can draw
+them) rendered by the Agg canvas to PNG bytes, which go into a fixed-size ``ipywidgets.Image``. Each
+figure is built once; updates change the artists' data and re-render, so the page never re-lays out.
+"""
+
+from __future__ import annotations
+
+import io
+import threading
+
+import ipywidgets as widgets
+import numpy as np
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.figure import Figure
+
+__all__ = [
+    "COLORS",
+    "ESTIMATOR_COLORS",
+    "DPI",
+    "WIDE",
+    "SQUARE",
+    "PAIR",
+    "FigureView",
+    "d_ell",
+    "phi_plot_units",
+    "finite_or_nan",
+    "symmetric_limit",
+]
+
+DPI = 96
+# Figure sizes in inches at DPI; the image widgets get the matching pixel size so layouts never jump.
+WIDE = (7.6, 4.0)
+SQUARE = (5.2, 4.0)
+PAIR = (9.6, 3.6)
+
+# Our palette: muted, distinguishable in print and for common colour-vision deficiencies.
+COLORS = {
+    "TT": "#1b4f72",
+    "EE": "#1e8449",
+    "BB": "#b9770e",
+    "TE": "#6c3483",
+    "phi": "#17202a",
+    "noise": "#7f8c8d",
+    "input": "#17202a",
+    "reconstructed": "#c0392b",
+    "template": "#2874a6",
+    "residual": "#c0392b",
+    "lensed": "#b9770e",
+    "delensed": "#1e8449",
+    "band": "#d5dbdb",
+    "grid": "#e5e8e8",
+}
+ESTIMATOR_COLORS = {
+    "TT": "#1b4f72",
+    "TE": "#6c3483",
+    "EE": "#1e8449",
+    "TB": "#ca6f1e",
+    "EB": "#b03a2e",
+    "MV": "#17202a",
+}
+MAP_CMAP = "RdBu_r"
+POSITIVE_CMAP = "magma"
+
+
+def d_ell(cl) -> np.ndarray:
+    """D_ℓ = ℓ(ℓ+1) C_ℓ / 2π for a spectrum indexed from ℓ = 0 (plot units only)."""
+    cl = np.asarray(cl, dtype=float)
+    ell = np.arange(cl.size, dtype=float)
+    return ell * (ell + 1.0) * cl / (2.0 * np.pi)
+
+
+def phi_plot_units(cl, units: str) -> np.ndarray:
+    """A C_L^φφ-unit array shown as [L(L+1)]² C_L / 2π (``units="phi"``) or as C_L^κκ (``units="kappa"``).
+
+    C_L^κκ = [L(L+1)]² C_L^φφ / 4 follows from κ = L(L+1) φ / 2 (lensrec conventions).
+    """
+    cl = np.asarray(cl, dtype=float)
+    ell = np.arange(cl.size, dtype=float)
+    weight = (ell * (ell + 1.0)) ** 2
+    if units == "phi":
+        return weight * cl / (2.0 * np.pi)
+    if units == "kappa":
+        return weight * cl / 4.0
+    raise ValueError(f"units must be 'phi' or 'kappa', got {units!r}")
+
+
+def finite_or_nan(values) -> np.ndarray:
+    """A float copy with inf replaced by NaN, so cut multipoles leave a gap instead of a spike."""
+    out = np.array(values, dtype=float, copy=True)
+    out[~np.isfinite(out)] = np.nan
+    return out
+
+
+def symmetric_limit(*arrays, percentile: float = 99.5) -> float:
+    """One colour limit ± v shared by several maps: the given percentile of |value| over all of them."""
+    values = [np.abs(np.asarray(a, dtype=float)[np.isfinite(a)]) for a in arrays]
+    values = [v for v in values if v.size]
+    if not values:
+        return 1.0
+    limit = float(np.percentile(np.concatenate(values), percentile))
+    return limit if limit > 0 else 1.0
+
+
+def style_axes(ax, grid: bool = True) -> None:
+    """Our axis style: light grid, no top/right spines, compact ticks."""
+    for side in ("top", "right"):
+        ax.spines[side].set_visible(False)
+    ax.tick_params(labelsize=8.5, direction="out")
+    if grid:
+        ax.grid(True, which="major", color=COLORS["grid"], linewidth=0.7)
+    ax.set_axisbelow(True)
+
+
+class FigureView:
+    """A matplotlib figure shown as a PNG in a fixed-size widget, with a note that can stand in for it.
+
+    Parameters
+    ----------
+    size : (float, float)
+        Figure size in inches (rendered at :data:`DPI`).
+    name : str
+        CSS class suffix for the widget (``lensrec-plot-<name>``), used by browser tests.
+
+    Attributes
+    ----------
+    figure : matplotlib.figure.Figure
+        Build axes and artists on it once, then change their data and call :meth:`draw`.
+    widget : ipywidgets.Box
+        What a section puts in its layout.
+    draws : int
+        How many times the figure has been rendered (handy in tests).
+    """
+
+    def __init__(self, size=WIDE, name: str = "figure"):
+        self.figure = Figure(figsize=size, dpi=DPI)
+        self.canvas = FigureCanvasAgg(self.figure)
+        width, height = int(round(size[0] * DPI)), int(round(size[1] * DPI))
+        self.image = widgets.Image(format="png", layout=widgets.Layout(width=f"{width}px", height=f"{height}px"))
+        self.image.add_class(f"lensrec-plot-{name}")
+        self.note = widgets.HTML(
+            layout=widgets.Layout(
+                width=f"{width}px",
+                height=f"{height}px",
+                display="none",
+                align_items="center",
+                justify_content="center",
+                border="1px dashed #aab7b8",
+                padding="0 1em",
+            ),
+        )
+        self.note.add_class(f"lensrec-note-{name}")
+        self.widget = widgets.Box([self.image, self.note])
+        self.draws = 0
+        self._lock = threading.Lock()
+
+    def draw(self) -> None:
+        """Render the figure and show it (replacing any note)."""
+        with self._lock:
+            buffer = io.BytesIO()
+            self.figure.savefig(buffer, format="png", dpi=DPI)
+            self.image.value = buffer.getvalue()
+            self.draws += 1
+        self.note.layout.display = "none"
+        self.image.layout.display = None
+
+    def show_note(self, html: str) -> None:
+        """Hide the plot and show ``html`` in its place (same size), e.g. what to do to get the plot."""
+        self.note.value = f"<div style='color:#515a5a;max-width:36em'>{html}</div>"
+        self.image.layout.display = "none"
+        self.note.layout.display = "flex"
+
+    @property
+    def showing_plot(self) -> bool:
+        return self.image.layout.display != "none" and self.draws > 0

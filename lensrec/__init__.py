@@ -10,6 +10,7 @@ __version__ = "0.1.0"
 
 from .experiment import Experiment, available_experiments, load_experiment
 from .io import OutputExistsError
+from .lensed_spectra import delensed_spectra, first_order_lensed_bb, lensed_cmb_spectra
 from .spectra import Spectra, fiducial_spectra, spectra_from_camb
 from .tensor_forecast import sigma_r
 
@@ -23,4 +24,7 @@ __all__ = [
     "fiducial_spectra",
     "spectra_from_camb",
     "sigma_r",
+    "lensed_cmb_spectra",
+    "first_order_lensed_bb",
+    "delensed_spectra",
 ]

@@ -29,6 +29,7 @@ __all__ = [
     "npix_to_nside",
     "ell_of_alm",
     "scale_alm",
+    "truncate_alm",
     "alm2map",
     "adjoint_alm2map",
     "map2alm",
@@ -134,6 +135,32 @@ def scale_alm(alm, factor, lmax: int | None = None) -> np.ndarray:
     if factor.size < lmax + 1:
         raise ValueError(f"factor must cover l = 0..{lmax} ({lmax + 1} values), got {factor.size}")
     return alm * factor[: lmax + 1][ell_of_alm(lmax)]
+
+
+def truncate_alm(alm, lmax_out: int, lmax_in: int | None = None) -> np.ndarray:
+    """Coefficients restricted to ℓ ≤ ``lmax_out`` (1-D or stacked, triangular layout, a new array).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> truncate_alm(np.arange(6.0) + 0j, 1).real.tolist()   # lmax 2 -> 1: (0,0) (1,0) (1,1)
+    [0.0, 1.0, 3.0]
+    """
+    alm = np.asarray(alm)
+    if lmax_in is None:
+        lmax_in = lmax_from_nalm(alm.shape[-1])
+    lmax_in = as_int(lmax_in, "lmax_in", minimum=0)
+    lmax_out = as_int(lmax_out, "lmax_out", minimum=0, maximum=lmax_in)
+    if alm.shape[-1] != nalm(lmax_in):
+        raise ValueError(f"alm has {alm.shape[-1]} coefficients but lmax_in={lmax_in} needs {nalm(lmax_in)}")
+    out = np.empty(alm.shape[:-1] + (nalm(lmax_out),), dtype=np.result_type(alm.dtype, np.complex128))
+    start_in = start_out = 0
+    for m in range(lmax_out + 1):
+        count = lmax_out - m + 1
+        out[..., start_out:start_out + count] = alm[..., start_in:start_in + count]
+        start_out += count
+        start_in += lmax_in - m + 1
+    return out
 
 
 # ------------------------------------------------------------------------------------------ validation

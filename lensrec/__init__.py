@@ -12,7 +12,7 @@ from .experiment import Experiment, available_experiments, load_experiment
 from .io import OutputExistsError
 from .lensed_spectra import delensed_spectra, first_order_lensed_bb, lensed_cmb_spectra
 from .spectra import Spectra, fiducial_spectra, spectra_from_camb
-from .tensor_forecast import sigma_r
+from .tensor_forecast import delensing_forecast, sigma_r
 
 __all__ = [
     "__version__",
@@ -27,4 +27,5 @@ __all__ = [
     "lensed_cmb_spectra",
     "first_order_lensed_bb",
     "delensed_spectra",
+    "delensing_forecast",
 ]

@@ -12,13 +12,15 @@ residual, or a forecast residual from :func:`lensrec.delensed_spectra`.
 
 from __future__ import annotations
 
+import dataclasses
 import math
+from dataclasses import dataclass
 
 import numpy as np
 
 from ._checks import as_finite_array, as_float, as_int
 
-__all__ = ["sigma_r", "DELENSING_BIAS_NOTE"]
+__all__ = ["sigma_r", "delensing_forecast", "alens_residual", "DelensingForecast", "DELENSING_BIAS_NOTE"]
 
 DELENSING_BIAS_NOTE = (
     "The forecast residual assumes the B-mode template and the B modes it is subtracted from are independent. "
@@ -141,3 +143,282 @@ def sigma_r(bb_lensing, bb_noise, bb_tensor_r1, sky_fraction, ell_min, ell_max, 
             "infinite everywhere); widen the range or check the inputs"
         )
     return 1.0 / math.sqrt(fisher)
+
+
+# Primordial B modes carry (almost) no information above this multipole: the r = 1 tensor BB at ℓ = 1000
+# is 2e-3 of the lensing BB and 1e-7 of its own peak (fiducial camb spectra).
+DEFAULT_FORECAST_LMAX = 1000
+
+
+@dataclass(frozen=True, eq=False)
+class DelensingForecast:
+    """Result of :func:`delensing_forecast` (arrays indexed by ℓ from 0; µK²).
+
+    Attributes
+    ----------
+    ell : ndarray
+        ℓ = 0 … lmax.
+    lensed_bb, residual_bb, noise_bb : ndarray
+        Lensing BB before delensing, the forecast residual after delensing, and the beam-deconvolved B noise
+        (``inf`` outside the experiment's polarization cuts).
+    tensor_bb_r1 : ndarray
+        Primordial BB for r = 1.
+    phi_residual : ndarray
+        Residual lensing power C_L^φφ (1 − ρ²), L = 0 … lmax + ell_margin.
+    alens_residual : float
+        A_lens^res, the amplitude of lensing BB left after delensing (see :func:`delensing_forecast`).
+    sigma_r_lensed, sigma_r_delensed : float
+        σ(r) from BB alone without and with delensing.
+    ell_min, ell_max : int
+        Multipole range of the B-mode Fisher sums and of A_lens^res.
+    sky_fraction, r : float
+        f_sky and the fiducial r of the Fisher forecasts.
+    notes : tuple of str
+        Caveats that travel with the numbers (the delensing bias in particular).
+    """
+
+    ell: np.ndarray
+    lensed_bb: np.ndarray
+    residual_bb: np.ndarray
+    noise_bb: np.ndarray
+    tensor_bb_r1: np.ndarray
+    phi_residual: np.ndarray
+    alens_residual: float
+    sigma_r_lensed: float
+    sigma_r_delensed: float
+    ell_min: int
+    ell_max: int
+    sky_fraction: float
+    r: float
+    notes: tuple = ()
+
+    @property
+    def improvement(self) -> float:
+        """σ(r) without delensing divided by σ(r) with delensing."""
+        return self.sigma_r_lensed / self.sigma_r_delensed
+
+    def to_dict(self) -> dict:
+        """Plain values for JSON (arrays as lists; ``inf`` noise becomes ``null`` in lensrec.io.write_json)."""
+        out = {}
+        for item in dataclasses.fields(self):
+            value = getattr(self, item.name)
+            out[item.name] = (
+                value.tolist()
+                if isinstance(value, np.ndarray)
+                else (list(value) if isinstance(value, tuple) else value)
+            )
+        return out
+
+
+def alens_residual(lensed_bb, residual_bb, bb_noise, ell_min, ell_max) -> float:
+    """A_lens^res: the Fisher-weighted mean of C_ℓ^res / C_ℓ^lens over [ell_min, ell_max].
+
+    It is the amplitude A that a fit of A·C^lens + N to the delensed BB spectrum would return on average,
+    with the weights of that fit's inverse variance, w_ℓ = (2ℓ+1) [C_ℓ^lens / (C_ℓ^res + N_ℓ)]² (multipoles
+    with infinite noise get zero weight; multipoles with neither residual nor noise have infinite weight and
+    make the result 0). 1 means no delensing, 0 perfect delensing.
+
+    Parameters
+    ----------
+    lensed_bb, residual_bb : array_like
+        Lensing BB before and after delensing (µK², from ℓ = 0).
+    bb_noise : array_like
+        B-mode noise (µK², from ℓ = 0; ``inf`` allowed).
+    ell_min, ell_max : int
+        Inclusive multipole range.
+
+    Returns
+    -------
+    float
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from lensrec.tensor_forecast import alens_residual
+    >>> lensed = np.full(101, 2e-6)
+    >>> round(alens_residual(lensed, 0.25 * lensed, np.full(101, 1e-6), 2, 100), 12)
+    0.25
+    """
+    ell_min = as_int(ell_min, "ell_min", minimum=2)
+    ell_max = as_int(ell_max, "ell_max", minimum=ell_min)
+    lensed = _spectrum(lensed_bb, "lensed_bb", ell_max)[ell_min:]
+    residual = _spectrum(residual_bb, "residual_bb", ell_max)[ell_min:]
+    noise = _spectrum(bb_noise, "bb_noise", ell_max, allow_inf=True)[ell_min:]
+    ell = np.arange(ell_min, ell_max + 1, dtype=np.float64)
+    exact = np.isfinite(noise) & (lensed > 0) & (residual + noise == 0)
+    if np.any(exact):
+        # zero residual and zero noise: these multipoles have infinite weight and a ratio of exactly 0
+        return 0.0
+    usable = np.isfinite(noise) & (lensed > 0) & (residual + noise > 0)
+    if not np.any(usable):
+        raise ValueError(f"no multipole in [{ell_min}, {ell_max}] has lensing power and finite noise")
+    weights = (2.0 * ell[usable] + 1.0) * (lensed[usable] / (residual[usable] + noise[usable])) ** 2
+    return float(np.sum(weights * residual[usable] / lensed[usable]) / np.sum(weights))
+
+
+def delensing_forecast(
+    experiment,
+    spectra=None,
+    n0=None,
+    lmax=None,
+    ell_min_b=None,
+    r=0.0,
+    template_e_noise=True,
+    ell_margin=None,
+    nthreads=None,
+) -> DelensingForecast:
+    """Forecast the lensing B modes left after delensing, A_lens^res, and σ(r) with and without delensing.
+
+    The residual lensing BB is the B-mode spectrum of the CMB lensed by the residual potential
+    C_L^φφ (1 − ρ_L²), ρ_L² = C_L^φφ / (C_L^φφ + N0_L), computed non-perturbatively
+    (:func:`lensrec.delensed_spectra`), plus (``template_e_noise``) the first-order B modes of the E modes
+    that the Wiener-filtered template misses because of the experiment's E noise. σ(r) is the BB-only
+    Fisher forecast of :func:`sigma_r` with the experiment's beam-deconvolved B noise and sky fraction, over
+    ℓ from max(experiment.ell_min, ell_min_b) to min(experiment.ell_max_polarization, lmax).
+
+    .. warning:: **Delensing bias.** If φ̂ is reconstructed partly from the same B modes that are delensed
+       (EB, TB, or the MV combination, which EB dominates for deep polarization surveys), the template is
+       correlated with those B modes and the residual measured on data is biased low. This forecast assumes
+       independent B modes and so is optimistic for such reconstructions; see :data:`DELENSING_BIAS_NOTE`,
+       repeated in the result's ``notes``.
+
+    Parameters
+    ----------
+    experiment : Experiment or str or path
+        The survey (a shipped name such as ``"deep_highland"`` or a TOML path is loaded).
+    spectra : Spectra, optional
+        Theory spectra (default :func:`lensrec.fiducial_spectra`); the tensor BB for r = 1 comes from it.
+    n0 : array_like
+        Lensing reconstruction noise N0_L (C_L^φφ units, L from 0; NaN allowed at L < 2, ``inf`` where there
+        is no reconstruction), typically the MV gradient N0 from lensrec's reconstruction-noise module.
+        Required.
+    lmax : int, optional
+        Highest ℓ of the B-mode spectra and of the Fisher sums; default
+        min(experiment.ell_max_polarization, 1000) (tensor BB carries no information above ~1000).
+    ell_min_b : int, optional
+        Lowest B-mode multipole used (e.g. to mimic a large-scale cut); default the experiment's ell_min.
+    r : float, default 0.0
+        Fiducial r of the Fisher forecasts.
+    template_e_noise : bool, default True
+        Include the experiment's E noise in the B-mode template (Wiener factor on E).
+    ell_margin : int, optional
+        Input multipoles above lmax used for lensing (default 2000; see :func:`lensrec.lensed_cmb_spectra`).
+    nthreads : int, optional
+        Threads for the Wigner-d engine.
+
+    Returns
+    -------
+    DelensingForecast
+        With ``alens_residual`` defined by :func:`alens_residual` over the same ℓ range: the Fisher-weighted
+        mean of C_ℓ^res / C_ℓ^lens with weights (2ℓ+1) [C_ℓ^lens / (C_ℓ^res + N_ℓ)]².
+
+    Raises
+    ------
+    TypeError, ValueError
+        If ``experiment`` cannot be loaded, ``spectra`` is not a :class:`lensrec.Spectra`, ``n0`` is missing or
+        invalid, or lmax / ell_min_b are out of range for the experiment and the spectra.
+
+    Notes
+    -----
+    Not included: the delensing bias above; the B modes from lensing the template's reconstruction noise
+    (N0-lensed E); foregrounds, E-to-B leakage from masks, and any marginalization over A_lens.
+
+    References
+    ----------
+    Knox & Song 2002, PRL 89, 011303, and Kesden, Cooray & Kamionkowski 2002, PRL 89, 011304 (delensing
+    and its limit on r); Seljak & Hirata 2004, PRD 69, 043005; Smith et al. 2012, JCAP 06, 014 (residual
+    C^φφ(1 − ρ²) and the E-noise factor).
+
+    Examples
+    --------
+    >>> import numpy as np, lensrec
+    >>> L = np.arange(6001.0)
+    >>> n0 = 2e-8 * 2 * np.pi / np.maximum(L * (L + 1), 1) ** 2   # a toy N0 (use the MV gradient N0)
+    >>> result = lensrec.delensing_forecast("deep_highland", n0=n0, lmax=400)
+    >>> bool(0.0 < result.alens_residual < 1.0), bool(result.sigma_r_delensed < result.sigma_r_lensed)
+    (True, True)
+    """
+    from .experiment import Experiment, load_experiment
+    from .lensed_spectra import DEFAULT_ELL_MARGIN, delensed_spectra, lensed_cmb_spectra
+    from .spectra import Spectra, fiducial_spectra
+
+    if not isinstance(experiment, Experiment):
+        if not isinstance(experiment, (str, bytes)) and not hasattr(experiment, "__fspath__"):
+            raise TypeError(
+                f"experiment must be an Experiment, a shipped experiment name or a TOML path, got "
+                f"{type(experiment).__name__}"
+            )
+        experiment = load_experiment(experiment)
+    if spectra is None:
+        spectra = fiducial_spectra()
+    if not isinstance(spectra, Spectra):
+        raise TypeError(
+            f"spectra must be a lensrec.Spectra (e.g. lensrec.fiducial_spectra()), got {type(spectra).__name__}"
+        )
+    if n0 is None:
+        raise ValueError(
+            "n0 is required: pass the lensing reconstruction noise N0_L (e.g. the MV gradient N0) as an array "
+            "indexed from L = 0"
+        )
+    if ell_margin is None:
+        ell_margin = DEFAULT_ELL_MARGIN
+    ell_margin = as_int(ell_margin, "ell_margin", minimum=0)
+    if lmax is None:
+        lmax = min(experiment.ell_max_polarization, DEFAULT_FORECAST_LMAX)
+    lmax = as_int(lmax, "lmax", minimum=3, maximum=spectra.lmax - ell_margin)
+    ell_min = (
+        experiment.ell_min if ell_min_b is None else max(experiment.ell_min, as_int(ell_min_b, "ell_min_b", minimum=2))
+    )
+    ell_max = min(experiment.ell_max_polarization, lmax)
+    if ell_min >= ell_max:
+        raise ValueError(
+            f"the B-mode range is empty: ell_min={ell_min} (experiment ell_min {experiment.ell_min}, ell_min_b "
+            f"{ell_min_b}) is not below ell_max={ell_max} (lmax {lmax}, experiment ell_max_polarization "
+            f"{experiment.ell_max_polarization})"
+        )
+    r = as_float(r, "r", minimum=0.0)
+    lensed = lensed_cmb_spectra(spectra.unlensed, spectra.phi, lmax, ell_margin=ell_margin, nthreads=nthreads)
+    e_noise = experiment.noise_spectrum("E", lmax + ell_margin) if template_e_noise else None
+    delensed = delensed_spectra(
+        spectra.unlensed,
+        spectra.phi,
+        n0,
+        lmax,
+        ell_margin=ell_margin,
+        ee_noise=e_noise,
+        lensed_ee=spectra.lensed["EE"] if template_e_noise else None,
+        nthreads=nthreads,
+    )
+    noise = experiment.noise_spectrum("B", lmax)
+    tensor = np.array(spectra.tensor["BB"][: lmax + 1])
+    lensed_bb, residual_bb = lensed["BB"], delensed["BB"]
+    sky = experiment.sky_fraction
+    notes = (
+        DELENSING_BIAS_NOTE,
+        "sigma(r) is a Gaussian, BB-only, single-parameter Fisher forecast with the f_sky mode-counting "
+        "approximation; no foregrounds, no E-to-B leakage, no A_lens marginalization.",
+        "alens_residual is the Fisher-weighted mean of C^res/C^lens over the B-mode range, weights "
+        "(2l+1) (C^lens / (C^res + N))^2.",
+        "The residual is the lensing of the CMB by C^phiphi (1 - rho^2)"
+        + (
+            ", plus the first-order B modes of the E modes the noisy template misses."
+            if template_e_noise
+            else " with a noise-free E template."
+        ),
+    )
+    return DelensingForecast(
+        ell=np.arange(lmax + 1),
+        lensed_bb=lensed_bb,
+        residual_bb=residual_bb,
+        noise_bb=noise,
+        tensor_bb_r1=tensor,
+        phi_residual=delensed["phi_residual"],
+        alens_residual=alens_residual(lensed_bb, residual_bb, noise, ell_min, ell_max),
+        sigma_r_lensed=sigma_r(lensed_bb, noise, tensor, sky, ell_min, ell_max, r=r),
+        sigma_r_delensed=sigma_r(residual_bb, noise, tensor, sky, ell_min, ell_max, r=r),
+        ell_min=ell_min,
+        ell_max=ell_max,
+        sky_fraction=sky,
+        r=r,
+        notes=notes,
+    )

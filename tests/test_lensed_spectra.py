@@ -181,12 +181,13 @@ def test_delensing_with_perfect_reconstruction_removes_lensing(fiducial):
 def test_residual_potential_and_delensed_bb_follow_the_wiener_factor(fiducial):
     # published formula: Smith et al. 2012 (JCAP 06, 014), residual C^pp (1 - rho^2), rho^2 = C^pp/(C^pp + N0).
     phi = np.asarray(fiducial.phi)
-    n0 = np.full(phi.size, 1e-8)
+    big_l = np.arange(phi.size, dtype=float)
+    # a toy reconstruction noise flat in [L(L+1)]^2 N0 / 2pi = 2e-8, below C^pp up to L ~ 500
+    n0 = 2e-8 * 2 * np.pi / np.maximum(big_l * (big_l + 1), 1.0) ** 2
     n0[:2] = np.nan  # lensrec convention: N0 undefined below L = 2
     residual = residual_lensing_potential(phi, n0)
     np.testing.assert_allclose(residual[2:], phi[2:] * n0[2:] / (phi[2:] + n0[2:]), rtol=1e-14)
-    # the delensed BB at low l is first order in C^pp, so it is the lensed BB of the residual potential; with a
-    # flat N0 equal to C^pp at L ~ 100 the residual is between 0 and the lensed BB
+    # the delensed BB lies between 0 and the lensed BB (the residual potential has less power at every L)
     delensed = delensed_spectra(fiducial.unlensed, phi, n0, lmax=300)
     lensed = lensed_cmb_spectra(fiducial.unlensed, phi, lmax=300)
     ratio = delensed["BB"][2:] / lensed["BB"][2:]

@@ -5,6 +5,7 @@ import pytest
 
 import lensrec
 from lensrec import sigma_r
+from lensrec.tensor_forecast import alens_residual
 
 ARCMIN = math.pi / 10800.0
 
@@ -110,3 +111,132 @@ def test_sigma_r_refuses_bad_input(change, error, match):
 
 def test_sigma_r_is_exported():
     assert "sigma_r" in lensrec.__all__ and lensrec.sigma_r is sigma_r
+    assert "delensing_forecast" in lensrec.__all__
+
+
+# ----------------------------------------------------------------------------------- delensing forecast
+def _toy_n0(size, level=2e-8):
+    """A toy reconstruction noise flat in [L(L+1)]^2 N0 / 2pi (equal to C^pp near L ~ 500 for 2e-8)."""
+    big_l = np.arange(size, dtype=float)
+    n0 = level * 2 * np.pi / np.maximum(big_l * (big_l + 1), 1.0) ** 2
+    n0[:2] = np.nan
+    return n0
+
+
+def test_forecast_without_delensing_matches_a_direct_fisher_sum(fiducial):
+    # reference library: camb's lensed BB (fiducial file) and the Knox (1995) noise N = (Delta pi/10800)^2
+    # exp(l(l+1) sigma_b^2), both written out here; Fisher sum as in Knox 1995 (PRD 52, 4307). The forecast
+    # uses our own lensed BB, which matches camb's to <= 0.26% at l <= 2500 (test_lensed_spectra.py), so sigma(r)
+    # may differ by at most about that: allow 0.5%.
+    experiment = lensrec.load_experiment("deep_highland")
+    result = lensrec.delensing_forecast(experiment, n0=_toy_n0(fiducial.lmax + 1), lmax=600)
+    sigma_b = experiment.beam_fwhm * ARCMIN / math.sqrt(8 * math.log(2))
+    fisher = 0.0
+    for ell in range(experiment.ell_min, 601):
+        noise = (experiment.noise_polarization * ARCMIN) ** 2 * math.exp(ell * (ell + 1) * sigma_b**2)
+        total = fiducial.lensed["BB"][ell] + noise
+        fisher += experiment.sky_fraction * (2 * ell + 1) / 2 * (fiducial.tensor["BB"][ell] / total) ** 2
+    assert (result.ell_min, result.ell_max) == (experiment.ell_min, 600)
+    assert result.sigma_r_lensed == pytest.approx(fisher**-0.5, rel=5e-3)
+
+
+def test_delensing_lowers_sigma_r_and_the_residual_amplitude(fiducial):
+    # common practice: a better reconstruction (lower N0) leaves less lensing B-mode power, so A_lens^res falls
+    # below 1 and sigma(r) shrinks, monotonically in N0; no reconstruction (N0 = inf) changes nothing.
+    experiment = lensrec.load_experiment("deep_highland")
+    size = fiducial.lmax + 1
+    results = [
+        lensrec.delensing_forecast(experiment, n0=_toy_n0(size, level), lmax=500) for level in (1e-7, 2e-8, 2e-9)
+    ]
+    alens = [item.alens_residual for item in results]
+    assert 1.0 > alens[0] > alens[1] > alens[2] > 0.0
+    delensed = [item.sigma_r_delensed for item in results]
+    assert results[0].sigma_r_lensed > delensed[0] > delensed[1] > delensed[2]
+    for item in results:
+        used = slice(item.ell_min, item.ell_max + 1)
+        assert np.all(item.residual_bb[used] < item.lensed_bb[used])
+        assert item.improvement > 1.0
+    none = lensrec.delensing_forecast(experiment, n0=np.full(size, np.inf), lmax=500, template_e_noise=False)
+    assert none.alens_residual == pytest.approx(1.0, rel=1e-12)  # identical spectra: float rounding only
+    assert none.sigma_r_delensed == pytest.approx(none.sigma_r_lensed, rel=1e-12)
+
+
+def test_forecast_sigma_r_scales_as_one_over_root_sky_fraction(fiducial):
+    # common practice: only the mode count depends on f_sky, so sigma(r) ∝ f_sky^(-1/2) exactly
+    experiment = lensrec.load_experiment("wide_lowland")
+    n0 = _toy_n0(fiducial.lmax + 1)
+    wide = lensrec.delensing_forecast(experiment, n0=n0, lmax=400)
+    narrow = lensrec.delensing_forecast(experiment.replace(sky_fraction=0.1), n0=n0, lmax=400)
+    ratio = math.sqrt(experiment.sky_fraction / 0.1)
+    assert narrow.sigma_r_lensed == pytest.approx(wide.sigma_r_lensed * ratio, rel=1e-12)
+    assert narrow.sigma_r_delensed == pytest.approx(wide.sigma_r_delensed * ratio, rel=1e-12)
+    assert narrow.alens_residual == pytest.approx(wide.alens_residual, rel=1e-12)
+
+
+def test_perfect_delensing_without_noise_reaches_the_cosmic_variance_limit(fiducial):
+    # common practice: with no instrument noise and a noise-free reconstruction (N0 = 0) nothing but the
+    # primordial B modes is left (the scalar unlensed BB is zero), so sigma(r) = r sqrt(2 / (f_sky sum (2l+1))).
+    # E must be measured to l >= lmax + ell_margin = 2300 for the template to be complete (E modes above the
+    # survey's cut are missing from it and leave first-order B modes), hence ell_max_polarization = 4000.
+    experiment = lensrec.Experiment(
+        name="ideal",
+        noise_temperature=0.0,
+        noise_polarization=0.0,
+        beam_fwhm=0.0,
+        ell_min=2,
+        ell_max_polarization=4000,
+        sky_fraction=0.5,
+    )
+    result = lensrec.delensing_forecast(experiment, n0=np.zeros(fiducial.lmax + 1), lmax=300, r=0.01)
+    assert result.ell_max == 300 and np.all(result.residual_bb == 0.0)
+    limit = 0.01 * math.sqrt(2.0 / (0.5 * (301**2 - 2**2)))
+    assert result.sigma_r_delensed == pytest.approx(limit, rel=1e-12)  # closed form: float rounding only
+    assert result.alens_residual == 0.0
+    assert result.sigma_r_lensed > 2 * limit  # lensing B modes dominate the variance at r = 0.01 (common practice)
+    # the same survey measuring E only to l = 300: the template lacks E above 300 and B-mode power remains
+    cut = lensrec.delensing_forecast(experiment.replace(ell_max_polarization=300), n0=np.zeros(fiducial.lmax + 1))
+    assert cut.alens_residual > 0.5
+
+
+def test_forecast_carries_the_delensing_bias_warning_and_serializes(fiducial, tmp_path):
+    result = lensrec.delensing_forecast("deep_highland", n0=_toy_n0(fiducial.lmax + 1), lmax=300)
+    assert any("delensing bias" in note for note in result.notes)
+    assert "Delensing bias" in lensrec.delensing_forecast.__doc__
+    from lensrec.io import read_json, write_json
+
+    write_json(tmp_path / "forecast.json", result.to_dict())
+    back = read_json(tmp_path / "forecast.json")
+    assert back["alens_residual"] == pytest.approx(result.alens_residual, rel=1e-15)
+    assert len(back["residual_bb"]) == 301
+
+
+def test_alens_residual_is_the_weighted_mean_ratio():
+    # the definition written out: sum w (C^res / C^lens) / sum w with w = (2l+1) (C^lens / (C^res + N))^2
+    ell = np.arange(201, dtype=float)
+    lensed = 1e-6 * (1 + ell / 100)
+    residual = lensed * np.linspace(0.2, 0.6, 201)
+    noise = np.full(201, 5e-7)
+    noise[150:] = np.inf
+    w = (2 * ell[10:150] + 1) * (lensed[10:150] / (residual[10:150] + noise[10:150])) ** 2
+    expected = np.sum(w * residual[10:150] / lensed[10:150]) / np.sum(w)
+    assert alens_residual(lensed, residual, noise, 10, 200) == pytest.approx(expected, rel=1e-13)
+
+
+@pytest.mark.parametrize(
+    "arguments, error, match",
+    [
+        ({"experiment": 3.0}, TypeError, "experiment must be an Experiment"),
+        ({"experiment": "no_such_survey"}, ValueError, "no experiment file or shipped experiment"),
+        ({"spectra": {"TT": 1}}, TypeError, "spectra must be a lensrec.Spectra"),
+        ({"n0": None}, ValueError, "n0 is required"),
+        ({"n0": "flat"}, TypeError, "n0 must be a numeric array"),
+        ({"lmax": 5000}, ValueError, "lmax must be <= 4000"),
+        ({"lmax": 100, "ell_min_b": 200}, ValueError, "the B-mode range is empty"),
+        ({"r": -1.0}, ValueError, "r must be >= 0"),
+    ],
+)
+def test_delensing_forecast_refuses_bad_input(fiducial, arguments, error, match):
+    call = {"experiment": "deep_highland", "n0": _toy_n0(fiducial.lmax + 1), "lmax": 200}
+    call.update(arguments)
+    with pytest.raises(error, match=match):
+        lensrec.delensing_forecast(**call)

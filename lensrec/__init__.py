@@ -11,6 +11,8 @@ __version__ = "0.1.0"
 from .experiment import Experiment, available_experiments, load_experiment
 from .io import OutputExistsError
 from .lensed_spectra import delensed_spectra, first_order_lensed_bb, lensed_cmb_spectra
+from .masks import apodize_binary_mask, cap_mask, latitude_mask, load_mask, sky_fraction_moments
+from .sky import SimulatedSky, deflection_maps, lens_alm, lens_tqu_alm, simulate_sky
 from .spectra import Spectra, fiducial_spectra, spectra_from_camb
 from .tensor_forecast import delensing_forecast, sigma_r
 
@@ -20,6 +22,16 @@ __all__ = [
     "available_experiments",
     "load_experiment",
     "OutputExistsError",
+    "SimulatedSky",
+    "simulate_sky",
+    "lens_alm",
+    "lens_tqu_alm",
+    "deflection_maps",
+    "apodize_binary_mask",
+    "cap_mask",
+    "latitude_mask",
+    "load_mask",
+    "sky_fraction_moments",
     "Spectra",
     "fiducial_spectra",
     "spectra_from_camb",

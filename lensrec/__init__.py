@@ -8,6 +8,7 @@ from __future__ import annotations
 
 __version__ = "0.1.0"
 
+from .estimator_noise import ReconstructionNoise, reconstruction_noise
 from .experiment import Experiment, available_experiments, load_experiment
 from .io import OutputExistsError
 from .lensed_spectra import delensed_spectra, first_order_lensed_bb, lensed_cmb_spectra
@@ -40,4 +41,6 @@ __all__ = [
     "first_order_lensed_bb",
     "delensed_spectra",
     "delensing_forecast",
+    "ReconstructionNoise",
+    "reconstruction_noise",
 ]

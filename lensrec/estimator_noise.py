@@ -1,0 +1,494 @@
+"""Exact full-sky responses and Gaussian reconstruction noise (N0) of the quadratic lensing estimators.
+
+The estimators, their response R_L, normalisation A_L = 1/R_L and the noise covariance are defined in
+:mod:`lensrec.estimator_weights` (module docstring, with Okamoto & Hu 2003 references); every double sum
+over (ℓ1, ℓ2) is evaluated exactly with the Gauss–Legendre identity of :mod:`lensrec.quadrature`, in O(ℓ²).
+
+The minimum-variance (MV) combination uses, per L, the inverse of the full N0 covariance of the five
+normalised estimators (cross terms included): weights w = C⁻¹1 / (1ᵀC⁻¹1), N0_MV = 1/(1ᵀC⁻¹1), unit response.
+Estimators whose N0 is undefined at some L (zero response) are left out of the MV at that L.
+
+Beyond :func:`reconstruction_noise`, :func:`estimator_responses` and :func:`noise_covariance` accept any
+estimators (weights) and any source kernels, so an estimator built with one set of weights can be asked for
+its response to another source (the curl, unlensed spectra, …) or for its N0 under another total spectrum.
+"""
+
+from __future__ import annotations
+
+import difflib
+from collections.abc import Mapping
+from dataclasses import dataclass
+from types import MappingProxyType
+
+import numpy as np
+
+from ._checks import as_finite_array, as_float, as_int
+from .estimator_weights import (
+    COMPONENTS,
+    ESTIMATOR_FIELDS,
+    FactorTable,
+    KernelSums,
+    PairKernel,
+    QuadraticEstimator,
+    quadratic_estimator,
+    response_kernel,
+    spectrum_name,
+)
+from .experiment import Experiment, load_experiment
+from .spectra import Spectra, fiducial_spectra
+
+__all__ = [
+    "ESTIMATORS",
+    "ReconstructionNoise",
+    "reconstruction_noise",
+    "standard_factors",
+    "estimator_responses",
+    "noise_covariance",
+    "minimum_variance",
+]
+
+ESTIMATORS = ("TT", "TE", "EE", "TB", "EB", "MV")
+BASE_ESTIMATORS = ("TT", "TE", "EE", "TB", "EB")
+# Imaginary parts of sums that are real by symmetry must cancel to rounding; anything larger is a defect.
+_IMAGINARY_TOLERANCE = 1e-9
+
+
+# ---------------------------------------------------------------------------------------- factors
+def standard_factors(experiment: Experiment, spectra: Spectra, lmax: int, lensed_weights: bool = True,
+                     total_prefix: str = "total", filter_prefix: str = "inverse",
+                     spectra_prefix: str = "cmb") -> FactorTable:
+    """The factor table lensrec's estimators use.
+
+    ``"cmb:XY"``: CMB spectra in the weights and response (lensed unless ``lensed_weights=False``);
+    ``"total:XY"``: total spectra C_tot = lensed CMB + beam-deconvolved noise, set to 0 outside the ℓ cuts
+    (where every filter vanishes); ``"inverse:X"``: the diagonal filters 1/C^XX_tot (0 outside the cuts).
+
+    Parameters
+    ----------
+    experiment : Experiment
+    spectra : Spectra
+    lmax : int
+        Highest CMB multipole (≤ ``spectra.lmax``).
+    lensed_weights : bool
+    total_prefix, filter_prefix, spectra_prefix : str
+        Name prefixes (change them to hold several sets in one table).
+    """
+    lmax = as_int(lmax, "lmax", minimum=2, maximum=spectra.lmax)
+    signal = spectra.cmb(lensed=bool(lensed_weights))
+    total = experiment.total_spectra(spectra, lmax, lensed=True)
+    table = FactorTable()
+    for key in ("TT", "EE", "BB", "TE"):
+        table.add(f"{spectra_prefix}:{key}", as_finite_array(signal[key][: lmax + 1], f"spectra {key}"))
+        values = np.where(np.isfinite(total[key]), total[key], 0.0)
+        table.add(f"{total_prefix}:{key}", values)
+    for field_name in "TEB":
+        auto = total[field_name * 2]
+        usable = np.isfinite(auto) & (auto > 0)
+        inverse = np.zeros(lmax + 1)
+        inverse[usable] = 1.0 / auto[usable]
+        table.add(f"{filter_prefix}:{field_name}", inverse)
+    return table
+
+
+# ----------------------------------------------------------------------------------- general sums
+def _register_noise(sums: KernelSums, a: QuadraticEstimator, b: QuadraticEstimator, total: str) -> tuple[int, int]:
+    """Register the two Wick terms of N^{ab} (estimator_weights docstring, item 3)."""
+    x, y = a.fields
+    z, v = b.fields
+    scale = 1.0 / (a.symmetry * b.symmetry)
+    first = sums.add(a.weight, b.weight.conjugate(), first=(spectrum_name(total, x, z),),
+                     second=(spectrum_name(total, y, v),), scale=scale)
+    second = sums.add(a.weight, b.weight.swapped().conjugate(), first=(spectrum_name(total, x, v),),
+                      second=(spectrum_name(total, y, z),), scale=scale)
+    return first, second
+
+
+def estimator_responses(estimators, sources, factors: FactorTable, lmax: int, lmax_L: int, nthreads=None):
+    """Responses R_L of unnormalised estimators to source kernels: ⟨ḡ_LM⟩ = R_L ψ_LM.
+
+    Parameters
+    ----------
+    estimators : sequence of QuadraticEstimator
+    sources : sequence of PairKernel
+        One source kernel per estimator, on the estimator's field pair (e.g.
+        ``response_kernel("EB", "curl")`` to ask a gradient estimator for its curl response).
+    factors : FactorTable
+    lmax, lmax_L : int
+        Highest CMB multipole in the sums and highest L returned.
+    nthreads : int, optional
+
+    Returns
+    -------
+    list of complex ndarray, shape (lmax_L+1,)
+        R_L = 1/(η(2L+1)) Σ W f (real for physical pairs; complex in general).
+    """
+    estimators, sources = list(estimators), list(sources)
+    if len(estimators) != len(sources):
+        raise ValueError(f"need one source per estimator, got {len(estimators)} estimators and {len(sources)} sources")
+    sums = KernelSums(factors, lmax, lmax, lmax_L, nthreads)
+    for estimator, source in zip(estimators, sources, strict=True):
+        if not isinstance(estimator, QuadraticEstimator) or not isinstance(source, PairKernel):
+            raise TypeError("estimators must be QuadraticEstimator and sources PairKernel objects")
+        if source.fields != estimator.fields:
+            raise ValueError(f"source fields {source.fields} differ from the estimator's {estimator.fields}")
+        sums.add(estimator.weight, source, scale=1.0 / estimator.symmetry)
+    return sums.evaluate()
+
+
+def noise_covariance(estimators, factors: FactorTable, lmax: int, lmax_L: int, total: str = "total", nthreads=None):
+    """Gaussian noise covariance N^{ab}_L of unnormalised estimators (divide by R^a R^b for N0).
+
+    Parameters
+    ----------
+    estimators : sequence of QuadraticEstimator
+    factors : FactorTable
+        Must hold the total spectra ``"<total>:TT"``, ``"<total>:EE"``, ``"<total>:BB"``, ``"<total>:TE"``.
+    lmax, lmax_L : int
+    total : str
+        Prefix of the total spectra of the data: pass another set to get the noise of the same weights under
+        a different sky or noise level.
+    nthreads : int, optional
+
+    Returns
+    -------
+    complex ndarray, shape (n, n, lmax_L+1)
+    """
+    estimators = list(estimators)
+    sums = KernelSums(factors, lmax, lmax, lmax_L, nthreads)
+    index = {}
+    for i, a in enumerate(estimators):
+        for j in range(i, len(estimators)):
+            index[i, j] = _register_noise(sums, a, estimators[j], total)
+    values = sums.evaluate()
+    out = np.zeros((len(estimators), len(estimators), lmax_L + 1), dtype=np.complex128)
+    for (i, j), (p, q) in index.items():
+        out[i, j] = values[p] + values[q]
+        out[j, i] = np.conj(out[i, j])
+    return out
+
+
+def minimum_variance(covariance) -> tuple[np.ndarray, np.ndarray]:
+    """Per-L minimum-variance combination of unit-response estimators.
+
+    Parameters
+    ----------
+    covariance : array_like, shape (n, n, nL)
+        N0 covariance of normalised estimators; estimators with a non-finite or non-positive diagonal at
+        some L are excluded there.
+
+    Returns
+    -------
+    n0 : ndarray, shape (nL,)
+        1/(1ᵀC⁻¹1) (NaN where no estimator is usable).
+    weights : ndarray, shape (n, nL)
+        C⁻¹1/(1ᵀC⁻¹1), summing to one (0 for excluded estimators, NaN where none is usable).
+
+    References
+    ----------
+    Okamoto & Hu 2003, PRD 67, 083002, §III (minimum-variance combination with the full noise covariance).
+    """
+    cov = np.asarray(covariance, dtype=np.float64)
+    if cov.ndim != 3 or cov.shape[0] != cov.shape[1]:
+        raise ValueError(f"covariance must have shape (n, n, nL), got {cov.shape}")
+    n, _, n_l = cov.shape
+    diagonal = np.array([cov[i, i] for i in range(n)])
+    usable = np.isfinite(diagonal) & (diagonal > 0)
+    for i in range(n):
+        for j in range(n):
+            usable[i] &= np.isfinite(cov[i, j]) | ~usable[j]
+    n0 = np.full(n_l, np.nan)
+    weights = np.full((n, n_l), np.nan)
+    patterns = {}
+    for ell in range(n_l):
+        patterns.setdefault(tuple(usable[:, ell]), []).append(ell)
+    for pattern, ells in patterns.items():
+        keep = np.flatnonzero(pattern)
+        if keep.size == 0:
+            continue
+        ells = np.array(ells)
+        block = np.moveaxis(cov[np.ix_(keep, keep, ells)], -1, 0)  # (nL, k, k)
+        scale = np.sqrt(np.einsum("lii->li", block))  # correlation form keeps the solve well conditioned
+        corr = block / (scale[:, :, None] * scale[:, None, :])
+        rhs = 1.0 / scale
+        try:
+            solved = np.linalg.solve(corr, rhs[..., None])[..., 0]
+        except np.linalg.LinAlgError:
+            solved = np.einsum("lij,lj->li", np.linalg.pinv(corr), rhs)
+        inverse_one = solved / scale  # C⁻¹ 1
+        total = inverse_one.sum(axis=1)
+        n0[ells] = 1.0 / total
+        w = np.zeros((n, ells.size))
+        w[keep] = (inverse_one / total[:, None]).T
+        weights[:, ells] = w
+    return n0, weights
+
+
+# ---------------------------------------------------------------------------------------- result
+def _frozen_array(values) -> np.ndarray:
+    array = np.array(values, dtype=np.float64, copy=True)
+    array.setflags(write=False)
+    return array
+
+
+@dataclass(frozen=True, eq=False)
+class ReconstructionNoise:
+    """Responses, N0 and their covariance for a set of quadratic estimators (read-only).
+
+    Attributes
+    ----------
+    L : ndarray
+        0 … lmax_L.
+    n0 : mapping label → component → ndarray
+        Gaussian N0 of the normalised estimators in C_L^φφ units (C_L^ΩΩ units for the curl), NaN for L < 2
+        and wherever the response vanishes.
+    response : mapping label → component → ndarray
+        R_L of the unnormalised estimator to its own source (A_L = 1/R_L); for "MV", 1/N0_MV (the MV
+        combination is optimal, so its normalisation equals its noise).
+    covariance : mapping component → ndarray, shape (n_est, n_est, lmax_L+1)
+        N0 cross-covariance of the normalised estimators listed in ``covariance_labels``.
+    covariance_labels : tuple of str
+    mv_weights : mapping component → ndarray, shape (n_est, lmax_L+1)
+        Per-L MV weights over ``covariance_labels`` (only when "MV" was requested).
+    experiment : Experiment
+    phi_spectrum : ndarray
+        C_L^φφ of the spectra used (for :meth:`lensing_snr`).
+    settings : mapping
+        lmax, lmax_L, lensed_weights, estimators, components, quadrature nodes.
+    """
+
+    L: np.ndarray
+    n0: Mapping
+    response: Mapping
+    covariance: Mapping
+    covariance_labels: tuple
+    mv_weights: Mapping
+    experiment: Experiment
+    phi_spectrum: np.ndarray
+    settings: Mapping
+
+    def lensing_snr(self, sky_fraction=None, L_min=2, L_max=None) -> dict[str, float]:
+        """Fisher signal-to-noise of the lensing power spectrum for each estimator.
+
+        (S/N)² = Σ_{L=L_min}^{L_max} f_sky (2L+1)/2 · (C_L^φφ / (C_L^φφ + N0_L))² (common practice: Gaussian
+        band-power errors, reconstruction noise N0 only).
+
+        Parameters
+        ----------
+        sky_fraction : float, optional
+            f_sky in (0, 1]; default: the experiment's ``sky_fraction``.
+        L_min, L_max : int
+            Inclusive range (2 ≤ L_min ≤ L_max ≤ lmax_L; default L_max = lmax_L).
+
+        Returns
+        -------
+        dict label → S/N (gradient component).
+        """
+        if "gradient" not in self.settings["components"]:
+            raise ValueError("lensing_snr needs the gradient component; it was not computed")
+        f_sky = self.experiment.sky_fraction if sky_fraction is None else sky_fraction
+        f_sky = as_float(f_sky, "sky_fraction", 0.0, 1.0, strict_minimum=True)
+        lmax_L = int(self.L[-1])
+        L_min = as_int(L_min, "L_min", minimum=2, maximum=lmax_L)
+        L_max = lmax_L if L_max is None else as_int(L_max, "L_max", minimum=L_min, maximum=lmax_L)
+        ell = np.arange(L_min, L_max + 1)
+        signal = self.phi_spectrum[ell]
+        out = {}
+        for label, parts in self.n0.items():
+            noise = parts["gradient"][ell]
+            with np.errstate(invalid="ignore", divide="ignore"):
+                ratio = np.where(np.isfinite(noise), signal / (signal + noise), 0.0)
+            out[label] = float(np.sqrt(np.sum(f_sky * (2 * ell + 1) / 2.0 * ratio**2)))
+        return out
+
+    def to_dict(self, include_covariance: bool = False) -> dict:
+        """Plain lists and dicts for JSON (NaN stays NaN; ``lensrec.io.write_json`` turns it into null)."""
+        document = {
+            "L": self.L.tolist(),
+            "n0": {label: {c: v.tolist() for c, v in parts.items()} for label, parts in self.n0.items()},
+            "response": {label: {c: v.tolist() for c, v in parts.items()} for label, parts in self.response.items()},
+            "settings": dict(self.settings),
+            "experiment": self.experiment.to_dict(),
+        }
+        if self.mv_weights:
+            document["mv_weights"] = {"labels": list(self.covariance_labels),
+                                      **{c: v.tolist() for c, v in self.mv_weights.items()}}
+        if include_covariance:
+            document["covariance"] = {"labels": list(self.covariance_labels),
+                                      **{c: v.tolist() for c, v in self.covariance.items()}}
+        return document
+
+
+# -------------------------------------------------------------------------------------- validation
+def _parse_estimators(estimators) -> tuple[str, ...]:
+    if isinstance(estimators, str):
+        estimators = [part.strip() for part in estimators.split(",")]
+    try:
+        labels = list(estimators)
+    except TypeError:
+        raise TypeError(f"estimators must be a sequence of labels from {ESTIMATORS}, got {estimators!r}") from None
+    if not labels:
+        raise ValueError(f"estimators must name at least one of {ESTIMATORS}, got none")
+    out = []
+    for label in labels:
+        if not isinstance(label, str):
+            raise TypeError(f"estimator labels must be strings from {ESTIMATORS}, got {label!r}")
+        if label not in ESTIMATORS:
+            close = difflib.get_close_matches(label.upper(), ESTIMATORS, n=1, cutoff=0.4)
+            hint = f"; did you mean {close[0]!r}?" if close else ""
+            raise ValueError(f"unknown estimator {label!r}{hint} Allowed: {', '.join(ESTIMATORS)}")
+        if label in out:
+            raise ValueError(f"estimator {label!r} is listed twice in {labels}")
+        out.append(label)
+    return tuple(out)
+
+
+def _parse_components(components) -> tuple[str, ...]:
+    if isinstance(components, str):
+        components = (components,)
+    out = tuple(components)
+    if not out or any(c not in COMPONENTS for c in out) or len(set(out)) != len(out):
+        raise ValueError(f"components must be distinct entries of {COMPONENTS}, got {components!r}")
+    return out
+
+
+# --------------------------------------------------------------------------------------- main entry
+def reconstruction_noise(experiment, spectra=None, estimators=ESTIMATORS, lmax_L=None, lensed_weights=True,
+                         nthreads=None, components=COMPONENTS) -> ReconstructionNoise:
+    """Exact full-sky responses and Gaussian N0 of the quadratic estimators, their covariance and the MV.
+
+    Parameters
+    ----------
+    experiment : Experiment or str
+        The survey (noise, beam, ℓ cuts), or the name/path of an experiment TOML file.
+    spectra : Spectra, optional
+        Theory spectra (default: the embedded fiducial cosmology). Must reach the experiment's largest ℓ_max.
+    estimators : sequence of str or str
+        Any of "TT", "TE", "EE", "TB", "EB", "MV" (default all); a comma-separated string also works. "MV"
+        always combines all five.
+    lmax_L : int, optional
+        Highest lensing multipole (default and maximum: the CMB ℓ_max, the larger of the experiment's
+        temperature and polarization ℓ_max).
+    lensed_weights : bool
+        Use lensed CMB spectra in the weights and the response (default, common practice); False selects
+        unlensed spectra. The filters always use the total (lensed + noise) spectra.
+    nthreads : int, optional
+        Threads (default: ``LENSREC_NTHREADS`` or all cores).
+    components : sequence of str
+        "gradient" and/or "curl" (default both).
+
+    Returns
+    -------
+    ReconstructionNoise
+
+    Raises
+    ------
+    TypeError, ValueError
+        Unknown estimator (with the nearest label), lmax_L outside [2, CMB ℓ_max], spectra too short or
+        non-finite, a field with no usable multipole.
+
+    References
+    ----------
+    Okamoto & Hu 2003, PRD 67, 083002 (full-sky estimators, §III); Hu & Okamoto 2002, ApJ 574, 566.
+
+    Examples
+    --------
+    >>> import lensrec
+    >>> e = lensrec.Experiment(name="demo", noise_temperature=1.0, beam_fwhm=1.0,
+    ...                        ell_max_temperature=1000, ell_max_polarization=1000)
+    >>> result = lensrec.reconstruction_noise(e, estimators=("EB", "MV"), lmax_L=500)
+    >>> bool(result.n0["MV"]["gradient"][100] <= result.n0["EB"]["gradient"][100])
+    True
+    """
+    if isinstance(experiment, (str, bytes)) or hasattr(experiment, "__fspath__"):
+        experiment = load_experiment(experiment)
+    if not isinstance(experiment, Experiment):
+        raise TypeError(f"experiment must be an Experiment or the name/path of one, got {type(experiment).__name__}")
+    spectra = fiducial_spectra() if spectra is None else spectra
+    if not isinstance(spectra, Spectra):
+        raise TypeError(f"spectra must be a lensrec Spectra object, got {type(spectra).__name__}")
+    labels = _parse_estimators(estimators)
+    components = _parse_components(components)
+    lmax = max(experiment.ell_max_temperature, experiment.ell_max_polarization)
+    if spectra.lmax < lmax:
+        raise ValueError(f"spectra reach only l = {spectra.lmax} but the experiment uses l up to {lmax}; "
+                         "lower the experiment's ell_max or pass spectra computed to higher l")
+    lmax_L = lmax if lmax_L is None else as_int(lmax_L, "lmax_L", minimum=2)
+    if lmax_L > lmax:
+        raise ValueError(f"lmax_L={lmax_L} exceeds the CMB l_max={lmax} of experiment {experiment.name!r}; "
+                         f"choose lmax_L <= {lmax}")
+    for key in ("TT", "EE", "BB", "TE"):
+        for which in (spectra.lensed, spectra.unlensed):
+            as_finite_array(which[key][: lmax + 1], f"spectra {key}")
+    factors = standard_factors(experiment, spectra, lmax, lensed_weights)
+    base = BASE_ESTIMATORS if "MV" in labels else tuple(label for label in labels if label != "MV")
+    for label in base:
+        for field_name in ESTIMATOR_FIELDS[label]:
+            if factors.is_zero(f"inverse:{field_name}"):
+                raise ValueError(f"estimator {label} has no usable multipole of {field_name}: every l of "
+                                 f"{field_name} is cut (ell_min={experiment.ell_min}, "
+                                 f"ell_max={experiment.ell_max(field_name)}, spectra to l={spectra.lmax})")
+
+    sums = KernelSums(factors, lmax, lmax, lmax_L, nthreads)
+    registry = {}
+    for component in components:
+        est = [quadratic_estimator(label, component) for label in base]
+        registry[component, "response"] = [sums.add(e.weight, response_kernel(e.fields, component),
+                                                    scale=1.0 / e.symmetry) for e in est]
+        registry[component, "noise"] = {(i, j): _register_noise(sums, est[i], est[j], "total")
+                                        for i in range(len(base)) for j in range(i, len(base))}
+    values = sums.evaluate()
+
+    L = np.arange(lmax_L + 1)
+    low = L < 2
+    n0, response, covariance, mv_weights = {}, {}, {}, {}
+    for component in components:
+        responses = np.array([values[k] for k in registry[component, "response"]])
+        _check_real(responses, np.abs(responses), "response")
+        responses = responses.real
+        noise = np.zeros((len(base), len(base), lmax_L + 1), dtype=np.complex128)
+        for (i, j), (p, q) in registry[component, "noise"].items():
+            noise[i, j] = values[p] + values[q]
+            noise[j, i] = np.conj(noise[i, j])
+        diag = np.abs(np.array([noise[i, i] for i in range(len(base))]))
+        _check_real(noise, np.sqrt(diag[:, None] * diag[None, :]), "noise covariance")
+        noise = noise.real
+        with np.errstate(divide="ignore", invalid="ignore"):
+            defined = (responses > 0) & ~low[None, :]
+            norm = np.where(defined, 1.0 / np.where(defined, responses, 1.0), np.nan)
+            cov = noise * norm[:, None, :] * norm[None, :, :]
+        covariance[component] = _frozen_array(cov)
+        for i, label in enumerate(base):
+            if label in labels:
+                n0.setdefault(label, {})[component] = _frozen_array(cov[i, i])
+                response.setdefault(label, {})[component] = _frozen_array(np.where(low, np.nan, responses[i]))
+        if "MV" in labels:
+            mv_n0, weights = minimum_variance(np.where(np.isnan(cov), np.inf, cov))
+            mv_n0[low] = np.nan
+            weights[:, low] = np.nan
+            n0.setdefault("MV", {})[component] = _frozen_array(mv_n0)
+            with np.errstate(divide="ignore"):
+                response.setdefault("MV", {})[component] = _frozen_array(1.0 / mv_n0)
+            mv_weights[component] = _frozen_array(weights)
+    ordered = {label: MappingProxyType(n0[label]) for label in labels}
+    settings = {
+        "lmax": lmax, "lmax_L": lmax_L, "lensed_weights": bool(lensed_weights), "estimators": list(labels),
+        "components": list(components), "quadrature_points": sums.last_counts["npoints"],
+        "wigner_series": sums.last_counts["series"], "projections": sums.last_counts["projections"],
+    }
+    return ReconstructionNoise(
+        L=_frozen_array(L), n0=MappingProxyType(ordered),
+        response=MappingProxyType({label: MappingProxyType(response[label]) for label in labels}),
+        covariance=MappingProxyType(covariance), covariance_labels=tuple(base),
+        mv_weights=MappingProxyType(mv_weights), experiment=experiment,
+        phi_spectrum=_frozen_array(spectra.phi[: lmax_L + 1]), settings=MappingProxyType(settings),
+    )
+
+
+def _check_real(values: np.ndarray, scale: np.ndarray, what: str) -> None:
+    """Sums that are real by symmetry must have negligible imaginary parts; otherwise say so loudly."""
+    with np.errstate(invalid="ignore"):
+        bad = np.abs(values.imag) > _IMAGINARY_TOLERANCE * np.maximum(scale, np.finfo(float).tiny)
+    bad &= np.abs(values.imag) > 1e-300
+    if np.any(bad[..., 2:]):
+        raise RuntimeError(f"internal error: the {what} has a non-negligible imaginary part "
+                           f"(max {np.max(np.abs(values.imag)):.3g}); please report it")

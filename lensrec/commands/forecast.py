@@ -1,0 +1,86 @@
+"""``lensrec forecast``: exact full-sky reconstruction noise (N0) of the quadratic estimators, as JSON."""
+
+from __future__ import annotations
+
+import time
+
+HELP = "exact full-sky reconstruction noise N0 (gradient and curl) and lensing S/N of the quadratic estimators"
+EXAMPLES = """examples:
+  lensrec forecast --experiment deep_highland --lmax-L 3000 --out n0.json
+  lensrec forecast --experiment my_survey.toml --estimators TT,EB,MV --out n0_eb.json --force
+  lensrec forecast --experiment wide_lowland --lmax-L 2000 --unlensed-weights --out n0_unlensed.json
+
+writes one JSON file: {"L": [0..lmax_L], "n0": {"TT": {"gradient": [...], "curl": [...]}, ...},
+"snr": {"TT": ..., ...}, "provenance": {...}}; N0 in C_L^phiphi units (C_L^OmegaOmega for the curl),
+null below L = 2; snr is the Fisher S/N of C_L^phiphi over 2 <= L <= lmax_L with the experiment's sky fraction."""
+
+TABLE_L = (30, 100, 300, 1000, 2000, 3000)
+
+
+def add_arguments(parser) -> None:
+    from ..cli import add_common
+
+    add_common(parser, experiment=True, out=True)
+    parser.add_argument("--lmax-L", dest="lmax_L", type=int, default=None,
+                        help="highest lensing multipole (default and maximum: the experiment's CMB l_max)")
+    parser.add_argument("--estimators", default="TT,TE,EE,TB,EB,MV",
+                        help="comma-separated estimators from TT, TE, EE, TB, EB, MV (default: %(default)s)")
+    parser.add_argument("--unlensed-weights", action="store_true",
+                        help="use unlensed CMB spectra in the weights and response (default: lensed)")
+
+
+def forecast_document(experiment, estimators="TT,TE,EE,TB,EB,MV", lmax_L=None, lensed_weights=True,
+                      nthreads=None, spectra=None) -> tuple[dict, object]:
+    """Compute N0 and S/N and return (the JSON document without provenance, the ReconstructionNoise).
+
+    Parameters are those of :func:`lensrec.reconstruction_noise`; the document holds "L", "n0" (NaN below
+    L = 2, written as null) and "snr".
+    """
+    from ..estimator_noise import reconstruction_noise
+
+    result = reconstruction_noise(experiment, spectra=spectra, estimators=estimators, lmax_L=lmax_L,
+                                  lensed_weights=lensed_weights, nthreads=nthreads)
+    document = {
+        "L": result.L.astype(int).tolist(),
+        "n0": {label: {component: values.tolist() for component, values in parts.items()}
+               for label, parts in result.n0.items()},
+        "snr": result.lensing_snr(),
+    }
+    return document, result
+
+
+def format_table(result, snr: dict) -> str:
+    """A short per-estimator table: gradient N0 at a few L (C_L^φφ units) and the lensing S/N."""
+    lmax_L = int(result.L[-1])
+    columns = [L for L in TABLE_L if L <= lmax_L] or [lmax_L]
+    header = "estimator " + "".join(f"{'N0(L=' + str(L) + ')':>14s}" for L in columns) + f"{'S/N':>9s}"
+    lines = [header]
+    for label, parts in result.n0.items():
+        values = "".join(f"{parts['gradient'][L]:14.4e}" for L in columns)
+        lines.append(f"{label:9s} {values}{snr[label]:9.1f}")
+    return "\n".join(lines)
+
+
+def run(args) -> int:
+    from ..experiment import load_experiment
+    from ..io import check_outputs_free, provenance, write_json
+
+    check_outputs_free([args.out], force=args.force)  # refuse before any work
+    timings = {}
+    start = time.perf_counter()
+    experiment = load_experiment(args.experiment)
+    timings["inputs"] = time.perf_counter() - start
+    start = time.perf_counter()
+    document, result = forecast_document(experiment, estimators=args.estimators, lmax_L=args.lmax_L,
+                                         lensed_weights=not args.unlensed_weights, nthreads=args.nthreads)
+    timings["reconstruction_noise"] = time.perf_counter() - start
+    arguments = {"experiment": args.experiment, "lmax_L": int(result.L[-1]), "estimators": args.estimators,
+                 "unlensed_weights": bool(args.unlensed_weights), "nthreads": args.nthreads}
+    document["provenance"] = provenance("forecast", arguments=arguments, experiment=experiment, timings=timings,
+                                        extra={"settings": dict(result.settings)})
+    write_json(args.out, document, force=args.force)
+    print(f"lensrec forecast: {experiment.name}, lmax_L={int(result.L[-1])}, "
+          f"{timings['reconstruction_noise']:.2f} s; N0 in C_L^phiphi units")
+    print(format_table(result, document["snr"]))
+    print(f"wrote {args.out}")
+    return 0

@@ -1,0 +1,72 @@
+"""``lensrec forecast``: JSON shape, nulls below L = 2, overwrite protection, bad input (exit codes 0/2)."""
+
+import json
+
+import numpy as np
+
+import lensrec
+from lensrec.cli import main
+
+
+def small_experiment(tmp_path):
+    path = tmp_path / "small.toml"
+    lensrec.Experiment(name="Small Test Survey", noise_temperature=2.0, beam_fwhm=2.0,
+                       ell_max_temperature=400, ell_max_polarization=500).to_toml(path)
+    return str(path)
+
+
+def test_forecast_writes_the_documented_json(tmp_path, capsys):
+    out = tmp_path / "n0.json"
+    code = main(["forecast", "--experiment", small_experiment(tmp_path), "--lmax-L", "300", "--out", str(out),
+                 "--nthreads", "2"])
+    assert code == 0
+    document = json.loads(out.read_text())
+    assert set(document) == {"L", "n0", "snr", "provenance"}
+    assert document["L"] == list(range(301))
+    assert list(document["n0"]) == ["TT", "TE", "EE", "TB", "EB", "MV"]
+    for label, parts in document["n0"].items():
+        assert set(parts) == {"gradient", "curl"}
+        for values in parts.values():
+            assert len(values) == 301
+            assert values[0] is None and values[1] is None  # undefined below L = 2 (CONVENTIONS.md)
+            assert all(isinstance(v, float) and v > 0 for v in values[2:])
+        assert document["snr"][label] > 0
+    assert document["provenance"]["command"] == "forecast"
+    assert document["provenance"]["experiment"]["name"] == "Small Test Survey"
+    # the file holds what the library computes for the same inputs
+    result = lensrec.reconstruction_noise(lensrec.load_experiment(str(tmp_path / "small.toml")), lmax_L=300)
+    assert np.allclose(document["n0"]["EB"]["gradient"][2:], result.n0["EB"]["gradient"][2:], rtol=1e-12)
+    printed = capsys.readouterr().out
+    assert "MV" in printed and "S/N" in printed and str(out) in printed
+
+
+def test_forecast_subset_of_estimators(tmp_path):
+    out = tmp_path / "n0.json"
+    assert main(["forecast", "--experiment", small_experiment(tmp_path), "--estimators", "TT,EB,MV",
+                 "--lmax-L", "200", "--out", str(out)]) == 0
+    document = json.loads(out.read_text())
+    assert list(document["n0"]) == ["TT", "EB", "MV"] and list(document["snr"]) == ["TT", "EB", "MV"]
+
+
+def test_forecast_refuses_to_overwrite_without_force(tmp_path, capsys):
+    out = tmp_path / "n0.json"
+    out.write_text("precious")
+    args = ["forecast", "--experiment", small_experiment(tmp_path), "--lmax-L", "100", "--out", str(out)]
+    assert main(args) == 2
+    assert "already exists" in capsys.readouterr().err
+    assert out.read_text() == "precious"
+    assert main(args + ["--force"]) == 0
+    assert json.loads(out.read_text())["L"][-1] == 100
+
+
+def test_forecast_bad_input_exits_2_with_a_message(tmp_path, capsys):
+    experiment = small_experiment(tmp_path)
+    out = tmp_path / "n0.json"
+    assert main(["forecast", "--experiment", experiment, "--estimators", "TT,EBB", "--out", str(out)]) == 2
+    err = capsys.readouterr().err
+    assert "unknown estimator 'EBB'" in err and "did you mean 'EB'" in err
+    assert main(["forecast", "--experiment", experiment, "--lmax-L", "900", "--out", str(out)]) == 2
+    assert "exceeds the CMB l_max=500" in capsys.readouterr().err
+    assert main(["forecast", "--experiment", "no_such_survey", "--out", str(out)]) == 2
+    assert "no experiment file or shipped experiment" in capsys.readouterr().err
+    assert not out.exists()

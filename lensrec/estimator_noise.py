@@ -364,7 +364,7 @@ def reconstruction_noise(experiment, spectra=None, estimators=ESTIMATORS, lmax_L
         Theory spectra (default: the embedded fiducial cosmology). Must reach the experiment's largest ℓ_max.
     estimators : sequence of str or str
         Any of "TT", "TE", "EE", "TB", "EB", "MV" (default all); a comma-separated string also works. "MV"
-        always combines all five.
+        combines all five, or those of them that are defined when a field has no usable multipole.
     lmax_L : int, optional
         Highest lensing multipole (default and maximum: the CMB ℓ_max, the larger of the experiment's
         temperature and polarization ℓ_max).
@@ -384,7 +384,7 @@ def reconstruction_noise(experiment, spectra=None, estimators=ESTIMATORS, lmax_L
     ------
     TypeError, ValueError
         Unknown estimator (with the nearest label), lmax_L outside [2, CMB ℓ_max], spectra too short or
-        non-finite, a field with no usable multipole.
+        non-finite, a requested estimator whose field has no usable multipole.
 
     References
     ----------
@@ -421,12 +421,18 @@ def reconstruction_noise(experiment, spectra=None, estimators=ESTIMATORS, lmax_L
             as_finite_array(which[key][: lmax + 1], f"spectra {key}")
     factors = standard_factors(experiment, spectra, lmax, lensed_weights)
     base = BASE_ESTIMATORS if "MV" in labels else tuple(label for label in labels if label != "MV")
+    usable = []
     for label in base:
-        for field_name in ESTIMATOR_FIELDS[label]:
-            if factors.is_zero(f"inverse:{field_name}"):
-                raise ValueError(f"estimator {label} has no usable multipole of {field_name}: every l of "
-                                 f"{field_name} is cut (ell_min={experiment.ell_min}, "
-                                 f"ell_max={experiment.ell_max(field_name)}, spectra to l={spectra.lmax})")
+        cut = [f for f in ESTIMATOR_FIELDS[label] if factors.is_zero(f"inverse:{f}")]
+        if not cut:
+            usable.append(label)
+        elif label in labels:  # named explicitly: its N0 is undefined, say so
+            raise ValueError(f"estimator {label} has no usable multipole of {cut[0]}: every l of {cut[0]} is cut "
+                             f"(ell_min={experiment.ell_min}, ell_max={experiment.ell_max(cut[0])}, "
+                             f"spectra to l={spectra.lmax}); drop {label} from estimators")
+    base = tuple(usable)  # MV combines the estimators that are defined
+    if not base:
+        raise ValueError("no estimator has usable multipoles: every field is cut")
 
     sums = KernelSums(factors, lmax, lmax, lmax_L, nthreads)
     registry = {}

@@ -500,4 +500,8 @@ def test_bad_input_is_refused(fiducial):
     cut = NoTemperature(name="cut", ell_max_temperature=500, ell_max_polarization=600)
     with pytest.raises(ValueError, match="estimator TT has no usable multipole of T"):
         reconstruction_noise(cut, fiducial)
-    assert np.all(np.isfinite(reconstruction_noise(cut, fiducial, estimators=("EB",), lmax_L=300).n0["EB"]["gradient"][2:]))
+    # without temperature the MV combines the polarization estimators (TT, TE and TB are undefined)
+    polarization_only = reconstruction_noise(cut, fiducial, estimators=("EE", "EB", "MV"), lmax_L=300)
+    assert polarization_only.covariance_labels == ("EE", "EB")
+    mv, eb = polarization_only.n0["MV"]["gradient"][2:], polarization_only.n0["EB"]["gradient"][2:]
+    assert np.all(np.isfinite(mv)) and np.all(mv <= eb * (1 + 1e-12))

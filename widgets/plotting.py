@@ -154,6 +154,7 @@ class FigureView:
         self.widget = widgets.Box([self.image, self.note])
         self.draws = 0
         self._lock = threading.Lock()
+        self.show_note("drawing…")  # never an empty image (a browser shows a broken-image icon for one)
 
     def draw(self) -> None:
         """Render the figure and show it (replacing any note)."""

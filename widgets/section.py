@@ -45,7 +45,11 @@ class Section:
 
     def layout(self, controls=(), outputs=()) -> None:
         """Guide on top, then the controls, the status area, and the plots and tables below it."""
-        guide = widgets.HTML(f"<div style='color:#515a5a;max-width:60em'>{self.guide}</div>") if self.guide else None
+        guide = (
+            widgets.HTML(f"<div style='color:#515a5a;max-width:60em;line-height:1.45'>{self.guide}</div>")
+            if self.guide
+            else None
+        )
         children = [guide, *controls, self.status.widget, *outputs]
         self.panel.children = tuple(c for c in children if c is not None)
 

@@ -1,0 +1,248 @@
+"""The workbench in a real browser: JupyterLab on 127.0.0.1 with a token, driven by headless Debian chromium.
+
+The JupyterLab server runs in a temporary root folder holding a copy of notebooks/workbench.ipynb, with its
+own config, settings and runtime folders, and stops when the module's tests end. Screenshots go to
+test-artifacts/.
+"""
+
+import contextlib
+import json
+import os
+import secrets
+import shutil
+import socket
+import subprocess
+import sys
+import time
+import urllib.error
+import urllib.request
+
+import pytest
+
+ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+NOTEBOOK = os.path.join(ROOT, "notebooks", "workbench.ipynb")
+CHROMIUM = "/usr/bin/chromium"
+CHROMIUM_ARGS = [
+    "--no-sandbox",
+    "--disable-gpu",
+    "--disable-background-networking",
+    "--disable-component-update",
+    "--disable-sync",
+    "--no-first-run",
+]
+
+pytestmark = pytest.mark.browser
+
+
+def _free_port() -> int:
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as sock:
+        sock.bind(("127.0.0.1", 0))
+        return sock.getsockname()[1]
+
+
+def _loopback_opener():
+    return urllib.request.build_opener(urllib.request.ProxyHandler({}))  # never route loopback through a proxy
+
+
+def _request(url: str, token: str, method: str = "GET", timeout: float = 5.0):
+    request = urllib.request.Request(url, method=method, headers={"Authorization": f"token {token}"})
+    with _loopback_opener().open(request, timeout=timeout) as response:
+        body = response.read()
+    return json.loads(body) if body else None
+
+
+class JupyterLab:
+    """A JupyterLab server on 127.0.0.1 started for the tests."""
+
+    def __init__(self, folder: str):
+        self.folder = folder
+        self.root = os.path.join(folder, "root")
+        os.makedirs(self.root)
+        shutil.copy(NOTEBOOK, self.root)
+        self.port = _free_port()
+        self.token = secrets.token_hex(24)
+        self.url = f"http://127.0.0.1:{self.port}"
+        settings = os.path.join(folder, "settings")
+        # no news or update checks: the page must not reach outside the machine
+        notification = os.path.join(settings, "@jupyterlab", "apputils-extension")
+        os.makedirs(notification)
+        with open(os.path.join(notification, "notification.jupyterlab-settings"), "w") as handle:
+            json.dump({"fetchNews": "false", "checkForUpdates": False}, handle)
+        self.env = dict(os.environ)
+        self.env.update(
+            JUPYTER_CONFIG_DIR=os.path.join(folder, "config"),
+            JUPYTER_RUNTIME_DIR=os.path.join(folder, "runtime"),
+            JUPYTERLAB_SETTINGS_DIR=settings,
+            JUPYTERLAB_WORKSPACES_DIR=os.path.join(folder, "workspaces"),
+            IPYTHONDIR=os.path.join(folder, "ipython"),
+            LENSREC_NTHREADS="2",
+        )
+        self.log_path = os.path.join(folder, "jupyterlab.log")
+        self.process = None
+
+    def start(self, timeout: float = 90.0) -> None:
+        command = [
+            sys.executable, "-m", "jupyterlab",
+            "--ServerApp.ip=127.0.0.1",
+            f"--ServerApp.port={self.port}",
+            "--ServerApp.port_retries=0",
+            f"--IdentityProvider.token={self.token}",
+            f"--ServerApp.root_dir={self.root}",
+            "--ServerApp.open_browser=False",
+            "--LabApp.expose_app_in_browser=True",
+            "--LabApp.news_url=",
+        ]  # fmt: skip
+        if os.geteuid() == 0:
+            command.append("--allow-root")
+        self._log = open(self.log_path, "wb")  # noqa: SIM115 (closed in stop)
+        self.process = subprocess.Popen(command, cwd=self.root, env=self.env, stdout=self._log,
+                                        stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL)  # fmt: skip
+        deadline = time.monotonic() + timeout
+        while time.monotonic() < deadline:
+            if self.process.poll() is not None:
+                raise RuntimeError(f"JupyterLab exited with {self.process.returncode}:\n{self.log()}")
+            with contextlib.suppress(OSError, urllib.error.URLError, ValueError):
+                if _request(f"{self.url}/api/status", self.token) is not None:
+                    return
+            time.sleep(0.5)
+        raise RuntimeError(f"JupyterLab did not answer on {self.url} within {timeout} s:\n{self.log()}")
+
+    def log(self) -> str:
+        with open(self.log_path, errors="replace") as handle:
+            return handle.read()[-4000:]
+
+    def stop(self) -> None:
+        if self.process is None:
+            return
+        with contextlib.suppress(OSError, urllib.error.URLError, ValueError):
+            for kernel in _request(f"{self.url}/api/kernels", self.token) or []:
+                _request(f"{self.url}/api/kernels/{kernel['id']}", self.token, method="DELETE", timeout=15)
+        self.process.terminate()
+        try:
+            self.process.wait(20)
+        except subprocess.TimeoutExpired:
+            self.process.kill()
+            self.process.wait(10)
+        self._log.close()
+
+
+@pytest.fixture(scope="module")
+def jupyterlab(tmp_path_factory):
+    if not os.path.exists(CHROMIUM):
+        pytest.skip(f"{CHROMIUM} is not installed (.ci/run installs Debian's chromium)")
+    server = JupyterLab(str(tmp_path_factory.mktemp("jupyterlab")))
+    server.start()
+    try:
+        yield server
+    finally:
+        server.stop()
+
+
+@pytest.fixture(scope="module")
+def browser(jupyterlab, tmp_path_factory):
+    from playwright.sync_api import sync_playwright
+
+    profile = str(tmp_path_factory.mktemp("chromium-profile"))
+    with sync_playwright() as playwright:
+        context = playwright.chromium.launch_persistent_context(
+            profile,
+            executable_path=CHROMIUM,
+            headless=True,
+            args=CHROMIUM_ARGS,
+            viewport={"width": 1300, "height": 1900},  # tall enough to hold a whole section
+        )
+        try:
+            yield context
+        finally:
+            context.close()
+
+
+KERNEL_READY = """async () => {
+    const panel = window.jupyterapp.shell.currentWidget;
+    if (!panel || !panel.sessionContext) return false;
+    await panel.sessionContext.ready;
+    const kernel = panel.sessionContext.session && panel.sessionContext.session.kernel;
+    return !!kernel && kernel.connectionStatus === 'connected' && kernel.status === 'idle';
+}"""
+
+
+@pytest.fixture(scope="module")
+def workbench_page(jupyterlab, browser, artifacts_dir):
+    """The workbench notebook opened and run in JupyterLab, with the app rendered."""
+    page = browser.pages[0] if browser.pages else browser.new_page()
+    page.set_default_timeout(60_000)
+    page.goto(f"{jupyterlab.url}/lab/tree/workbench.ipynb?token={jupyterlab.token}")
+    try:
+        page.wait_for_function("() => window.jupyterapp !== undefined", timeout=90_000)
+        page.wait_for_selector(".jp-NotebookPanel .jp-Notebook", timeout=90_000)
+        # the notebook's own kernel connected and idle (the toolbar can say idle before that)
+        page.wait_for_function(KERNEL_READY, polling=250, timeout=90_000)
+        # not awaited: the command's promise settles only when every cell has run
+        page.evaluate("() => { window.jupyterapp.commands.execute('notebook:run-all-cells'); }")
+        page.wait_for_selector(".lensrec-workbench", timeout=90_000)
+        # visible only once drawn: before its first draw the plot is replaced by a note
+        page.wait_for_selector("img.lensrec-plot-experiment-spectra[src^='blob:']", state="visible", timeout=60_000)
+    except Exception:
+        page.screenshot(path=os.path.join(artifacts_dir, "workbench-failed-to-open.png"))
+        outputs = page.locator(".jp-OutputArea").all_inner_texts()
+        raise AssertionError(f"the workbench did not open; cell outputs: {outputs}\n{jupyterlab.log()}") from None
+    page.evaluate("() => window.jupyterapp.commands.execute('application:toggle-left-area')")
+    return page
+
+
+def _screenshot(page, artifacts_dir: str, name: str) -> str:
+    """Screenshot the workbench itself (scrolled into view) into test-artifacts/."""
+    path = os.path.join(artifacts_dir, name)
+    app = page.locator(".lensrec-workbench")
+    app.scroll_into_view_if_needed()
+    app.screenshot(path=path)
+    return path
+
+
+def _src(page, selector: str) -> str:
+    return page.locator(selector).get_attribute("src")
+
+
+def _wait_src_change(page, selector: str, before: str, timeout: float = 60_000) -> str:
+    page.wait_for_function(
+        "([selector, before]) => { const e = document.querySelector(selector);"
+        " return e && e.src.startsWith('blob:') && e.src !== before; }",
+        arg=[selector, before],
+        timeout=timeout,
+    )
+    return _src(page, selector)
+
+
+def _open_tab(page, title: str) -> None:
+    page.locator(".lensrec-tabs .lm-TabBar-tab", has_text=title).first.click()
+
+
+def test_workbench_opens_and_shows_the_experiment(workbench_page, artifacts_dir):
+    page = workbench_page
+    tabs = page.locator(".lensrec-tabs .lm-TabBar-tab").all_inner_texts()
+    assert [t.strip() for t in tabs] == [
+        "Experiment", "Estimator noise", "Sky", "Reconstruction", "Delensing", "Validation",
+    ]  # fmt: skip
+    assert page.locator(".lensrec-experiment-picker select").input_value() == "deep_highland"
+    _screenshot(page, artifacts_dir, "workbench-experiment.png")
+
+
+def test_changing_noise_redraws_the_noise_plot(workbench_page, artifacts_dir):
+    page = workbench_page
+    _open_tab(page, "Experiment")
+    selector = "img.lensrec-plot-experiment-spectra"
+    before = _src(page, selector)
+    field = page.locator(".lensrec-noise-temperature input")
+    field.fill("12")
+    field.press("Enter")
+    _wait_src_change(page, selector, before)
+    status = page.locator(".lensrec-status-experiment").inner_text()
+    assert "Δ_T = 12" in status
+    field.fill("-1")  # refused by the experiment model; the message must appear in the page
+    field.press("Enter")
+    page.wait_for_function(
+        "() => document.querySelector('.lensrec-status-experiment').innerText.includes('noise_temperature must be')"
+    )
+    _screenshot(page, artifacts_dir, "workbench-experiment-error.png")
+    field.fill("1")
+    field.press("Enter")

@@ -8,7 +8,12 @@ Lewis 2005, PRD 71, 083008, §III). P = Q + iU is spin 2 on the (e_θ, e_φ) bas
 
 The unlensed field is evaluated at the displaced points with a non-uniform spherical-harmonic synthesis
 (``ducc0.sht.synthesis_general``) on a Gauss–Legendre grid, and the lensed a_ℓm come from exact
-Gauss–Legendre quadrature, so no HEALPix analysis of an under-resolved map is involved.
+Gauss–Legendre quadrature (grid sized for the lensed field's tail above the unlensed band limit, see
+:func:`lensing_grid`), so no HEALPix analysis of an under-resolved map is involved.
+
+Public pieces for reuse: :func:`lens_alm` / :func:`lens_tqu_alm` (remap any band-limited spin-0…3 field
+by any φ, e.g. a Wiener-filtered E by a reconstructed φ), :func:`deflection_maps`, :func:`gaussian_alm`,
+:func:`gaussian_cmb_alm` and :func:`simulate_sky`.
 """
 
 from __future__ import annotations
@@ -800,7 +805,7 @@ def simulate_sky(experiment, spectra=None, nside: int = 512, lmax: int | None = 
     if not isinstance(noise, (bool, np.bool_)):
         raise TypeError(f"noise must be True or False, got {noise!r}")
     if mask is not None:
-        mask = check_mask(mask, nside)
+        mask = np.array(check_mask(mask, nside))  # a private copy: the result holds it read-only
     if hits is not None:
         hits = as_finite_array(hits, "hits", ndim=1)
         if hits.size != 12 * nside * nside:

@@ -9,6 +9,7 @@ import ipywidgets as widgets
 import lensrec
 
 from .experiment_panel import ExperimentSection
+from .noise_panel import EstimatorNoiseSection
 from .section import Section
 from .state import WorkbenchState
 
@@ -63,17 +64,20 @@ class Workbench(widgets.VBox):
     'experiment'
     """
 
-    def __init__(self, experiment="deep_highland", spectra=None, delay: float = 0.3):
+    def __init__(self, experiment="deep_highland", spectra=None, delay: float = 0.3, nthreads=None):
         self.state = WorkbenchState(experiment=experiment, spectra=spectra)
         self.sections = {"experiment": ExperimentSection(self.state)}
-        for name, title, needs in (
-            ("noise", "Estimator noise", ("reconstruction_noise",)),
-            ("sky", "Sky", ("simulate_sky",)),
-            ("reconstruction", "Reconstruction", ("reconstruct",)),
-            ("delensing", "Delensing", ("lensing_b_template", "delensing_forecast")),
-            ("validation", "Validation", ("run_suite",)),
-        ):
-            self.sections[name] = MissingLibrarySection(self.state, title, name, needs)
+        plan = (
+            ("noise", "Estimator noise", ("reconstruction_noise",),
+             lambda: EstimatorNoiseSection(self.state, delay=delay, nthreads=nthreads)),
+            ("sky", "Sky", ("simulate_sky",), None),
+            ("reconstruction", "Reconstruction", ("reconstruct",), None),
+            ("delensing", "Delensing", ("lensing_b_template", "delensing_forecast"), None),
+            ("validation", "Validation", ("run_suite",), None),
+        )  # fmt: skip
+        for name, title, needs, build in plan:
+            available = build is not None and all(library_function(n) is not None for n in needs)
+            self.sections[name] = build() if available else MissingLibrarySection(self.state, title, name, needs)
         self.tabs = widgets.Tab(
             children=[s.panel for s in self.sections.values()], titles=[s.title for s in self.sections.values()]
         )

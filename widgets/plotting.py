@@ -42,6 +42,7 @@ COLORS = {
     "BB": "#b9770e",
     "TE": "#6c3483",
     "phi": "#17202a",
+    "signal": "#95a5a6",
     "noise": "#7f8c8d",
     "input": "#17202a",
     "reconstructed": "#c0392b",

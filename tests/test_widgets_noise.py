@@ -1,0 +1,117 @@
+"""Headless tests of the Estimator-noise section: plotted N0 and S/N equal lensrec's, live updates, errors."""
+
+import numpy as np
+import pytest
+
+import lensrec
+from widgets import Workbench
+
+# a small experiment keeps each N0 evaluation well under a second
+SMALL = lensrec.Experiment(name="small test survey", noise_temperature=3.0, beam_fwhm=3.0, ell_min=2,
+                           ell_max_temperature=1000, ell_max_polarization=1000, sky_fraction=0.5)  # fmt: skip
+
+
+@pytest.fixture
+def app():
+    workbench = Workbench(experiment=SMALL, delay=0.0, nthreads=2)
+    assert workbench.wait(60)
+    return workbench
+
+
+def _phi_units(cl):
+    # [L(L+1)]² C_L / 2π: the usual lensing-potential plot units (lensrec conventions)
+    L = np.arange(len(cl))
+    return (L * (L + 1.0)) ** 2 * cl / (2 * np.pi)
+
+
+def _kappa_units(cl):
+    # C_L^κκ = [L(L+1)]² C_L^φφ / 4 from κ = L(L+1) φ / 2 (lensrec conventions)
+    L = np.arange(len(cl))
+    return (L * (L + 1.0)) ** 2 * cl / 4.0
+
+
+def test_plotted_n0_equals_the_library_result(app):
+    section = app["noise"]
+    expected = lensrec.reconstruction_noise(SMALL, nthreads=2)
+    plotted = section.plotted()
+    assert set(plotted) == {"signal", "TT", "TE", "EE", "TB", "EB", "MV"}
+    for label in ("TT", "EE", "EB", "MV"):
+        x, y = plotted[label]
+        np.testing.assert_array_equal(x, np.arange(2, 1001))
+        # same computation, same inputs: equal to rounding of the units conversion
+        np.testing.assert_allclose(y, _phi_units(expected.n0[label]["gradient"])[2:], rtol=1e-12)
+    x, y = plotted["signal"]
+    np.testing.assert_allclose(y, _phi_units(lensrec.fiducial_spectra().phi[:1001])[2:], rtol=1e-12)
+    assert app.state.noise is section.result
+
+
+def test_snr_table_matches_the_library(app):
+    section = app["noise"]
+    expected = lensrec.reconstruction_noise(SMALL, nthreads=2).lensing_snr()
+    assert set(section.snr) == set(expected)
+    for label, value in expected.items():
+        assert section.snr[label] == pytest.approx(value, rel=1e-12)
+        assert f"{value:.1f}" in section.table.value
+    assert "f_sky = 0.5" in section.table.value
+
+
+def test_units_and_component_redraw_without_recomputing(app):
+    section = app["noise"]
+    result = section.result
+    section.units.value = "kappa"
+    section.component.value = "curl"
+    assert section.wait(30)
+    assert section.result is result  # nothing that N0 depends on changed
+    x, y = section.plotted()["MV"]
+    np.testing.assert_allclose(y, _kappa_units(result.n0["MV"]["curl"])[2:], rtol=1e-12)
+    assert "curl" in section.plot_title.get_text()
+
+
+def test_experiment_change_recomputes_n0_live(app):
+    before = app["noise"].result
+    app["experiment"].controls["noise_temperature"].value = 12.0
+    app["experiment"].controls["beam_fwhm"].value = 4.0
+    assert app.wait(60)
+    section = app["noise"]
+    assert section.result is not before
+    # the section keeps "Δ_P = √2 Δ_T" ticked for an experiment defined that way
+    changed = SMALL.replace(noise_temperature=12.0, noise_polarization=None, beam_fwhm=4.0)
+    assert section.result.experiment == changed
+    expected = lensrec.reconstruction_noise(changed, nthreads=2)
+    np.testing.assert_allclose(section.plotted()["TT"][1], _phi_units(expected.n0["TT"]["gradient"])[2:], rtol=1e-12)
+    # more noise, more N0: the 4x noise power must raise the TT reconstruction noise at every L
+    assert np.all(expected.n0["TT"]["gradient"][2:] > before.n0["TT"]["gradient"][2:])
+
+
+def test_estimator_choice_and_lmax_L(app):
+    section = app["noise"]
+    for label in ("TT", "TE", "TB"):
+        section.estimator_boxes[label].value = False
+    section.lmax_L.value = 600
+    assert section.wait(30)
+    assert set(section.plotted()) == {"signal", "EE", "EB", "MV"}
+    assert int(section.result.L[-1]) == 600
+    expected = lensrec.reconstruction_noise(SMALL, estimators=("EE", "EB", "MV"), lmax_L=600, nthreads=2)
+    np.testing.assert_allclose(section.plotted()["MV"][1], _phi_units(expected.n0["MV"]["gradient"])[2:], rtol=1e-12)
+
+
+def test_bad_lmax_L_is_reported_and_the_stale_plot_withdrawn(app):
+    section = app["noise"]
+    section.lmax_L.value = 5000  # beyond the experiment's CMB ℓ_max of 1000
+    assert section.wait(30)
+    assert section.status.kind == "error"
+    assert "lmax_L=5000 exceeds the CMB l_max=1000" in section.status.message
+    assert not section.view.showing_plot and "No N0" in section.view.note.value
+    assert app.state.noise is None
+    section.lmax_L.value = 0
+    assert section.wait(30)
+    assert section.status.kind == "ok" and section.view.showing_plot
+
+
+def test_no_estimator_selected_is_a_visible_warning(app):
+    section = app["noise"]
+    for box in section.estimator_boxes.values():
+        box.value = False
+    assert section.wait(30)
+    assert section.status.kind == "warning" and "No estimator" in section.status.message
+    assert not section.view.showing_plot

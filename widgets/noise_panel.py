@@ -1,0 +1,192 @@
+"""Section 2 – Estimator noise: N0 of the quadratic estimators against C_L^φφ, and the lensing S/N.
+
+Recomputes (debounced) whenever the experiment, the estimator choice or lmax_L changes; switching units or
+the gradient/curl component only redraws the last result.
+"""
+
+from __future__ import annotations
+
+import html
+import time
+
+import ipywidgets as widgets
+import numpy as np
+
+import lensrec
+
+from .plotting import COLORS, ESTIMATOR_COLORS, WIDE, FigureView, finite_or_nan, phi_plot_units, style_axes
+from .section import Section, labelled
+from .work import LiveUpdate
+
+__all__ = ["EstimatorNoiseSection", "ESTIMATORS", "UNIT_LABELS"]
+
+ESTIMATORS = ("TT", "TE", "EE", "TB", "EB", "MV")
+UNIT_LABELS = {
+    "phi": r"$[L(L+1)]^2 C_L / 2\pi$",
+    "kappa": r"$C_L^{\kappa\kappa} = [L(L+1)]^2 C_L^{\phi\phi} / 4$",
+}
+Y_LIMITS = (1e-10, 1e-5)
+
+
+class EstimatorNoiseSection(Section):
+    title = "Estimator noise"
+    name = "noise"
+    guide = (
+        "Gaussian reconstruction noise N0 of each quadratic estimator (full sky, normalised to unit response) "
+        "against the lensing signal. The curl component is a null test: its signal is zero, C_L^φφ is drawn "
+        "only for scale. Lensing S/N: √Σ f_sky (2L+1)/2 [C_L^φφ/(C_L^φφ+N0_L)]² (gradient, L ≥ 2)."
+    )
+
+    def __init__(self, state, delay: float = 0.3, nthreads=None):
+        super().__init__(state)
+        self.nthreads = nthreads
+        self.result = None
+        self.result_inputs = None
+        self.snr: dict[str, float] = {}
+        self.compute_seconds = None
+        self.estimator_boxes = {
+            label: widgets.Checkbox(value=True, description=label, indent=False, layout=widgets.Layout(width="5.5em"))
+            for label in ESTIMATORS
+        }
+        for label, box in self.estimator_boxes.items():
+            box.add_class(f"lensrec-estimator-{label}")
+        self.lmax_L = labelled(widgets.IntText(value=0, description="lmax_L (0 = CMB ℓ_max)"), "17em")
+        self.units = widgets.ToggleButtons(
+            options=[("φ: [L(L+1)]² C_L/2π", "phi"), ("κ: C_L^κκ", "kappa")],
+            value="phi",
+            style={"button_width": "12em"},
+        )
+        self.component = widgets.ToggleButtons(options=["gradient", "curl"], value="gradient")
+        self.table = widgets.HTML()
+        self.table.add_class("lensrec-snr-table")
+        self.view = FigureView(WIDE, name="noise-n0")
+        self._build_figure()
+        self.update = LiveUpdate(self._run, self.status, "Computing N0", delay=delay)
+        self.live.append(self.update)
+
+        for control in (*self.estimator_boxes.values(), self.lmax_L, self.units, self.component):
+            control.observe(lambda change: self.update.trigger(), names="value")
+        state.observe(lambda change: self.update.trigger(), names=["experiment", "spectra"])
+
+        self.layout(
+            controls=[
+                widgets.HBox(
+                    [widgets.Label("estimators", layout=widgets.Layout(width="6em")), *self.estimator_boxes.values()]
+                ),  # fmt: skip
+                widgets.HBox([self.lmax_L, self.component]),
+                self.units,
+            ],
+            outputs=[widgets.HBox([self.view.widget, self.table])],
+        )
+        self.update.trigger()
+
+    # ------------------------------------------------------------------------------------ inputs
+    def chosen_estimators(self) -> tuple[str, ...]:
+        return tuple(label for label, box in self.estimator_boxes.items() if box.value)
+
+    def _inputs(self):
+        lmax_L = self.lmax_L.value
+        return (self.state.experiment, self.state.spectra, self.chosen_estimators(), None if lmax_L == 0 else lmax_L)
+
+    # ---------------------------------------------------------------------------------- the work
+    def _run(self) -> None:
+        inputs = self._inputs()
+        experiment, spectra, estimators, lmax_L = inputs
+        if not estimators:
+            self.view.show_note("Tick at least one estimator to compute its N0.")
+            self.status.warn("No estimator selected.")
+            return
+        if self.result_inputs is None or not _same_inputs(self.result_inputs, inputs):
+            self.status.info(f"Computing N0 for {', '.join(estimators)}…")
+            began = time.perf_counter()
+            try:
+                result = lensrec.reconstruction_noise(experiment, spectra, estimators=estimators, lmax_L=lmax_L,
+                                                      nthreads=self.nthreads)  # fmt: skip
+            except Exception:
+                self.result, self.result_inputs, self.snr = None, None, {}
+                self.state.noise = None
+                self.table.value = ""
+                self.view.show_note("No N0 for the current settings; the message above says why.")
+                raise
+            self.compute_seconds = time.perf_counter() - began
+            if not _same_inputs(self._inputs(), inputs):
+                return  # settings moved on while computing; the pending run will show the new ones
+            self.result, self.result_inputs = result, inputs
+            self.snr = result.lensing_snr()
+            self.state.noise = result
+            self.status.ok(
+                f"N0 of {', '.join(estimators)} for {experiment.name}, L ≤ {int(result.L[-1])}, "
+                f"in {self.compute_seconds:.2f} s."
+            )
+        self._draw()
+
+    # ---------------------------------------------------------------------------------- the plot
+    def _build_figure(self) -> None:
+        figure = self.view.figure
+        figure.subplots_adjust(left=0.11, right=0.97, bottom=0.13, top=0.9)
+        self.ax = figure.add_subplot()
+        (self.signal_line,) = self.ax.plot([], [], color=COLORS["signal"], lw=3.0, label="signal")
+        self.lines = {}
+        for label in ESTIMATORS:
+            style = {"lw": 2.0} if label == "MV" else {"lw": 1.3, "alpha": 0.9}
+            (self.lines[label],) = self.ax.plot([], [], color=ESTIMATOR_COLORS[label], label=f"N0 {label}", **style)
+        self.ax.set_xscale("log")
+        self.ax.set_yscale("log")
+        self.ax.set_xlabel("lensing multipole L")
+        self.plot_title = self.ax.set_title("", fontsize=10)
+        style_axes(self.ax)
+
+    def plotted(self) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+        """(x, y) of every visible curve: ``"signal"`` and the estimator labels (tests compare with lensrec)."""
+        out = {"signal": (np.asarray(self.signal_line.get_xdata()), np.asarray(self.signal_line.get_ydata()))}
+        for label, line in self.lines.items():
+            if line.get_visible():
+                out[label] = (np.asarray(line.get_xdata()), np.asarray(line.get_ydata()))
+        return out
+
+    def _draw(self) -> None:
+        result, units, component = self.result, self.units.value, self.component.value
+        L = np.arange(result.L.size)
+        shown = L >= 2
+        self.signal_line.set_data(L[shown], phi_plot_units(result.phi_spectrum, units)[shown])
+        self.signal_line.set_linestyle("-" if component == "gradient" else ":")
+        self.signal_line.set_label(
+            "signal $C_L^{\\phi\\phi}$" if component == "gradient" else "$C_L^{\\phi\\phi}$ (scale only: curl signal is 0)"
+        )  # fmt: skip
+        for label, line in self.lines.items():
+            if label in result.n0:
+                n0 = finite_or_nan(result.n0[label][component])
+                line.set_data(L[shown], phi_plot_units(n0, units)[shown])
+                line.set_visible(True)
+            else:
+                line.set_data([], [])
+                line.set_visible(False)
+        self.ax.set_xlim(2, max(3, int(L[-1])))
+        self.ax.set_ylim(*Y_LIMITS)
+        self.ax.set_ylabel(UNIT_LABELS[units] + ("" if units == "kappa" else "   (φ units)"))
+        handles = [self.signal_line] + [line for line in self.lines.values() if line.get_visible()]
+        self.ax.legend(handles=handles, loc="lower left", fontsize=8, ncol=4, frameon=False)
+        self.plot_title.set_text(f"N0 ({component}) – {result.experiment.name}")
+        self.view.draw()
+        self._fill_table()
+
+    def _fill_table(self) -> None:
+        result = self.result
+        rows = "".join(
+            f"<tr><td style='padding:2px 10px;color:{ESTIMATOR_COLORS[label]}'><b>{label}</b></td>"
+            f"<td style='padding:2px 10px;text-align:right'>{self.snr[label]:.1f}</td></tr>"
+            for label in ESTIMATORS
+            if label in self.snr
+        )
+        self.table.value = (
+            "<table style='border-collapse:collapse;margin:2em 1em'>"
+            "<tr><th style='padding:2px 10px;text-align:left'>estimator</th>"
+            "<th style='padding:2px 10px;text-align:right'>lensing S/N</th></tr>"
+            f"{rows}</table><div style='margin:0 1em;color:#515a5a;font-size:90%'>gradient, "
+            f"L = 2–{int(result.L[-1])},<br>f_sky = {result.experiment.sky_fraction:g} "
+            f"({html.escape(result.experiment.name)})</div>"
+        )
+
+
+def _same_inputs(a, b) -> bool:
+    return a[0] == b[0] and a[1] is b[1] and a[2] == b[2] and a[3] == b[3]

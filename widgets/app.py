@@ -10,6 +10,7 @@ import lensrec
 
 from .experiment_panel import ExperimentSection
 from .noise_panel import EstimatorNoiseSection
+from .sky_panel import SkySection
 from .section import Section
 from .state import WorkbenchState
 
@@ -70,7 +71,8 @@ class Workbench(widgets.VBox):
         plan = (
             ("noise", "Estimator noise", ("reconstruction_noise",),
              lambda: EstimatorNoiseSection(self.state, delay=delay, nthreads=nthreads)),
-            ("sky", "Sky", ("simulate_sky",), None),
+            ("sky", "Sky", ("simulate_sky", "deflection_maps", "latitude_mask", "cap_mask"),
+             lambda: SkySection(self.state, nthreads=nthreads)),
             ("reconstruction", "Reconstruction", ("reconstruct",), None),
             ("delensing", "Delensing", ("lensing_b_template", "delensing_forecast"), None),
             ("validation", "Validation", ("run_suite",), None),

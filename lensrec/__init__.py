@@ -8,6 +8,7 @@ from __future__ import annotations
 
 __version__ = "0.1.0"
 
+from .delensing import DelensingResult, delens, delensing_spectra, lensing_b_template, wiener_filter_phi
 from .estimator_noise import ReconstructionNoise, reconstruction_noise
 from .experiment import Experiment, available_experiments, load_experiment
 from .io import OutputExistsError
@@ -43,4 +44,9 @@ __all__ = [
     "delensing_forecast",
     "ReconstructionNoise",
     "reconstruction_noise",
+    "DelensingResult",
+    "lensing_b_template",
+    "delens",
+    "delensing_spectra",
+    "wiener_filter_phi",
 ]

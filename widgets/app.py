@@ -8,10 +8,11 @@ import ipywidgets as widgets
 
 import lensrec
 
+from .delensing_panel import DelensingSection
 from .experiment_panel import ExperimentSection
 from .noise_panel import EstimatorNoiseSection
-from .sky_panel import SkySection
 from .section import Section
+from .sky_panel import SkySection
 from .state import WorkbenchState
 
 __all__ = ["Workbench", "library_function"]
@@ -74,7 +75,8 @@ class Workbench(widgets.VBox):
             ("sky", "Sky", ("simulate_sky", "deflection_maps", "latitude_mask", "cap_mask"),
              lambda: SkySection(self.state, nthreads=nthreads)),
             ("reconstruction", "Reconstruction", ("reconstruct",), None),
-            ("delensing", "Delensing", ("lensing_b_template", "delensing_forecast"), None),
+            ("delensing", "Delensing", ("delensing_forecast",),
+             lambda: DelensingSection(self.state, nthreads=nthreads)),
             ("validation", "Validation", ("run_suite",), None),
         )  # fmt: skip
         for name, title, needs, build in plan:

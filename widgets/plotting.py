@@ -112,6 +112,11 @@ def style_axes(ax, grid: bool = True) -> None:
     if grid:
         ax.grid(True, which="major", color=COLORS["grid"], linewidth=0.7)
     ax.set_axisbelow(True)
+    from matplotlib.ticker import NullFormatter
+
+    for axis, scale in ((ax.xaxis, ax.get_xscale()), (ax.yaxis, ax.get_yscale())):
+        if scale == "log":
+            axis.set_minor_formatter(NullFormatter())  # narrow log ranges would otherwise label minor ticks
 
 
 class FigureView:

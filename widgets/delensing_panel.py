@@ -1,0 +1,185 @@
+"""Section 5 – Delensing: how much lensing B-mode power a lensing reconstruction can remove.
+
+The forecast part uses the reconstruction noise of the Estimator-noise section (``state.noise``) and
+``lensrec.delensing_forecast``: lensed and residual BB, noise, the delensing efficiency per ℓ,
+A_lens^res and σ(r) with and without delensing. Building a B-mode template from the reconstructed map
+appears here when this lensrec installation provides it (``lensrec.lensing_b_template``).
+"""
+
+from __future__ import annotations
+
+import html
+
+import ipywidgets as widgets
+import numpy as np
+
+import lensrec
+
+from .plotting import COLORS, PAIR, FigureView, d_ell, finite_or_nan, style_axes
+from .section import Section, heading, labelled
+from .work import LongTask
+
+__all__ = ["DelensingSection"]
+
+
+class DelensingSection(Section):
+    title = "Delensing"
+    name = "delensing"
+    guide = (
+        "Forecast: the lensing B modes left after subtracting a template built from the lensing reconstruction "
+        "of the chosen estimator (its N0 from the Estimator noise tab) and the experiment's E modes. "
+        "Efficiency = 1 − C_ℓ^res / C_ℓ^lens. σ(r) is a BB-only Fisher forecast at the experiment's f_sky."
+    )
+
+    def __init__(self, state, nthreads=None):
+        super().__init__(state)
+        self.nthreads = nthreads
+        self.forecast = None
+        self.forecast_noise = None
+        self.estimator = labelled(widgets.Dropdown(options=["MV"], value="MV", description="N0 of estimator"), "18em")
+        self.lmax = labelled(widgets.IntText(value=0, description="lmax (0 = default)"), "16em")
+        self.ell_min_b = labelled(widgets.IntText(value=0, description="ell_min_b (0 = ell_min)"), "16em")
+        self.r = labelled(widgets.FloatText(value=0.0, description="fiducial r"), "16em")
+        self.forecast_button = widgets.Button(description="Forecast", icon="play", button_style="primary")
+        self.forecast_button.add_class("lensrec-forecast")
+        self.task = LongTask(self.forecast_button, self.status, "Forecasting the delensed B modes", "delensing")
+        self.tasks.append(self.task)
+        self.summary = widgets.HTML()
+        self.summary.add_class("lensrec-delensing-summary")
+        self.view = FigureView(PAIR, name="delensing-bb")
+        self._build_figure()
+        self.template_area = self._template_area()
+
+        self.forecast_button.on_click(lambda _button: self.run_forecast())
+        state.observe(self._on_noise, names="noise")
+        self._on_noise({"new": state.noise})
+        self.layout(
+            controls=[
+                heading("Forecast from the reconstruction noise"),
+                widgets.HBox([self.estimator, self.lmax, self.ell_min_b, self.r]),
+                widgets.HBox([self.forecast_button, self.task.widget]),
+            ],
+            outputs=[widgets.HBox([self.view.widget, self.summary]), self.template_area],
+        )
+
+    def _template_area(self):
+        if getattr(lensrec, "lensing_b_template", None) is None or getattr(lensrec, "reconstruct", None) is None:
+            return widgets.HTML(
+                "<p style='color:#515a5a'><b>B-mode template from the reconstructed map</b>: this lensrec "
+                "installation does not provide <code>lensrec.lensing_b_template</code> and "
+                "<code>lensrec.reconstruct</code> yet; update lensrec and restart the kernel to build templates "
+                "from a simulated sky.</p>"
+            )
+        return widgets.HTML()
+
+    # ------------------------------------------------------------------------------------ inputs
+    def _on_noise(self, change) -> None:
+        noise = change["new"]
+        if noise is None:
+            self.forecast_button.disabled = self.task.busy
+            self.view.show_note("No reconstruction noise yet: the Estimator noise tab computes it for the current "
+                                "experiment; then press <b>Forecast</b>.")  # fmt: skip
+            return
+        labels = [label for label in ("MV", "EB", "TB", "EE", "TE", "TT") if label in noise.n0]
+        current = self.estimator.value
+        self.estimator.options = labels
+        self.estimator.value = current if current in labels else labels[0]
+        if self.forecast is None:
+            self.view.show_note("Press <b>Forecast</b> to see the delensed B modes for the current experiment.")
+        elif self.forecast_noise is not noise:
+            self.status.warn("The reconstruction noise has changed since this forecast; press Forecast to update it.")
+
+    # ---------------------------------------------------------------------------------- forecast
+    def run_forecast(self) -> bool:
+        """Start the forecast in the background (what the Forecast button does)."""
+        noise = self.state.noise
+        if noise is None:
+            self.status.error("No reconstruction noise yet: open the Estimator noise tab and let it finish, "
+                              "or fix the error shown there.")  # fmt: skip
+            return False
+        label = self.estimator.value
+        arguments = {
+            "n0": noise.n0[label]["gradient"],
+            "lmax": self.lmax.value or None,
+            "ell_min_b": self.ell_min_b.value or None,
+            "r": self.r.value,
+            "nthreads": self.nthreads,
+        }
+        experiment, spectra = noise.experiment, self.state.spectra
+
+        def work(report, cancel):
+            report(0.1, f"lensing with the residual potential of {label}…")
+            return lensrec.delensing_forecast(experiment, spectra, **arguments)
+
+        def finish(forecast):
+            self.forecast, self.forecast_noise, self.forecast_label = forecast, noise, label
+            self._draw()
+            return (f"Delensing with {label}: A_lens^res = {forecast.alens_residual:.3f}, σ(r) improves "
+                    f"{forecast.improvement:.2f}× ({experiment.name}).")  # fmt: skip
+
+        return self.task.start(work, finish)
+
+    # ---------------------------------------------------------------------------------- the plot
+    def _build_figure(self) -> None:
+        figure = self.view.figure
+        figure.subplots_adjust(left=0.08, right=0.98, bottom=0.14, top=0.9, wspace=0.28)
+        self.ax_bb, self.ax_eff = figure.subplots(1, 2, gridspec_kw={"width_ratios": [1.5, 1.0]})
+        self.lines = {}
+        for key, label, color, style in (
+            ("lensed", "lensing BB", COLORS["lensed"], "-"),
+            ("residual", "residual after delensing", COLORS["residual"], "-"),
+            ("noise", "B noise", COLORS["noise"], "--"),
+        ):
+            (self.lines[key],) = self.ax_bb.plot([], [], color=color, ls=style, lw=1.6, label=label)
+        self.ax_bb.set_xscale("log")
+        self.ax_bb.set_yscale("log")
+        self.ax_bb.set_xlabel("multipole ℓ")
+        self.ax_bb.set_ylabel(r"$D_\ell^{BB} = \ell(\ell+1)C_\ell^{BB}/2\pi$  [µK²]")
+        self.ax_bb.legend(loc="lower right", fontsize=8, frameon=False)
+        (self.lines["efficiency"],) = self.ax_eff.plot([], [], color=COLORS["delensed"], lw=1.6)
+        self.ax_eff.set_xscale("log")
+        self.ax_eff.set_ylim(0, 1)
+        self.ax_eff.set_xlabel("multipole ℓ")
+        self.ax_eff.set_ylabel(r"efficiency $1 - C_\ell^{res}/C_\ell^{lens}$")
+        self.title_bb = self.ax_bb.set_title("", fontsize=9.5)
+        self.title_eff = self.ax_eff.set_title("delensing efficiency", fontsize=9.5)
+        for ax in (self.ax_bb, self.ax_eff):
+            style_axes(ax)
+
+    def plotted(self) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+        return {key: (np.asarray(line.get_xdata()), np.asarray(line.get_ydata())) for key, line in self.lines.items()}
+
+    def _draw(self) -> None:
+        forecast = self.forecast
+        ell = np.arange(forecast.ell.size)
+        used = (ell >= forecast.ell_min) & (ell <= forecast.ell_max)
+        self.lines["lensed"].set_data(ell[used], d_ell(forecast.lensed_bb)[used])
+        self.lines["residual"].set_data(ell[used], d_ell(forecast.residual_bb)[used])
+        self.lines["noise"].set_data(ell[used], d_ell(finite_or_nan(forecast.noise_bb))[used])
+        efficiency = 1.0 - forecast.residual_bb[used] / forecast.lensed_bb[used]
+        self.lines["efficiency"].set_data(ell[used], efficiency)
+        for ax in (self.ax_bb, self.ax_eff):
+            ax.set_xlim(max(2, forecast.ell_min), forecast.ell_max)
+        values = np.concatenate([d_ell(forecast.lensed_bb)[used], d_ell(forecast.residual_bb)[used]])
+        values = values[np.isfinite(values) & (values > 0)]
+        self.ax_bb.set_ylim(values.min() / 3.0, values.max() * 5.0)
+        self.title_bb.set_text(f"B modes – {self.forecast_noise.experiment.name}, {self.forecast_label} N0")
+        self.view.draw()
+        bias = self.forecast_label in ("MV", "EB", "TB")
+        self.summary.value = (
+            "<table style='margin:1.5em 1em;border-collapse:collapse'>"
+            f"<tr><td style='padding:2px 8px'>A_lens^res</td><td><b>{forecast.alens_residual:.3f}</b></td></tr>"
+            f"<tr><td style='padding:2px 8px'>σ(r), lensed</td><td>{forecast.sigma_r_lensed:.3g}</td></tr>"
+            f"<tr><td style='padding:2px 8px'>σ(r), delensed</td><td><b>{forecast.sigma_r_delensed:.3g}</b></td></tr>"
+            f"<tr><td style='padding:2px 8px'>improvement</td><td>{forecast.improvement:.2f}×</td></tr>"
+            f"<tr><td style='padding:2px 8px'>ℓ range</td><td>{forecast.ell_min}–{forecast.ell_max}</td></tr>"
+            f"<tr><td style='padding:2px 8px'>f_sky, r</td><td>{forecast.sky_fraction:g}, {forecast.r:g}</td></tr>"
+            "</table>"
+            + (
+                "<div style='margin:0 1em;max-width:18em;color:#9a7d0a;font-size:90%'>⚠ "
+                f"{html.escape(self.forecast_label)} uses B modes: delensing the same B modes is biased "
+                "(the forecast assumes independent ones).</div>"
+                if bias
+                else ""
+            )
+        )

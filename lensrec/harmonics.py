@@ -644,7 +644,8 @@ def alm2positions(alm, theta, phi, spin: int = 0, lmax: int | None = None, epsil
 
 def _synthesis_at(alm: np.ndarray, loc: np.ndarray, spin: int, lmax: int, epsilon: float, nthreads: int,
                   gradient_only: bool = False) -> np.ndarray:
-    """ducc0 non-uniform synthesis on validated input; ``gradient_only`` skips an all-zero curl part."""
+    """ducc0 non-uniform synthesis on validated input; ``gradient_only`` skips an all-zero curl part
+    (ducc0's gradient-only mode, which is not faster at every size)."""
     sht = _ducc_sht()
     if loc.shape[0] == 0:
         return np.empty((1 if spin == 0 else 2, 0))

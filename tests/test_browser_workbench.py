@@ -246,3 +246,41 @@ def test_changing_noise_redraws_the_noise_plot(workbench_page, artifacts_dir):
     _screenshot(page, artifacts_dir, "workbench-experiment-error.png")
     field.fill("1")
     field.press("Enter")
+
+
+def test_noise_change_redraws_the_n0_plot(workbench_page, artifacts_dir):
+    page = workbench_page
+    selector = "img.lensrec-plot-noise-n0"
+    _open_tab(page, "Estimator noise")
+    page.wait_for_selector(f"{selector}[src^='blob:']", state="visible", timeout=60_000)
+    before = _src(page, selector)
+    _open_tab(page, "Experiment")
+    field = page.locator(".lensrec-noise-polarization input")
+    field.fill("6")
+    field.press("Enter")
+    _open_tab(page, "Estimator noise")
+    _wait_src_change(page, selector, before)
+    page.wait_for_function(
+        "() => document.querySelector('.lensrec-status-noise').innerText.includes('N0 of')"
+    )  # fmt: skip
+    assert "MV" in page.locator(".lensrec-snr-table").inner_text()
+    _screenshot(page, artifacts_dir, "workbench-estimator-noise.png")
+
+
+def test_simulate_a_small_sky_and_view_it(workbench_page, artifacts_dir):
+    page = workbench_page
+    _open_tab(page, "Sky")
+    assert page.locator(".lensrec-note-sky-maps").is_visible()  # says what to do before the first sky
+    page.locator(".lensrec-sky-nside select").select_option(label="32")
+    page.wait_for_function("() => document.querySelector('.lensrec-sky-lmax input').value === '64'")
+    page.locator("button.lensrec-simulate").click()
+    page.wait_for_selector("img.lensrec-plot-sky-maps[src^='blob:']", state="visible", timeout=120_000)
+    page.wait_for_function(
+        "() => document.querySelector('.lensrec-progress-label-sky').innerText.startsWith('done')"
+    )  # fmt: skip
+    assert "rms deflection" in page.locator(".lensrec-status-sky").inner_text()
+    assert not page.locator("button.lensrec-simulate").is_disabled()
+    before = _src(page, "img.lensrec-plot-sky-maps")
+    page.locator(".lensrec-sky-field button", has_text="κ").click()
+    _wait_src_change(page, "img.lensrec-plot-sky-maps", before)
+    _screenshot(page, artifacts_dir, "workbench-sky.png")

@@ -37,9 +37,9 @@ class DelensingSection(Section):
         self.forecast = None
         self.forecast_noise = None
         self.estimator = labelled(widgets.Dropdown(options=["MV"], value="MV", description="N0 of estimator"), "18em")
-        self.lmax = labelled(widgets.IntText(value=0, description="lmax (0 = default)"), "16em")
-        self.ell_min_b = labelled(widgets.IntText(value=0, description="ell_min_b (0 = ell_min)"), "16em")
-        self.r = labelled(widgets.FloatText(value=0.0, description="fiducial r"), "16em")
+        self.lmax = labelled(widgets.IntText(value=0, description="lmax (0 = default)"), "18em")
+        self.ell_min_b = labelled(widgets.IntText(value=0, description="ell_min_b (0 = ell_min)"), "18em")
+        self.r = labelled(widgets.FloatText(value=0.0, description="fiducial r"), "18em")
         self.forecast_button = widgets.Button(description="Forecast", icon="play", button_style="primary")
         self.forecast_button.add_class("lensrec-forecast")
         self.task = LongTask(self.forecast_button, self.status, "Forecasting the delensed B modes", "delensing")

@@ -50,7 +50,8 @@ class EstimatorNoiseSection(Section):
         }
         for label, box in self.estimator_boxes.items():
             box.add_class(f"lensrec-estimator-{label}")
-        self.lmax_L = labelled(widgets.IntText(value=0, description="lmax_L (0 = CMB ℓ_max)"), "17em")
+        self.lmax_L = labelled(widgets.IntText(value=0, description="lmax_L"), "18em")
+        self.lmax_L_hint = widgets.HTML("<span style='color:#515a5a'>&nbsp;0 = the experiment's largest ℓ_max</span>")
         self.units = widgets.ToggleButtons(
             options=[("φ: [L(L+1)]² C_L/2π", "phi"), ("κ: C_L^κκ", "kappa")],
             value="phi",
@@ -73,7 +74,8 @@ class EstimatorNoiseSection(Section):
                 widgets.HBox(
                     [widgets.Label("estimators", layout=widgets.Layout(width="6em")), *self.estimator_boxes.values()]
                 ),  # fmt: skip
-                widgets.HBox([self.lmax_L, self.component]),
+                widgets.HBox([self.lmax_L, self.lmax_L_hint]),
+                self.component,
                 self.units,
             ],
             outputs=[widgets.HBox([self.view.widget, self.table])],

@@ -59,11 +59,11 @@ class SkySection(Section):
         self._maps_lock = threading.Lock()
         self.deflection_rms_arcmin = None
 
-        self.nside = labelled(widgets.Dropdown(options=list(NSIDES), value=128, description="nside"), "14em")
+        self.nside = labelled(widgets.Dropdown(options=list(NSIDES), value=128, description="nside"), "18em")
         self.nside.add_class("lensrec-sky-nside")
-        self.lmax = labelled(widgets.IntText(value=256, description="lmax"), "14em")
+        self.lmax = labelled(widgets.IntText(value=256, description="lmax"), "18em")
         self.lmax.add_class("lensrec-sky-lmax")
-        self.seed = labelled(widgets.IntText(value=0, description="seed"), "14em")
+        self.seed = labelled(widgets.IntText(value=0, description="seed"), "18em")
         self.noise = widgets.Checkbox(value=True, description="add instrument noise", indent=False)
         self.mask = labelled(widgets.Dropdown(options=list(MASKS.items()), value="none", description="mask"), "18em")
         self.b_min = labelled(widgets.FloatText(value=20.0, description="cut |b| < (deg)"), "18em")
@@ -80,9 +80,9 @@ class SkySection(Section):
                                            style={"button_width": "3.2em"})  # fmt: skip
         self.field.add_class("lensrec-sky-field")
         self.zoom_lon = labelled(widgets.FloatSlider(value=0.0, min=-180, max=180, step=1, continuous_update=False,
-                                                     description="zoom centre lon (deg)"), "26em")  # fmt: skip
+                                                     description="zoom lon (deg)"), "26em")  # fmt: skip
         self.zoom_lat = labelled(widgets.FloatSlider(value=-60.0, min=-90, max=90, step=1, continuous_update=False,
-                                                     description="zoom centre lat (deg)"), "26em")  # fmt: skip
+                                                     description="zoom lat (deg)"), "26em")  # fmt: skip
         self.zoom_size = labelled(widgets.FloatSlider(value=20.0, min=1, max=90, step=1, continuous_update=False,
                                                       description="zoom size (deg)"), "26em")  # fmt: skip
         self.view = FigureView(MAP_FIGURE, name="sky-maps")

@@ -732,7 +732,10 @@ def simulate_sky(experiment, spectra=None, nside: int = 512, lmax: int | None = 
     r : float
         Tensor-to-scalar ratio added to the unlensed spectra (≥ 0); default 0.
     lmax_margin : int
-        Extra multipoles of the unlensed fields and φ beyond ``lmax`` (≥ 0); default 1000.
+        Extra multipoles of the unlensed fields and φ beyond ``lmax`` (≥ 0); default 1000. Lensed BB
+        near ``lmax`` misses the E and φ beyond the margin: with 1000 it is low by ≈ 1.2% at ℓ ≈ lmax,
+        0.3% at lmax − 500 and < 0.1% below lmax − 1000 (measured at lmax 2000 against margin 2000);
+        TT, EE and TE are affected far less.
     noise : bool
         Add instrument noise (default True): white pixel noise of the experiment's µK-arcmin levels, or,
         if it has a 1/f knee, a harmonic Gaussian field with ``experiment.noise_spectrum(field, lmax,

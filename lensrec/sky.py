@@ -734,7 +734,7 @@ def simulate_sky(experiment, spectra=None, nside: int = 512, lmax: int | None = 
     lmax_margin : int
         Extra multipoles of the unlensed fields and φ beyond ``lmax`` (≥ 0); default 1000. Lensed BB
         near ``lmax`` misses the E and φ beyond the margin: with 1000 it is low by ≈ 1.2% at ℓ ≈ lmax,
-        0.3% at lmax − 500 and < 0.1% below lmax − 1000 (measured at lmax 2000 against margin 2000);
+        ≈ 0.5% at lmax − 500 and ≈ 0.1% at lmax − 1000 (measured at lmax 2000 against margin 2000);
         TT, EE and TE are affected far less.
     noise : bool
         Add instrument noise (default True): white pixel noise of the experiment's µK-arcmin levels, or,

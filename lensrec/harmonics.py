@@ -157,7 +157,7 @@ def truncate_alm(alm, lmax_out: int, lmax_in: int | None = None) -> np.ndarray:
     start_in = start_out = 0
     for m in range(lmax_out + 1):
         count = lmax_out - m + 1
-        out[..., start_out:start_out + count] = alm[..., start_in:start_in + count]
+        out[..., start_out : start_out + count] = alm[..., start_in : start_in + count]
         start_out += count
         start_in += lmax_in - m + 1
     return out
@@ -215,8 +215,9 @@ def healpix_geometry(nside: int) -> dict:
 
 
 # ---------------------------------------------------------------------------------- HEALPix transforms
-def alm2map(alm, nside: int, lmax: int, spin: int = 0, nthreads: int | None = None,
-            allow_high_lmax: bool = False) -> np.ndarray:
+def alm2map(
+    alm, nside: int, lmax: int, spin: int = 0, nthreads: int | None = None, allow_high_lmax: bool = False
+) -> np.ndarray:
     """Synthesise HEALPix RING maps from harmonic coefficients (healpy's ``alm2map`` / ``alm2map_spin``).
 
     Parameters
@@ -277,14 +278,22 @@ def _synthesis_healpix(alm: np.ndarray, nside: int, lmax: int, spin: int, nthrea
     geometry = healpix_geometry(nside)
     if spin == 0:
         for k in range(alm.shape[0]):
-            sht.synthesis(alm=alm[k:k + 1], lmax=lmax, spin=0, nthreads=nthreads, map=out[k:k + 1],
-                          theta_interpol=True, **geometry)
+            sht.synthesis(
+                alm=alm[k : k + 1],
+                lmax=lmax,
+                spin=0,
+                nthreads=nthreads,
+                map=out[k : k + 1],
+                theta_interpol=True,
+                **geometry,
+            )
     else:
         sht.synthesis(alm=alm, lmax=lmax, spin=spin, nthreads=nthreads, map=out, theta_interpol=True, **geometry)
 
 
-def adjoint_alm2map(maps, lmax: int, spin: int = 0, nthreads: int | None = None,
-                    allow_high_lmax: bool = False) -> np.ndarray:
+def adjoint_alm2map(
+    maps, lmax: int, spin: int = 0, nthreads: int | None = None, allow_high_lmax: bool = False
+) -> np.ndarray:
     """The exact adjoint (transpose) of :func:`alm2map`: a_ℓm = Σ_p Y*_ℓm(p) m(p), with no pixel weight.
 
     Parameters
@@ -317,15 +326,24 @@ def adjoint_alm2map(maps, lmax: int, spin: int = 0, nthreads: int | None = None,
     if spin == 0:
         out = np.empty((array.shape[0], nalm(lmax)), dtype=np.complex128)
         for k in range(array.shape[0]):
-            sht.adjoint_synthesis(map=array[k:k + 1], lmax=lmax, spin=0, nthreads=nthreads, alm=out[k:k + 1],
-                                  theta_interpol=True, **geometry)
+            sht.adjoint_synthesis(
+                map=array[k : k + 1],
+                lmax=lmax,
+                spin=0,
+                nthreads=nthreads,
+                alm=out[k : k + 1],
+                theta_interpol=True,
+                **geometry,
+            )
         return out[0] if was_1d else out
-    return sht.adjoint_synthesis(map=np.ascontiguousarray(array), lmax=lmax, spin=spin, nthreads=nthreads,
-                                 theta_interpol=True, **geometry)
+    return sht.adjoint_synthesis(
+        map=np.ascontiguousarray(array), lmax=lmax, spin=spin, nthreads=nthreads, theta_interpol=True, **geometry
+    )
 
 
-def map2alm(maps, lmax: int, spin: int = 0, iterations: int = 3, nthreads: int | None = None,
-            allow_high_lmax: bool = False) -> np.ndarray:
+def map2alm(
+    maps, lmax: int, spin: int = 0, iterations: int = 3, nthreads: int | None = None, allow_high_lmax: bool = False
+) -> np.ndarray:
     """Harmonic analysis of HEALPix maps by Jacobi iteration, as ``healpy.map2alm(iter=n, use_weights=False)``.
 
     With w = 4π/npix and A the synthesis operator, a⁰ = w Aᵀ m, then ``iterations`` times
@@ -401,8 +419,9 @@ def alm2map_tqu(alm, nside: int, lmax: int, nthreads: int | None = None, allow_h
     return out
 
 
-def map2alm_tqu(maps, lmax: int, iterations: int = 3, nthreads: int | None = None,
-                allow_high_lmax: bool = False) -> np.ndarray:
+def map2alm_tqu(
+    maps, lmax: int, iterations: int = 3, nthreads: int | None = None, allow_high_lmax: bool = False
+) -> np.ndarray:
     """(T, Q, U) HEALPix maps to (T, E, B) coefficients, as ``healpy.map2alm(maps, iter=3, use_weights=False)``.
 
     Parameters
@@ -529,11 +548,13 @@ class GLGrid:
         if spin == 0:
             out = np.empty((array.shape[0], self.ntheta, self.nphi))
             for k in range(array.shape[0]):
-                sht.synthesis_2d(alm=array[k:k + 1], lmax=lmax, spin=0, geometry="GL", nthreads=nthreads,
-                                 map=out[k:k + 1])
+                sht.synthesis_2d(
+                    alm=array[k : k + 1], lmax=lmax, spin=0, geometry="GL", nthreads=nthreads, map=out[k : k + 1]
+                )
             return out
-        return sht.synthesis_2d(alm=array, lmax=lmax, spin=spin, geometry="GL", ntheta=self.ntheta,
-                                nphi=self.nphi, nthreads=nthreads)
+        return sht.synthesis_2d(
+            alm=array, lmax=lmax, spin=spin, geometry="GL", ntheta=self.ntheta, nphi=self.nphi, nthreads=nthreads
+        )
 
     def analysis(self, maps, lmax: int, spin: int = 0, nthreads: int | None = None) -> np.ndarray:
         """Grid maps of shape (ncomp, ntheta, nphi) to coefficients, shape (ncomp, nalm), by exact quadrature.
@@ -552,8 +573,9 @@ class GLGrid:
         if spin == 0:
             out = np.empty((array.shape[0], nalm(lmax)), dtype=np.complex128)
             for k in range(array.shape[0]):
-                sht.analysis_2d(map=array[k:k + 1], lmax=lmax, spin=0, geometry="GL", nthreads=nthreads,
-                                alm=out[k:k + 1])
+                sht.analysis_2d(
+                    map=array[k : k + 1], lmax=lmax, spin=0, geometry="GL", nthreads=nthreads, alm=out[k : k + 1]
+                )
             return out
         return sht.analysis_2d(map=array, lmax=lmax, spin=spin, geometry="GL", nthreads=nthreads)
 
@@ -584,8 +606,9 @@ def gl_grid_for_band_limits(lmax: int, lmax_field: int) -> GLGrid:
 
 
 # ---------------------------------------------------------------------------------- arbitrary positions
-def alm2positions(alm, theta, phi, spin: int = 0, lmax: int | None = None, epsilon: float = 1e-7,
-                  nthreads: int | None = None) -> np.ndarray:
+def alm2positions(
+    alm, theta, phi, spin: int = 0, lmax: int | None = None, epsilon: float = 1e-7, nthreads: int | None = None
+) -> np.ndarray:
     """Evaluate a band-limited field at arbitrary points of the sphere (non-uniform synthesis).
 
     Parameters
@@ -642,14 +665,16 @@ def alm2positions(alm, theta, phi, spin: int = 0, lmax: int | None = None, epsil
     return out[0] if was_1d else out
 
 
-def _synthesis_at(alm: np.ndarray, loc: np.ndarray, spin: int, lmax: int, epsilon: float, nthreads: int,
-                  gradient_only: bool = False) -> np.ndarray:
+def _synthesis_at(
+    alm: np.ndarray, loc: np.ndarray, spin: int, lmax: int, epsilon: float, nthreads: int, gradient_only: bool = False
+) -> np.ndarray:
     """ducc0 non-uniform synthesis on validated input; ``gradient_only`` skips an all-zero curl part
     (ducc0's gradient-only mode, which is not faster at every size)."""
     sht = _ducc_sht()
     if loc.shape[0] == 0:
         return np.empty((1 if spin == 0 else 2, 0))
     if spin > 0 and gradient_only:
-        return sht.synthesis_general(alm=alm[:1], spin=spin, lmax=lmax, loc=loc, epsilon=epsilon,
-                                     nthreads=nthreads, mode="GRAD_ONLY")
+        return sht.synthesis_general(
+            alm=alm[:1], spin=spin, lmax=lmax, loc=loc, epsilon=epsilon, nthreads=nthreads, mode="GRAD_ONLY"
+        )
     return sht.synthesis_general(alm=alm, spin=spin, lmax=lmax, loc=loc, epsilon=epsilon, nthreads=nthreads)

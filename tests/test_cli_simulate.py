@@ -9,8 +9,21 @@ import lensrec
 from lensrec.cli import main
 from lensrec.io import read_alm, read_maps, write_maps
 
-ARGS = ["simulate", "--experiment", "deep_highland", "--nside", "64", "--lmax", "128", "--lmax-margin", "100",
-        "--seed", "3", "--nthreads", "2"]
+ARGS = [
+    "simulate",
+    "--experiment",
+    "deep_highland",
+    "--nside",
+    "64",
+    "--lmax",
+    "128",
+    "--lmax-margin",
+    "100",
+    "--seed",
+    "3",
+    "--nthreads",
+    "2",
+]
 
 
 def test_simulate_writes_maps_phi_and_provenance(tmp_path, capsys):

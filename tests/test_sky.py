@@ -23,7 +23,9 @@ def band_powers(cl, edges):
 
 def band_sigma(variance_per_ell, edges, nsims):
     """σ of a bin mean from the per-ℓ variance of one C_ℓ estimate."""
-    return np.array([np.sqrt(variance_per_ell[lo:hi].sum()) / (hi - lo) for lo, hi in zip(edges[:-1], edges[1:], strict=True)]) / np.sqrt(nsims)
+    return np.array(
+        [np.sqrt(variance_per_ell[lo:hi].sum()) / (hi - lo) for lo, hi in zip(edges[:-1], edges[1:], strict=True)]
+    ) / np.sqrt(nsims)
 
 
 # ------------------------------------------------------------------------------ spectra against camb
@@ -38,8 +40,9 @@ def lensed_sims():
     experiment = lensrec.Experiment(name="no beam", noise_temperature=0.0, beam_fwhm=0.0)
     spectra = {key: [] for key in ("TT", "EE", "BB", "TE", "PP")}
     for index in range(NSIMS_CAMB):
-        result = lensrec.simulate_sky(experiment, nside=NSIDE_CAMB, lmax=LMAX_CAMB, seed=11, index=index,
-                                      noise=False, nthreads=2)
+        result = lensrec.simulate_sky(
+            experiment, nside=NSIDE_CAMB, lmax=LMAX_CAMB, seed=11, index=index, noise=False, nthreads=2
+        )
         cls = healpy.alm2cl(np.array(result.lensed_alm), lmax=LMAX_CAMB)  # TT EE BB TE EB TB
         for key, row in zip(("TT", "EE", "BB", "TE"), (0, 1, 2, 3), strict=True):
             spectra[key].append(cls[row])
@@ -51,7 +54,7 @@ def camb_comparison(measured, theory, key, fiducial):
     lensed = fiducial.lensed
     ell = np.arange(LMAX_CAMB + 1)
     if key == "TE":
-        variance = (lensed["TT"][: LMAX_CAMB + 1] * lensed["EE"][: LMAX_CAMB + 1] + lensed["TE"][: LMAX_CAMB + 1] ** 2)
+        variance = lensed["TT"][: LMAX_CAMB + 1] * lensed["EE"][: LMAX_CAMB + 1] + lensed["TE"][: LMAX_CAMB + 1] ** 2
         scale = band_powers(np.sqrt(lensed["TT"][: LMAX_CAMB + 1] * lensed["EE"][: LMAX_CAMB + 1]), EDGES)
     else:
         variance = 2 * theory[: LMAX_CAMB + 1] ** 2
@@ -88,7 +91,9 @@ def test_lensed_bb_matches_camb(lensed_sims, fiducial):
     deviation, sigma, scale = camb_comparison(lensed_sims["BB"], theory, "BB", fiducial)
     in_sigma = deviation / sigma
     print("lensed BB deviation per bin in sigma:", np.round(in_sigma, 2).tolist())
-    assert np.all(np.abs(deviation) < 4 * sigma + 1e-2 * scale), list(zip(EDGES[:-1], np.round(in_sigma, 2), strict=True))
+    assert np.all(np.abs(deviation) < 4 * sigma + 1e-2 * scale), list(
+        zip(EDGES[:-1], np.round(in_sigma, 2), strict=True)
+    )
     # and the B modes are there at all: the binned power is within 5% of camb everywhere (cosmic variance
     # per bin < 1.3% for 3 sims)
     assert np.all(np.abs(deviation / scale) < 0.05)
@@ -113,8 +118,9 @@ def test_zero_phi_reproduces_the_unlensed_maps(fiducial):
     # truncated to lmax, up to the non-uniform synthesis accuracy epsilon (an L2 relative bound)
     experiment = lensrec.Experiment(name="beam only", noise_temperature=0.0, beam_fwhm=30.0)
     spectra = fiducial.with_phi(np.zeros(fiducial.lmax + 1))
-    result = lensrec.simulate_sky(experiment, spectra, nside=64, lmax=150, lmax_margin=100, seed=3, noise=False,
-                                  nthreads=2)
+    result = lensrec.simulate_sky(
+        experiment, spectra, nside=64, lmax=150, lmax_margin=100, seed=3, noise=False, nthreads=2
+    )
     unlensed = truncate_alm(result.unlensed_alm, 150)
     assert np.linalg.norm(result.lensed_alm - unlensed) < 1e-7 * np.linalg.norm(unlensed)
     expected = harmonics.alm2map_tqu(harmonics.scale_alm(unlensed, experiment.beam(150)), 64, 150, nthreads=2)
@@ -177,7 +183,7 @@ def test_dipole_deflection_moves_points_along_meridians():
     rng = np.random.default_rng(5)
     cl = np.exp(-((ell / 20.0) ** 2))
     t = sky.gaussian_alm(cl, lmax_in, rng)
-    t[lmax_in + 1:] = 0  # axisymmetric field (m = 0 only) so T depends on theta alone
+    t[lmax_in + 1 :] = 0  # axisymmetric field (m = 0 only) so T depends on theta alone
     phi = np.zeros(nalm(lmax_in), complex)
     amplitude = 0.02  # radians of phi in the Y_10 coefficient
     phi[1] = amplitude
@@ -191,8 +197,9 @@ def test_dipole_deflection_moves_points_along_meridians():
     # the peak (C_l = e^{-(l/20)^2}), and epsilon = 1e-12: tolerance 1e-6
     assert np.max(np.abs(ours - direct)) < 1e-6 * np.max(np.abs(direct))
     # the opposite displacement is far off (the check is sensitive to the sign of d = grad phi)
-    wrong = harmonics.alm2positions(t, theta + slope * np.sin(theta), np.zeros_like(theta), lmax=lmax_in,
-                                    epsilon=1e-12, nthreads=1)
+    wrong = harmonics.alm2positions(
+        t, theta + slope * np.sin(theta), np.zeros_like(theta), lmax=lmax_in, epsilon=1e-12, nthreads=1
+    )
     assert np.max(np.abs(ours - wrong)) > 1e-2 * np.max(np.abs(direct))
 
 
@@ -269,9 +276,15 @@ def test_one_over_f_noise_spectrum():
     # harmonic noise with the experiment's (beam-convolved) N_l including 1 + (l/l_knee)^alpha
     # (Knox 1995 form, CONVENTIONS.md): binned power within 4 sigma of cosmic variance plus 1% for the
     # HEALPix analysis (map2alm with 3 iterations at lmax = 2 nside)
-    experiment = lensrec.Experiment(name="knee", noise_temperature=10.0, beam_fwhm=5.0, ell_knee_temperature=80.0,
-                                    alpha_knee_temperature=-2.0, ell_knee_polarization=40.0,
-                                    alpha_knee_polarization=-1.5)
+    experiment = lensrec.Experiment(
+        name="knee",
+        noise_temperature=10.0,
+        beam_fwhm=5.0,
+        ell_knee_temperature=80.0,
+        alpha_knee_temperature=-2.0,
+        ell_knee_polarization=40.0,
+        alpha_knee_polarization=-1.5,
+    )
     noise, result = noise_only(experiment, lmax=128)
     assert result.settings["noise_model"] == "one_over_f"
     alm = harmonics.map2alm_tqu(noise, 128, nthreads=2)
@@ -311,8 +324,7 @@ def test_mask_is_applied():
 
 # ---------------------------------------------------------------------------------------- seeding
 def small_sky(seed, index=0):
-    return lensrec.simulate_sky("deep_highland", nside=32, lmax=64, lmax_margin=64, seed=seed, index=index,
-                                nthreads=2)
+    return lensrec.simulate_sky("deep_highland", nside=32, lmax=64, lmax_margin=64, seed=seed, index=index, nthreads=2)
 
 
 def test_same_seed_is_bit_identical_and_different_seeds_differ():
@@ -333,9 +345,18 @@ def test_sim_index_is_reproducible_alone():
 def test_settings_reproduce_the_simulation():
     a = small_sky(12)
     s = a.settings
-    again = lensrec.simulate_sky(lensrec.Experiment(**s["experiment"]), nside=s["nside"], lmax=s["lmax"],
-                                 lmax_margin=s["lmax_margin"], seed=s["seed"], index=s["index"], r=s["r"],
-                                 epsilon=s["epsilon"], noise=s["noise"], nthreads=2)
+    again = lensrec.simulate_sky(
+        lensrec.Experiment(**s["experiment"]),
+        nside=s["nside"],
+        lmax=s["lmax"],
+        lmax_margin=s["lmax_margin"],
+        seed=s["seed"],
+        index=s["index"],
+        r=s["r"],
+        epsilon=s["epsilon"],
+        noise=s["noise"],
+        nthreads=2,
+    )
     assert np.array_equal(a.maps, again.maps)
     assert a.maps.flags.writeable is False
     # with another thread count the random fields are bit-identical and the transforms agree to rounding

@@ -25,8 +25,12 @@ def add_arguments(parser) -> None:
     parser.add_argument("--nside", type=int, required=True, help="HEALPix nside of the maps (a power of two)")
     parser.add_argument("--lmax", type=int, required=True, help="band limit of the lensed sky (<= 3*nside-1)")
     parser.add_argument("--index", type=int, default=0, help="simulation index within the seed (default: %(default)s)")
-    parser.add_argument("--lmax-margin", type=int, default=DEFAULT_LMAX_MARGIN,
-                        help="extra multipoles of the unlensed fields beyond lmax (default: %(default)s)")
+    parser.add_argument(
+        "--lmax-margin",
+        type=int,
+        default=DEFAULT_LMAX_MARGIN,
+        help="extra multipoles of the unlensed fields beyond lmax (default: %(default)s)",
+    )
     parser.add_argument("--no-noise", action="store_true", help="noise-free maps")
     parser.add_argument("--mask", default=None, help="HEALPix FITS mask (values in [0, 1], same nside)")
     parser.add_argument("--r", type=float, default=0.0, help="tensor-to-scalar ratio (default: %(default)s)")
@@ -48,9 +52,18 @@ def run(args) -> int:
     timings["inputs"] = time.perf_counter() - start
 
     start = time.perf_counter()
-    result = lensrec.simulate_sky(experiment, nside=args.nside, lmax=args.lmax, seed=args.seed, index=args.index,
-                                  r=args.r, lmax_margin=args.lmax_margin, noise=not args.no_noise, mask=mask,
-                                  nthreads=args.nthreads)
+    result = lensrec.simulate_sky(
+        experiment,
+        nside=args.nside,
+        lmax=args.lmax,
+        seed=args.seed,
+        index=args.index,
+        r=args.r,
+        lmax_margin=args.lmax_margin,
+        noise=not args.no_noise,
+        mask=mask,
+        nthreads=args.nthreads,
+    )
     timings["simulation"] = time.perf_counter() - start
 
     start = time.perf_counter()
@@ -59,8 +72,14 @@ def run(args) -> int:
     write_alm(paths["phi_input_alm.fits"], result.phi_alm, force=args.force)
     timings["writing"] = time.perf_counter() - start
     arguments = {key: value for key, value in vars(args).items() if not key.startswith("_")}
-    record = provenance("simulate", arguments=arguments, experiment=experiment, seed=args.seed, timings=timings,
-                        extra={"settings": dict(result.settings), "outputs": list(OUTPUTS)})
+    record = provenance(
+        "simulate",
+        arguments=arguments,
+        experiment=experiment,
+        seed=args.seed,
+        timings=timings,
+        extra={"settings": dict(result.settings), "outputs": list(OUTPUTS)},
+    )
     write_json(paths["run.json"], record, force=args.force)
     print(f"wrote {', '.join(paths.values())} ({timings['simulation']:.1f} s simulation)")
     return 0

@@ -186,7 +186,7 @@ def workbench_page(jupyterlab, browser, artifacts_dir):
         page.screenshot(path=os.path.join(artifacts_dir, "workbench-failed-to-open.png"))
         outputs = page.locator(".jp-OutputArea").all_inner_texts()
         raise AssertionError(f"the workbench did not open; cell outputs: {outputs}\n{jupyterlab.log()}") from None
-    page.evaluate("() => window.jupyterapp.commands.execute('application:toggle-left-area')")
+    page.evaluate("() => { window.jupyterapp.commands.execute('application:toggle-left-area'); }")
     return page
 
 

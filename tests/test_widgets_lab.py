@@ -1,7 +1,12 @@
 """The ``lensrec lab`` command: JupyterLab on loopback only, with the workbench notebook open."""
 
+import json
 import os
+import re
+import subprocess
 import sys
+import time
+import urllib.request
 
 import pytest
 
@@ -9,11 +14,26 @@ from lensrec.cli import main
 from lensrec.commands.lab import WORKBENCH_NOTEBOOK, lab_command
 
 
+class socket_port:
+    """A free TCP port on 127.0.0.1 (bound and released)."""
+
+    def __enter__(self):
+        import socket
+
+        self._sock = socket.socket()
+        self._sock.bind(("127.0.0.1", 0))
+        return self._sock.getsockname()[1]
+
+    def __exit__(self, *exc):
+        self._sock.close()
+
+
 def test_lab_serves_the_workbench_on_loopback_only():
     command, folder = lab_command()
     assert command[:3] == [sys.executable, "-m", "jupyterlab"]
     assert "--ServerApp.ip=127.0.0.1" in command
-    assert command[-1] == WORKBENCH_NOTEBOOK and os.path.isfile(command[-1])
+    assert os.path.isfile(WORKBENCH_NOTEBOOK)
+    assert "--LabApp.default_url=/lab/tree/workbench.ipynb" in command
     assert folder == os.path.dirname(WORKBENCH_NOTEBOOK)
     assert f"--ServerApp.root_dir={folder}" in command
     assert ("--allow-root" in command) == (os.geteuid() == 0)
@@ -49,3 +69,36 @@ def test_lab_dry_run_prints_the_command(capsys):
 def test_lab_reports_a_missing_notebook(capsys):
     assert main(["lab", "--notebook", "/no/such/file.ipynb", "--dry-run"]) == 2
     assert "does not exist" in capsys.readouterr().err
+
+
+def test_lab_starts_jupyterlab_with_the_workbench_open(tmp_path):
+    notebook = tmp_path / "workbench.ipynb"
+    with open(WORKBENCH_NOTEBOOK) as handle:
+        notebook.write_text(handle.read())
+    with socket_port() as port:
+        pass
+    env = dict(os.environ, JUPYTER_CONFIG_DIR=str(tmp_path / "config"), JUPYTER_RUNTIME_DIR=str(tmp_path / "run"),
+               JUPYTERLAB_WORKSPACES_DIR=str(tmp_path / "ws"), IPYTHONDIR=str(tmp_path / "ipython"))  # fmt: skip
+    log = tmp_path / "lab.log"
+    with open(log, "wb") as out:
+        process = subprocess.Popen([sys.executable, "-m", "lensrec.cli", "lab", "--no-browser", "--port", str(port),
+                                    "--notebook", str(notebook)], stdout=out, stderr=subprocess.STDOUT,
+                                   stdin=subprocess.DEVNULL, env=env)  # fmt: skip
+        try:
+            url = None
+            deadline = time.monotonic() + 90
+            while url is None and time.monotonic() < deadline and process.poll() is None:
+                found = re.search(rf"http://127\.0\.0\.1:{port}/lab/tree/workbench\.ipynb\?token=\w+", log.read_text())
+                url = found.group(0) if found else None
+                time.sleep(0.5)
+            assert url, f"no workbench URL printed:\n{log.read_text()[-3000:]}"
+            opener = urllib.request.build_opener(urllib.request.ProxyHandler({}))
+            with opener.open(url, timeout=10) as response:
+                assert response.status == 200
+            token = url.rsplit("=", 1)[1]
+            status = opener.open(urllib.request.Request(f"http://127.0.0.1:{port}/api/status",
+                                                        headers={"Authorization": f"token {token}"}), timeout=10)  # fmt: skip
+            assert "started" in json.loads(status.read())
+        finally:
+            process.terminate()  # the command became the JupyterLab process, so this stops the server
+            process.wait(30)

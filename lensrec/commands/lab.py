@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import os
 import shlex
-import subprocess
 import sys
+import urllib.parse
 
 HELP = "start JupyterLab on 127.0.0.1 (this machine only) with the workbench notebook open"
 EXAMPLES = """examples:
@@ -48,7 +48,7 @@ def lab_command(notebook: str | None = None, port: int = 8888, open_browser: boo
         raise ValueError(f"--notebook must be a .ipynb file, got {path!r}")
     if isinstance(port, bool) or not isinstance(port, int) or not 1 <= port <= 65535:
         raise ValueError(f"--port must be an integer between 1 and 65535, got {port!r}")
-    folder = os.path.dirname(path)
+    folder, name = os.path.split(path)
     command = [
         sys.executable,
         "-m",
@@ -57,10 +57,11 @@ def lab_command(notebook: str | None = None, port: int = 8888, open_browser: boo
         f"--ServerApp.port={port}",
         f"--ServerApp.root_dir={folder}",
         f"--ServerApp.open_browser={open_browser}",
+        # the printed URL and the browser both open the notebook itself
+        f"--LabApp.default_url=/lab/tree/{urllib.parse.quote(name)}",
     ]
     if hasattr(os, "geteuid") and os.geteuid() == 0:
         command.append("--allow-root")
-    command.append(path)
     return command, folder
 
 
@@ -69,8 +70,8 @@ def run(args) -> int:
     if args.dry_run:
         print(f"cd {shlex.quote(folder)} && {shlex.join(command)}")
         return 0
-    print(f"lensrec lab: serving {folder} on 127.0.0.1 (stop with Ctrl-C)", file=sys.stderr)
-    try:
-        return subprocess.call(command, cwd=folder)
-    except KeyboardInterrupt:
-        return 0
+    print(f"lensrec lab: serving {folder} on 127.0.0.1 (stop with Ctrl-C)", file=sys.stderr, flush=True)
+    os.chdir(folder)
+    # become the JupyterLab process, so Ctrl-C and termination signals reach the server directly
+    os.execv(command[0], command)
+    return 1  # not reached

@@ -441,3 +441,17 @@ def test_spin1_and_spin3_lensing_commute_with_rotations(rng, spin):
     lensed_rotated = sky.lens_alm(rotate(field), rotate(phi)[0], lmax_out, spin=spin, epsilon=1e-12, nthreads=2)
     error = np.max(np.abs(lensed_rotated - rotate(lensed))) / np.max(np.abs(lensed))
     assert error < 2e-5
+
+
+def test_pixel_window_arrays_multiply_the_signal():
+    # a window w_l multiplies the lensed a_lm of T (first array) and of E, B (second) before synthesis;
+    # constant windows therefore scale the noise-free maps exactly (to rounding)
+    common = dict(nside=32, lmax=64, lmax_margin=64, seed=4, noise=False, nthreads=2)
+    plain = lensrec.simulate_sky("deep_highland", **common)
+    windows = (np.full(65, 0.5), np.full(65, 0.25))
+    windowed = lensrec.simulate_sky("deep_highland", pixel_window=windows, **common)
+    assert np.allclose(windowed.maps[0], 0.5 * plain.maps[0], rtol=1e-12, atol=1e-12)
+    assert np.allclose(windowed.maps[1:], 0.25 * plain.maps[1:], rtol=1e-12, atol=1e-12)
+    assert windowed.settings["pixel_window"] is True and plain.settings["pixel_window"] is False
+    with pytest.raises(ValueError, match="pixel_window\\[1\\] has 10 entries"):
+        lensrec.simulate_sky("deep_highland", pixel_window=(np.ones(65), np.ones(10)), **common)

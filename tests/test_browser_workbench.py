@@ -284,3 +284,13 @@ def test_simulate_a_small_sky_and_view_it(workbench_page, artifacts_dir):
     page.locator(".lensrec-sky-field button", has_text="κ").click()
     _wait_src_change(page, "img.lensrec-plot-sky-maps", before)
     _screenshot(page, artifacts_dir, "workbench-sky.png")
+
+
+def test_delensing_forecast_appears(workbench_page, artifacts_dir):
+    page = workbench_page
+    _open_tab(page, "Delensing")
+    page.locator("button.lensrec-forecast").click()
+    page.wait_for_selector("img.lensrec-plot-delensing-bb[src^='blob:']", state="visible", timeout=120_000)
+    summary = page.locator(".lensrec-delensing-summary").inner_text()
+    assert "A_lens^res" in summary and "σ(r), delensed" in summary
+    _screenshot(page, artifacts_dir, "workbench-delensing.png")

@@ -23,19 +23,29 @@ def library_function(name: str):
     return getattr(lensrec, name, None)
 
 
+PURPOSES = {
+    "reconstruction": "Reconstruct the lensing convergence from the simulated sky with a chosen estimator and compare "
+    "it with the input, as maps and as spectra.",
+    "validation": "Run a small suite of simulations and reconstructions to measure the biases of the lensing "
+    "spectrum (mean field, N0, N1), the bandpowers against the input and the lensing amplitude.",
+}
+
+
 class MissingLibrarySection(Section):
     """Stands in for a section whose lensrec functions are not in this installation."""
 
-    def __init__(self, state, title: str, name: str, needs: tuple[str, ...]):
+    def __init__(self, state, title: str, name: str, needs: tuple[str, ...], purpose: str = ""):
         self.title, self.name = title, name
         super().__init__(state)
-        missing = ", ".join(f"<code>lensrec.{html.escape(n)}</code>" for n in needs)
+        missing = [n for n in needs if library_function(n) is None] or list(needs)
+        names = ", ".join(f"<code>lensrec.{html.escape(n)}</code>" for n in missing)
         self.note = widgets.HTML(
-            f"<p>This section needs {missing}, which this lensrec installation does not provide yet. "
-            "Update lensrec (<code>make install</code> in the repository) and restart the kernel to use it.</p>"
+            f"<p>{html.escape(purpose)}</p><p>This section needs {names}, which this lensrec installation does not "
+            "provide yet. Update lensrec (<code>make install</code> in the repository) and restart the kernel to "
+            "use it. The other sections work without it.</p>"
         )
         self.layout(controls=[self.note])
-        self.status.warn(f"{title} is unavailable: lensrec lacks {', '.join(needs)}.")
+        self.status.warn(f"{title} is unavailable: lensrec lacks {', '.join(missing)}.")
 
 
 class Workbench(widgets.VBox):
@@ -77,11 +87,14 @@ class Workbench(widgets.VBox):
             ("reconstruction", "Reconstruction", ("reconstruct",), None),
             ("delensing", "Delensing", ("delensing_forecast",),
              lambda: DelensingSection(self.state, nthreads=nthreads)),
-            ("validation", "Validation", ("run_suite",), None),
+            ("validation", "Validation", ("reconstruct", "run_validation_suite"), None),
         )  # fmt: skip
         for name, title, needs, build in plan:
             available = build is not None and all(library_function(n) is not None for n in needs)
-            self.sections[name] = build() if available else MissingLibrarySection(self.state, title, name, needs)
+            if available:
+                self.sections[name] = build()
+            else:
+                self.sections[name] = MissingLibrarySection(self.state, title, name, needs, PURPOSES[name])
         self.tabs = widgets.Tab(
             children=[s.panel for s in self.sections.values()], titles=[s.title for s in self.sections.values()]
         )

@@ -21,6 +21,8 @@ from .work import LongTask
 
 __all__ = ["DelensingSection"]
 
+TEMPLATE_NEEDS = ("reconstruct", "delens", "wiener_filter_phi")
+
 
 class DelensingSection(Section):
     title = "Delensing"
@@ -37,9 +39,13 @@ class DelensingSection(Section):
         self.forecast = None
         self.forecast_noise = None
         self.estimator = labelled(widgets.Dropdown(options=["MV"], value="MV", description="N0 of estimator"), "18em")
-        self.lmax = labelled(widgets.IntText(value=0, description="lmax (0 = default)"), "18em")
-        self.ell_min_b = labelled(widgets.IntText(value=0, description="ell_min_b (0 = ell_min)"), "18em")
-        self.r = labelled(widgets.FloatText(value=0.0, description="fiducial r"), "18em")
+        self.lmax = labelled(widgets.IntText(value=0, description="lmax"), "16em")
+        self.ell_min_b = labelled(widgets.IntText(value=0, description="ell_min_b"), "16em")
+        self.r = labelled(widgets.FloatText(value=0.0, description="fiducial r"), "16em")
+        self.hint = widgets.HTML(
+            "<span style='color:#515a5a'>0 means the default: lmax = min(ell_max_polarization, 1000), "
+            "ell_min_b = the experiment's ell_min.</span>"
+        )
         self.forecast_button = widgets.Button(description="Forecast", icon="play", button_style="primary")
         self.forecast_button.add_class("lensrec-forecast")
         self.task = LongTask(self.forecast_button, self.status, "Forecasting the delensed B modes", "delensing")
@@ -57,18 +63,20 @@ class DelensingSection(Section):
             controls=[
                 heading("Forecast from the reconstruction noise"),
                 widgets.HBox([self.estimator, self.lmax, self.ell_min_b, self.r]),
+                self.hint,
                 widgets.HBox([self.forecast_button, self.task.widget]),
             ],
             outputs=[widgets.HBox([self.view.widget, self.summary]), self.template_area],
         )
 
     def _template_area(self):
-        if getattr(lensrec, "lensing_b_template", None) is None or getattr(lensrec, "reconstruct", None) is None:
+        missing = [name for name in TEMPLATE_NEEDS if getattr(lensrec, name, None) is None]
+        if missing:
+            names = " and ".join(f"<code>lensrec.{name}</code>" for name in missing)
             return widgets.HTML(
-                "<p style='color:#515a5a'><b>B-mode template from the reconstructed map</b>: this lensrec "
-                "installation does not provide <code>lensrec.lensing_b_template</code> and "
-                "<code>lensrec.reconstruct</code> yet; update lensrec and restart the kernel to build templates "
-                "from a simulated sky.</p>"
+                "<p style='color:#515a5a;line-height:1.45'><b>B-mode template from the reconstructed map</b>: this "
+                f"lensrec installation does not provide {names} yet; update lensrec and restart the kernel to "
+                "build templates from a simulated sky.</p>"
             )
         return widgets.HTML()
 

@@ -167,3 +167,13 @@ def test_live_update_shows_errors():
     live.trigger()
     assert live.join(10)
     assert status.kind == "error" and "ell_min=30" in status.message
+
+
+def test_sections_whose_library_part_is_missing_say_what_they_need(monkeypatch):
+    monkeypatch.delattr(lensrec, "reconstruct", raising=False)
+    workbench = Workbench(experiment="deep_highland")
+    assert workbench.wait(60)
+    section = workbench["reconstruction"]
+    assert section.status.kind == "warning" and "lensrec lacks reconstruct" in section.status.message
+    assert "<code>lensrec.reconstruct</code>" in section.note.value
+    assert "Update lensrec" in section.note.value

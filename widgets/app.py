@@ -11,6 +11,7 @@ import lensrec
 from .delensing_panel import DelensingSection
 from .experiment_panel import ExperimentSection
 from .noise_panel import EstimatorNoiseSection
+from .reconstruction_panel import ReconstructionSection
 from .section import Section
 from .sky_panel import SkySection
 from .state import WorkbenchState
@@ -84,7 +85,8 @@ class Workbench(widgets.VBox):
              lambda: EstimatorNoiseSection(self.state, delay=delay, nthreads=nthreads)),
             ("sky", "Sky", ("simulate_sky", "deflection_maps", "latitude_mask", "cap_mask"),
              lambda: SkySection(self.state, nthreads=nthreads)),
-            ("reconstruction", "Reconstruction", ("reconstruct",), None),
+            ("reconstruction", "Reconstruction", ("reconstruct", "wiener_filter_phi", "deflection_maps"),
+             lambda: ReconstructionSection(self.state, nthreads=nthreads)),
             ("delensing", "Delensing", ("delensing_forecast",),
              lambda: DelensingSection(self.state, nthreads=nthreads)),
             ("validation", "Validation", ("reconstruct", "run_validation_suite"), None),

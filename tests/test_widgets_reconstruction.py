@@ -1,0 +1,114 @@
+"""Headless tests of the Reconstruction section: drawn maps and spectra are lensrec's, and errors are visible."""
+
+import functools
+
+import healpy
+import numpy as np
+import pytest
+
+import lensrec
+from lensrec import harmonics
+from lensrec.biases import alm_cross_spectrum
+from widgets import Workbench
+
+NSIDE, LMAX = 64, 128
+
+if not hasattr(lensrec, "reconstruct"):  # the section then shows what it needs instead (tested in test_widgets.py)
+    pytest.skip("this lensrec has no reconstruct()", allow_module_level=True)
+
+
+@pytest.fixture(scope="module")
+def app():
+    workbench = Workbench(experiment="deep_highland", nthreads=2)
+    sky = workbench["sky"]
+    sky.nside.value, sky.lmax.value, sky.seed.value = NSIDE, LMAX, 3
+    sky.simulate_button.click()
+    assert workbench.wait(120) and sky.status.kind == "ok", sky.status.message
+    section = workbench["reconstruction"]
+    section.estimator.value = "MV"
+    section.run_button.click()
+    assert workbench.wait(120) and section.status.kind == "ok", section.status.message
+    return workbench
+
+
+@pytest.fixture(scope="module")
+def expected(app):
+    """The same reconstruction computed here directly with lensrec."""
+    sky = app.state.sky
+    result = lensrec.reconstruct(sky.maps, app.state.sky_experiment, estimator="MV", lmax_L=LMAX, lmax=LMAX,
+                                 nthreads=2)  # fmt: skip
+    phi_input = harmonics.truncate_alm(sky.phi_alm, LMAX, sky.lmax_unlensed)
+    return result, phi_input
+
+
+def _mollweide(values):
+    # healpy's projector (reference library), as in healpy.mollview
+    projector = healpy.projector.MollweideProj(xsize=600)
+    image = np.array(projector.projmap(values, functools.partial(healpy.vec2pix, NSIDE)), dtype=float)
+    image[~np.isfinite(image)] = np.nan
+    return image
+
+
+def test_maps_are_the_input_and_the_wiener_filtered_reconstruction(app, expected):
+    result, phi_input = expected
+    drawn = app["reconstruction"].plotted()
+    kappa_input = lensrec.deflection_maps(phi_input, NSIDE, LMAX, nthreads=2).kappa
+    phi_wf = lensrec.wiener_filter_phi(result.phi_alm, result.n0["gradient"])
+    kappa_wf = lensrec.deflection_maps(phi_wf, NSIDE, LMAX, nthreads=2).kappa
+    # same inputs and thread count; 1e-12 relative covers rounding in the transforms
+    np.testing.assert_allclose(drawn["kappa_input"], _mollweide(kappa_input), rtol=1e-12, atol=1e-15)
+    np.testing.assert_allclose(drawn["kappa_wf"], _mollweide(kappa_wf), rtol=1e-9, atol=1e-12)
+    clim_input, clim_wf = drawn["clim"]
+    assert clim_input == clim_wf  # one colour scale for the comparison
+
+
+def test_spectra_are_the_library_spectra(app, expected):
+    result, phi_input = expected
+    drawn = app["reconstruction"].plotted()
+    L = np.arange(2, LMAX + 1)
+    cross = alm_cross_spectrum(result.phi_alm, phi_input, lmax=LMAX)[2:]
+    ratio = cross / alm_cross_spectrum(phi_input, lmax=LMAX)[2:]
+    np.testing.assert_array_equal(drawn["cross"][0], L)
+    np.testing.assert_allclose(drawn["cross"][1], ratio, rtol=1e-9)
+    weight = (L * (L + 1.0)) ** 2 / (2 * np.pi)
+    np.testing.assert_allclose(drawn["n0"][1], weight * result.n0["gradient"][2:], rtol=1e-12)
+    np.testing.assert_allclose(drawn["theory"][1], weight * lensrec.fiducial_spectra().phi[2 : LMAX + 1], rtol=1e-12)
+    assert app.state.reconstruction is app["reconstruction"].result
+
+
+def test_reconstruction_has_unit_response_to_the_input(app):
+    # A normalised quadratic estimator has unit response: <C_L^(φ̂φ)> = C_L^φφ (Hu & Okamoto 2002, ApJ 574, 566).
+    # Per L the ratio scatters with variance ≈ (1 + N0/C)/(2L+1) (Gaussian fields, common practice); the
+    # inverse-variance mean over 10 ≤ L ≤ lmax must be within 4σ of 1, plus 10% for the higher-order and
+    # N1-like response changes at this low band limit (from memory).
+    section = app["reconstruction"]
+    products = section.products
+    L = np.arange(10, LMAX + 1)
+    theory, n0 = products["theory"][L], products["n0"][L]
+    weights = (2 * L + 1) * theory / (theory + n0)
+    mean = np.sum(weights * products["cross_over_input"][L]) / np.sum(weights)
+    sigma = 1 / np.sqrt(np.sum(weights))
+    assert abs(mean - 1) < 4 * sigma + 0.10, (mean, sigma)
+
+
+def test_a_new_sky_withdraws_the_old_reconstruction(app):
+    section = app["reconstruction"]
+    app.state.sky = None  # what a new simulation does first, in effect: the old result no longer applies
+    assert section.result is None and app.state.reconstruction is None
+    assert "press <b>Reconstruct</b>" in section.maps_view.note.value or "No sky yet" in section.maps_view.note.value
+    assert section.run() is False
+    assert section.status.kind == "error" and "simulate one on the Sky tab" in section.status.message
+
+
+def test_too_high_lmax_L_is_reported():
+    workbench = Workbench(experiment="deep_highland", nthreads=2)
+    sky = workbench["sky"]
+    sky.nside.value, sky.lmax.value = 32, 64
+    sky.simulate_button.click()
+    assert workbench.wait(120)
+    section = workbench["reconstruction"]
+    section.lmax_L.value = 500
+    section.run_button.click()
+    assert workbench.wait(60)
+    assert section.status.kind == "error" and "lmax_L=500" in section.status.message
+    assert not section.run_button.disabled

@@ -1,0 +1,265 @@
+"""Section 4 – Reconstruction: the lensing convergence reconstructed from the simulated sky, against the input.
+
+Maps: the input κ and the Wiener-filtered reconstruction κ^WF (C_L^φφ/(C_L^φφ + N0_L) φ̂), both band-limited
+at lmax_L, in Mollweide views on one colour scale. Spectra (full sky): the cross-spectrum of the
+reconstruction with the input divided by the input's auto-spectrum (≈ 1 for a unit-response estimator), and
+the reconstruction's auto-spectrum minus the analytic N0 against the theory C_L^φφ, with N0 drawn.
+"""
+
+from __future__ import annotations
+
+import functools
+
+import healpy
+import ipywidgets as widgets
+import numpy as np
+
+import lensrec
+from lensrec import harmonics
+from lensrec.biases import alm_cross_spectrum
+
+from .plotting import COLORS, ESTIMATOR_COLORS, MAP_CMAP, FigureView, phi_plot_units, style_axes, symmetric_limit
+from .section import Section, labelled
+from .work import LongTask
+
+__all__ = ["ReconstructionSection", "band_average"]
+
+ESTIMATORS = ("MV", "TT", "TE", "EE", "TB", "EB")
+MAPS_FIGURE = (10.4, 3.4)
+SPECTRA_FIGURE = (10.4, 3.8)
+MOLLWEIDE_XSIZE = 600
+BANDS = 16
+
+
+def band_average(values, L_min: int, L_max: int, bands: int = BANDS):
+    """(band centres, (2L+1)-weighted band means) of ``values`` (indexed by L) over [L_min, L_max].
+
+    A display aid: per-L spectra of one realisation scatter by √(2/(2L+1)); bands make the trend visible.
+    """
+    values = np.asarray(values, dtype=float)
+    edges = np.unique(np.linspace(L_min, L_max + 1, bands + 1).astype(int))
+    centres, means = [], []
+    for low, high in zip(edges[:-1], edges[1:], strict=True):
+        L = np.arange(low, high)
+        weights = 2.0 * L + 1.0
+        part = values[low:high]
+        good = np.isfinite(part)
+        if good.any():
+            centres.append(float(np.sum(L[good] * weights[good]) / np.sum(weights[good])))
+            means.append(float(np.sum(part[good] * weights[good]) / np.sum(weights[good])))
+    return np.array(centres), np.array(means)
+
+
+class ReconstructionSection(Section):
+    title = "Reconstruction"
+    name = "reconstruction"
+    guide = (
+        "Reconstruct φ from the sky of the Sky tab with a quadratic estimator, filtered with the experiment the "
+        "sky was simulated with, up to the sky's lmax. Left: the input κ; right: the Wiener-filtered "
+        "reconstruction on the same colour scale. Spectra are full-sky and band-averaged for display."
+    )
+
+    def __init__(self, state, nthreads=None):
+        super().__init__(state)
+        self.nthreads = nthreads
+        self.result = None
+        self.products = None
+        self.estimator = labelled(widgets.Dropdown(options=list(ESTIMATORS), value="MV", description="estimator"),
+                                  "18em")  # fmt: skip
+        self.estimator.add_class("lensrec-reconstruction-estimator")
+        self.lmax_L = labelled(widgets.IntText(value=0, description="lmax_L"), "16em")
+        self.hint = widgets.HTML("<span style='color:#515a5a'>&nbsp;0 = the sky's lmax</span>")
+        self.run_button = widgets.Button(description="Reconstruct", icon="play", button_style="primary")
+        self.run_button.add_class("lensrec-reconstruct")
+        self.task = LongTask(self.run_button, self.status, "Reconstructing the lensing potential", "reconstruction")
+        self.tasks.append(self.task)
+        self.maps_view = FigureView(MAPS_FIGURE, name="reconstruction-maps")
+        self.spectra_view = FigureView(SPECTRA_FIGURE, name="reconstruction-spectra")
+        self._build_figures()
+
+        self.run_button.on_click(lambda _button: self.run())
+        state.observe(self._on_sky, names="sky")
+        self._on_sky({"new": state.sky})
+        self.layout(
+            controls=[widgets.HBox([self.estimator, self.lmax_L, self.hint]),
+                      widgets.HBox([self.run_button, self.task.widget])],
+            outputs=[self.maps_view.widget, self.spectra_view.widget],
+        )  # fmt: skip
+
+    # ------------------------------------------------------------------------------------ inputs
+    def _on_sky(self, change) -> None:
+        if self.result is not None:
+            self.status.warn("The sky has changed; the reconstruction shown before was of the previous one.")
+            self.result = self.products = None
+            self.state.reconstruction = None
+        if change["new"] is None:
+            message = "No sky yet: simulate one on the Sky tab, then press <b>Reconstruct</b> here."
+        else:
+            message = "Press <b>Reconstruct</b> to reconstruct the lensing potential of the current sky."
+        for view in (self.maps_view, self.spectra_view):
+            view.show_note(message)
+
+    # -------------------------------------------------------------------------------- reconstruct
+    def run(self) -> bool:
+        """Start the reconstruction in the background (what the Reconstruct button does)."""
+        sky, experiment, spectra = self.state.sky, self.state.sky_experiment, self.state.spectra
+        if sky is None:
+            self.status.error("No sky to reconstruct: simulate one on the Sky tab first.")
+            return False
+        estimator = self.estimator.value
+        lmax_L = self.lmax_L.value or sky.lmax
+        nthreads = self.nthreads
+
+        def work(report, cancel):
+            report(0.05, f"filtering the maps and forming the {estimator} estimate…")
+            result = lensrec.reconstruct(sky.maps, experiment, spectra, estimator=estimator, lmax_L=lmax_L,
+                                         mask=sky.mask, lmax=sky.lmax, nthreads=nthreads)  # fmt: skip
+            report(0.7, "Wiener filter, κ maps and spectra…")
+            return result, self._products(result, sky, spectra)
+
+        def finish(outcome):
+            result, products = outcome
+            self.result, self.products = result, products
+            self.state.reconstruction = result
+            self._draw()
+            ratio = products["cross_band"][1]
+            return (f"Reconstructed {estimator} up to L = {result.lmax_L}; band-averaged cross/input "
+                    f"{np.min(ratio):.2f}–{np.max(ratio):.2f} (1 = unbiased).")  # fmt: skip
+
+        return self.task.start(work, finish)
+
+    def _products(self, result, sky, spectra) -> dict:
+        """Maps and spectra to draw, all from lensrec (Wiener filter, κ maps, spectra of a_LM)."""
+        lmax_L, nside = result.lmax_L, sky.nside
+        phi_input = harmonics.truncate_alm(sky.phi_alm, lmax_L, sky.lmax_unlensed)
+        n0 = result.n0["gradient"]
+        phi_wf = lensrec.wiener_filter_phi(result.phi_alm, n0, spectra.phi)
+        kappa_input = lensrec.deflection_maps(phi_input, nside, lmax_L, nthreads=self.nthreads).kappa
+        kappa_wf = lensrec.deflection_maps(phi_wf, nside, lmax_L, nthreads=self.nthreads).kappa
+        cross = alm_cross_spectrum(result.phi_alm, phi_input, lmax=lmax_L)
+        input_auto = alm_cross_spectrum(phi_input, lmax=lmax_L)
+        auto = alm_cross_spectrum(result.phi_alm, lmax=lmax_L)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            ratio = np.where(input_auto > 0, cross / input_auto, np.nan)
+        auto_minus_n0 = auto - n0
+        L_min = 2
+        return {
+            "kappa_input": kappa_input,
+            "kappa_wf": kappa_wf,
+            "cross_over_input": ratio,
+            "auto_minus_n0": auto_minus_n0,
+            "n0": n0,
+            "theory": np.asarray(spectra.phi[: lmax_L + 1]),
+            "cross_band": band_average(ratio, L_min, lmax_L),
+            "auto_band": band_average(auto_minus_n0, L_min, lmax_L),
+            "mask": sky.mask,
+        }
+
+    # ---------------------------------------------------------------------------------- the plots
+    def _build_figures(self) -> None:
+        figure = self.maps_view.figure
+        grid = figure.add_gridspec(1, 3, width_ratios=[1.0, 1.0, 0.04], left=0.01, right=0.93, bottom=0.04,
+                                   top=0.88, wspace=0.06)  # fmt: skip
+        blank = np.full((MOLLWEIDE_XSIZE // 2, MOLLWEIDE_XSIZE), np.nan)
+        cmap = matplotlib_cmap(MAP_CMAP)
+        self.images = {}
+        self.map_titles = {}
+        for index, key in enumerate(("kappa_input", "kappa_wf")):
+            ax = figure.add_subplot(grid[index])
+            self.images[key] = ax.imshow(blank, origin="lower", extent=(-2, 2, -1, 1), cmap=cmap,
+                                         interpolation="nearest")  # fmt: skip
+            ax.set_axis_off()
+            ax.set_xlim(-2.02, 2.02)
+            ax.set_ylim(-1.02, 1.02)
+            self.map_titles[key] = ax.set_title("", fontsize=9.5)
+        colorbar = figure.colorbar(self.images["kappa_input"], cax=figure.add_subplot(grid[2]))
+        colorbar.set_label("κ (dimensionless)", fontsize=9)
+        colorbar.ax.tick_params(labelsize=8)
+
+        figure = self.spectra_view.figure
+        figure.subplots_adjust(left=0.07, right=0.98, bottom=0.14, top=0.9, wspace=0.25)
+        self.ax_cross, self.ax_auto = figure.subplots(1, 2)
+        self.ax_cross.axhline(1.0, color=COLORS["noise"], lw=1.0, ls="--")
+        (self.cross_line,) = self.ax_cross.plot([], [], color=COLORS["reconstructed"], lw=0.8, alpha=0.35,
+                                                label="per L")  # fmt: skip
+        (self.cross_band,) = self.ax_cross.plot([], [], "o-", color=COLORS["reconstructed"], ms=4, lw=1.2,
+                                                label="band average")  # fmt: skip
+        self.ax_cross.set_xlabel("lensing multipole L")
+        self.ax_cross.set_ylabel(r"$C_L^{\hat\phi\phi} / C_L^{\phi\phi}$ (input)")
+        self.ax_cross.set_title("cross-spectrum with the input / input spectrum", fontsize=9.5)
+        self.ax_cross.legend(loc="lower left", fontsize=8, frameon=False)
+        (self.theory_line,) = self.ax_auto.plot(
+            [], [], color=COLORS["signal"], lw=3.0, label=r"theory $C_L^{\phi\phi}$"
+        )
+        (self.n0_line,) = self.ax_auto.plot([], [], color=ESTIMATOR_COLORS["MV"], lw=1.2, ls="--", label="N0")
+        (self.auto_band,) = self.ax_auto.plot([], [], "o", color=COLORS["reconstructed"], ms=4,
+                                              label="auto − N0 (band average)")  # fmt: skip
+        (self.auto_band_negative,) = self.ax_auto.plot([], [], "o", mfc="none", color=COLORS["reconstructed"], ms=4,
+                                                       label="negative bands, |auto − N0|")  # fmt: skip
+        self.ax_auto.set_xscale("log")
+        self.ax_auto.set_yscale("log")
+        self.ax_auto.set_xlabel("lensing multipole L")
+        self.ax_auto.set_ylabel(r"$[L(L+1)]^2 C_L / 2\pi$")
+        self.auto_title = self.ax_auto.set_title("", fontsize=9.5)
+        self.ax_auto.legend(loc="lower left", fontsize=8, frameon=False)
+        for ax in (self.ax_cross, self.ax_auto):
+            style_axes(ax)
+
+    def plotted(self) -> dict:
+        """The drawn data (tests compare it with lensrec's and healpy's results)."""
+        return {
+            "kappa_input": np.asarray(self.images["kappa_input"].get_array(), dtype=float),
+            "kappa_wf": np.asarray(self.images["kappa_wf"].get_array(), dtype=float),
+            "clim": (self.images["kappa_input"].get_clim(), self.images["kappa_wf"].get_clim()),
+            "cross": (np.asarray(self.cross_line.get_xdata()), np.asarray(self.cross_line.get_ydata())),
+            "auto_band": (np.asarray(self.auto_band.get_xdata()), np.asarray(self.auto_band.get_ydata())),
+            "n0": (np.asarray(self.n0_line.get_xdata()), np.asarray(self.n0_line.get_ydata())),
+            "theory": (np.asarray(self.theory_line.get_xdata()), np.asarray(self.theory_line.get_ydata())),
+        }
+
+    def _draw(self) -> None:
+        products, result = self.products, self.result
+        nside = healpy.npix2nside(products["kappa_input"].size)
+        projector = healpy.projector.MollweideProj(xsize=MOLLWEIDE_XSIZE)
+        vec2pix = functools.partial(healpy.vec2pix, nside)
+        limit = symmetric_limit(products["kappa_input"])
+        for key, title in (
+            ("kappa_input", "input κ"),
+            ("kappa_wf", f"reconstructed κ, Wiener-filtered ({result.estimator})"),
+        ):
+            values = np.array(products[key], dtype=float)
+            if products["mask"] is not None:
+                values[np.asarray(products["mask"]) == 0] = np.nan
+            image = np.array(projector.projmap(values, vec2pix), dtype=float)
+            image[~np.isfinite(image)] = np.nan
+            self.images[key].set_data(image)
+            self.images[key].set_clim(-limit, limit)  # one colour scale for the comparison
+            self.map_titles[key].set_text(f"{title}, L ≤ {result.lmax_L}")
+        self.maps_view.draw()
+
+        L = np.arange(result.lmax_L + 1)
+        shown = L >= 2
+        self.cross_line.set_data(L[shown], products["cross_over_input"][shown])
+        self.cross_band.set_data(*products["cross_band"])
+        self.ax_cross.set_xlim(2, result.lmax_L)
+        self.ax_cross.set_ylim(-0.5, 2.5)
+        units = "phi"
+        self.theory_line.set_data(L[shown], phi_plot_units(products["theory"], units)[shown])
+        self.n0_line.set_data(L[shown], phi_plot_units(products["n0"], units)[shown])
+        centres, means = products["auto_band"]
+        weight = (centres * (centres + 1.0)) ** 2 / (2.0 * np.pi)
+        self.auto_band.set_data(centres, np.where(means > 0, weight * means, np.nan))
+        self.auto_band_negative.set_data(centres, np.where(means < 0, -weight * means, np.nan))
+        self.ax_auto.set_xlim(2, result.lmax_L)
+        top = np.nanmax(phi_plot_units(products["theory"], units)[shown])
+        self.ax_auto.set_ylim(top / 300.0, top * 30.0)
+        masked = products["mask"] is not None
+        self.auto_title.set_text("auto − N0 against theory" + (" (masked sky: no mask correction)" if masked else ""))
+        self.spectra_view.draw()
+
+
+@functools.lru_cache(maxsize=2)
+def matplotlib_cmap(name: str):
+    import matplotlib
+
+    return matplotlib.colormaps[name].with_extremes(bad=(0.80, 0.82, 0.83, 0.0))

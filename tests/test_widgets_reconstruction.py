@@ -91,15 +91,6 @@ def test_reconstruction_has_unit_response_to_the_input(app):
     assert abs(mean - 1) < 4 * sigma + 0.10, (mean, sigma)
 
 
-def test_a_new_sky_withdraws_the_old_reconstruction(app):
-    section = app["reconstruction"]
-    app.state.sky = None  # what a new simulation does first, in effect: the old result no longer applies
-    assert section.result is None and app.state.reconstruction is None
-    assert "press <b>Reconstruct</b>" in section.maps_view.note.value or "No sky yet" in section.maps_view.note.value
-    assert section.run() is False
-    assert section.status.kind == "error" and "simulate one on the Sky tab" in section.status.message
-
-
 def test_too_high_lmax_L_is_reported():
     workbench = Workbench(experiment="deep_highland", nthreads=2)
     sky = workbench["sky"]
@@ -112,3 +103,56 @@ def test_too_high_lmax_L_is_reported():
     assert workbench.wait(60)
     assert section.status.kind == "error" and "lmax_L=500" in section.status.message
     assert not section.run_button.disabled
+
+
+# ------------------------------------------------------------------------------- delensing template
+def test_template_is_built_from_the_reconstruction_as_lensrec_delens_does(app, expected):
+    from lensrec import delensing
+
+    section = app["delensing"]
+    section.method.value = "first_order"
+    section.build_button.click()
+    assert app.wait(120) and section.status.kind == "ok", section.status.message
+    sky, experiment, spectra = app.state.sky, app.state.sky_experiment, app.state.spectra
+    result, _ = expected
+    lmax = min(LMAX, experiment.ell_max_polarization)
+    # the delensing pipeline written out with lensrec's own functions
+    observed = harmonics.map2alm_tqu(sky.maps, lmax, nthreads=2)
+    beam = experiment.beam(lmax)
+    e_wiener = delensing.wiener_filter_e(observed[1], experiment, spectra)
+    b_observed = harmonics.scale_alm(observed[2], 1.0 / beam, lmax)
+    phi_wiener = lensrec.wiener_filter_phi(result.phi_alm, result.n0["gradient"], spectra.phi)
+    reference = lensrec.delens(b_observed, e_wiener, phi_wiener, lmax, method="first_order",
+                               noise_bb=experiment.noise_spectrum("B", lmax), lensed_bb=spectra.lensed["BB"],
+                               nthreads=2)  # fmt: skip
+    drawn = section.template_plotted()
+    ell = np.arange(max(2, reference.ell_min), reference.ell_max + 1)
+    dl = ell * (ell + 1) / (2 * np.pi)
+    np.testing.assert_array_equal(drawn["template"][0], ell)
+    # same inputs; 1e-8 relative covers the thread-order rounding of the transforms in the template
+    np.testing.assert_allclose(drawn["template"][1], dl * reference.template_bb[ell], rtol=1e-8)
+    np.testing.assert_allclose(drawn["residual"][1], dl * reference.residual_bb[ell], rtol=1e-8)
+    np.testing.assert_allclose(drawn["efficiency"][1], reference.efficiency[ell], rtol=1e-6, atol=1e-9)
+    assert section.template.alens_residual == pytest.approx(reference.alens_residual, rel=1e-8)
+    # MV uses these B modes: the delensing-bias warning must be shown
+    assert "delensing bias" in section.template_summary.value
+    # a template made of lensed E modes must remove some lensing power and cannot remove more than all of it
+    assert 0 < section.template.alens_residual < 1
+
+
+# tests below change the shared state: keep them last
+def test_a_new_sky_withdraws_the_old_reconstruction(app):
+    section = app["reconstruction"]
+    app.state.sky = None  # what a new simulation does first, in effect: the old result no longer applies
+    assert section.result is None and app.state.reconstruction is None
+    assert "press <b>Reconstruct</b>" in section.maps_view.note.value or "No sky yet" in section.maps_view.note.value
+    assert section.run() is False
+    assert section.status.kind == "error" and "simulate one on the Sky tab" in section.status.message
+
+
+def test_template_without_reconstruction_says_what_to_do(app):
+    section = app["delensing"]
+    app.state.reconstruction = None
+    assert "No reconstruction yet" in section.template_view.note.value
+    assert section.build_template() is False
+    assert section.status.kind == "error" and "Reconstruction tab" in section.status.message

@@ -14,6 +14,7 @@ import ipywidgets as widgets
 import numpy as np
 
 import lensrec
+from lensrec import delensing, harmonics
 
 from .plotting import COLORS, PAIR, FigureView, d_ell, finite_or_nan, style_axes
 from .section import Section, heading, labelled
@@ -73,12 +74,48 @@ class DelensingSection(Section):
         missing = [name for name in TEMPLATE_NEEDS if getattr(lensrec, name, None) is None]
         if missing:
             names = " and ".join(f"<code>lensrec.{name}</code>" for name in missing)
+            self.template_ready = False
             return widgets.HTML(
                 "<p style='color:#515a5a;line-height:1.45'><b>B-mode template from the reconstructed map</b>: this "
                 f"lensrec installation does not provide {names} yet; update lensrec and restart the kernel to "
                 "build templates from a simulated sky.</p>"
             )
-        return widgets.HTML()
+        self.template_ready = True
+        self.template = None
+        self.method = widgets.ToggleButtons(options=[("exact remapping", "remap"), ("first order", "first_order")],
+                                            value="remap", description="template", style={"button_width": "10em"})  # fmt: skip
+        self.method.add_class("lensrec-template-method")
+        self.build_button = widgets.Button(description="Build template", icon="play", button_style="primary")
+        self.build_button.add_class("lensrec-build-template")
+        self.template_task = LongTask(self.build_button, self.status, "Building the B-mode template", "template")
+        self.tasks.append(self.template_task)
+        self.template_summary = widgets.HTML()
+        self.template_summary.add_class("lensrec-template-summary")
+        self.template_view = FigureView(PAIR, name="delensing-template")
+        self._build_template_figure()
+        self.build_button.on_click(lambda _button: self.build_template())
+        self.state.observe(self._on_reconstruction, names="reconstruction")
+        self._on_reconstruction({"new": self.state.reconstruction})
+        return widgets.VBox([
+            heading("Template from the reconstructed map"),
+            widgets.HTML("<div style='color:#515a5a;max-width:60em;line-height:1.45'>The Wiener-filtered E modes of "
+                         "the simulated maps, lensed by the Wiener-filtered reconstruction of the Reconstruction tab, "
+                         "give a B-mode template; it is subtracted from the observed (beam-deconvolved) B modes.</div>"),
+            self.method,
+            widgets.HBox([self.build_button, self.template_task.widget]),
+            widgets.HBox([self.template_view.widget, self.template_summary]),
+        ])  # fmt: skip
+
+    def _on_reconstruction(self, change) -> None:
+        if self.template is not None:
+            self.status.warn("The reconstruction has changed; the template shown before belonged to the previous one.")
+            self.template = None
+            self.template_summary.value = ""
+        if change["new"] is None:
+            self.template_view.show_note("No reconstruction yet: simulate a sky (Sky tab) and reconstruct it "
+                                         "(Reconstruction tab), then press <b>Build template</b>.")  # fmt: skip
+        else:
+            self.template_view.show_note("Press <b>Build template</b> to delens the simulated B modes.")
 
     # ------------------------------------------------------------------------------------ inputs
     def _on_noise(self, change) -> None:
@@ -126,6 +163,102 @@ class DelensingSection(Section):
                     f"{forecast.improvement:.2f}× ({experiment.name}).")  # fmt: skip
 
         return self.task.start(work, finish)
+
+    # ---------------------------------------------------------------------------------- template
+    def build_template(self) -> bool:
+        """Start building the template and delensing the sky's B modes (what Build template does)."""
+        sky, reconstruction = self.state.sky, self.state.reconstruction
+        experiment, spectra = self.state.sky_experiment, self.state.spectra
+        if sky is None or reconstruction is None:
+            self.status.error("No reconstruction to build a template from: simulate a sky on the Sky tab and "
+                              "reconstruct it on the Reconstruction tab first.")  # fmt: skip
+            return False
+        method, nthreads = self.method.value, self.nthreads
+        lmax = min(sky.lmax, experiment.ell_max_polarization)
+
+        def work(report, cancel):
+            report(0.05, "E and B modes of the maps…")
+            observed = harmonics.map2alm_tqu(sky.maps, lmax, nthreads=nthreads)
+            beam = experiment.beam(lmax)
+            e_wiener = delensing.wiener_filter_e(observed[1], experiment, spectra)
+            b_observed = harmonics.scale_alm(observed[2], np.where(beam > 0, 1.0 / beam, 0.0), lmax)
+            phi_wiener = lensrec.wiener_filter_phi(reconstruction.phi_alm, reconstruction.n0["gradient"], spectra.phi)
+            report(0.3, f"lensing the E modes ({method})…")
+            return lensrec.delens(b_observed, e_wiener, phi_wiener, lmax, method=method,
+                                  noise_bb=experiment.noise_spectrum("B", lmax), lensed_bb=spectra.lensed["BB"],
+                                  nthreads=nthreads)  # fmt: skip
+
+        def finish(result):
+            self.template, self.template_estimator = result, reconstruction.estimator
+            self._draw_template()
+            return (f"Template ({method}) from the {reconstruction.estimator} reconstruction: measured "
+                    f"A_lens^res = {result.alens_residual:.2f} over ℓ {result.ell_min}–{result.ell_max}.")  # fmt: skip
+
+        return self.template_task.start(work, finish)
+
+    def _build_template_figure(self) -> None:
+        figure = self.template_view.figure
+        figure.subplots_adjust(left=0.08, right=0.98, bottom=0.14, top=0.9, wspace=0.28)
+        self.ax_tbb, self.ax_teff = figure.subplots(1, 2, gridspec_kw={"width_ratios": [1.5, 1.0]})
+        self.template_lines = {}
+        for key, label, color, style in (
+            ("observed", "observed B (lensing + noise)", COLORS["lensed"], "-"),
+            ("template", "template", COLORS["template"], "-"),
+            ("residual", "residual = observed − template", COLORS["residual"], "-"),
+            ("noise", "B noise", COLORS["noise"], "--"),
+            ("lensed", "lensing BB (theory)", COLORS["phi"], ":"),
+        ):
+            (self.template_lines[key],) = self.ax_tbb.plot([], [], color=color, ls=style, lw=1.4, label=label)
+        self.ax_tbb.set_xscale("log")
+        self.ax_tbb.set_yscale("log")
+        self.ax_tbb.set_xlabel("multipole ℓ")
+        self.ax_tbb.set_ylabel(r"$D_\ell^{BB}$  [µK²]")
+        self.ax_tbb.legend(loc="upper left", fontsize=7.5, frameon=False)
+        (self.template_lines["efficiency"],) = self.ax_teff.plot([], [], color=COLORS["delensed"], lw=1.0)
+        self.ax_teff.axhline(0.0, color=COLORS["noise"], lw=0.8)
+        self.ax_teff.set_xscale("log")
+        self.ax_teff.set_ylim(-0.5, 1.0)
+        self.ax_teff.set_xlabel("multipole ℓ")
+        self.ax_teff.set_ylabel("efficiency per ℓ (noise subtracted)")
+        self.template_title = self.ax_tbb.set_title("", fontsize=9.5)
+        self.ax_teff.set_title("delensing efficiency of this sky", fontsize=9.5)
+        for ax in (self.ax_tbb, self.ax_teff):
+            style_axes(ax)
+
+    def template_plotted(self) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+        return {key: (np.asarray(line.get_xdata()), np.asarray(line.get_ydata()))
+                for key, line in self.template_lines.items()}  # fmt: skip
+
+    def _draw_template(self) -> None:
+        result = self.template
+        ell = np.arange(result.ell.size)
+        used = (ell >= max(2, result.ell_min)) & (ell <= result.ell_max)
+        for key, values in (("observed", result.observed_bb), ("template", result.template_bb),
+                            ("residual", result.residual_bb), ("noise", finite_or_nan(result.noise_bb)),
+                            ("lensed", result.lensed_bb)):  # fmt: skip
+            self.template_lines[key].set_data(ell[used], d_ell(values)[used])
+        self.template_lines["efficiency"].set_data(ell[used], result.efficiency[used])
+        for ax in (self.ax_tbb, self.ax_teff):
+            ax.set_xlim(max(2, result.ell_min), result.ell_max)
+        values = np.concatenate([d_ell(result.lensed_bb)[used], d_ell(result.template_bb)[used]])
+        values = values[np.isfinite(values) & (values > 0)]
+        top = values.max() * 30.0
+        self.ax_tbb.set_ylim(max(values.min() / 3.0, top * 1e-6), top)  # a weak template stays in view
+        self.template_title.set_text(
+            f"B modes of the simulated sky – {result.method} template, {self.template_estimator}"
+        )
+        self.template_view.draw()
+        bias = self.template_estimator in ("MV", "EB", "TB")
+        self.template_summary.value = (
+            "<table style='margin:1.5em 1em;border-collapse:collapse'>"
+            f"<tr><td style='padding:2px 8px'>A_lens^res (measured)</td><td><b>{result.alens_residual:.3f}</b></td></tr>"
+            f"<tr><td style='padding:2px 8px'>ℓ range</td><td>{result.ell_min}–{result.ell_max}</td></tr>"
+            f"<tr><td style='padding:2px 8px'>template</td><td>{html.escape(result.method)}</td></tr>"
+            "</table>"
+            + ("<div style='margin:0 1em;max-width:18em;color:#9a7d0a;font-size:90%'>⚠ φ was reconstructed with "
+               f"{html.escape(self.template_estimator)}, which uses these B modes: the residual is biased low "
+               "(delensing bias).</div>" if bias else "")
+        )  # fmt: skip
 
     # ---------------------------------------------------------------------------------- the plot
     def _build_figure(self) -> None:

@@ -19,6 +19,8 @@ import urllib.request
 
 import pytest
 
+import lensrec
+
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 NOTEBOOK = os.path.join(ROOT, "notebooks", "workbench.ipynb")
 CHROMIUM = "/usr/bin/chromium"
@@ -267,17 +269,22 @@ def test_noise_change_redraws_the_n0_plot(workbench_page, artifacts_dir):
     _screenshot(page, artifacts_dir, "workbench-estimator-noise.png")
 
 
-def test_simulate_a_small_sky_and_view_it(workbench_page, artifacts_dir):
-    page = workbench_page
+def _simulate_small_sky(page) -> None:
     _open_tab(page, "Sky")
-    assert page.locator(".lensrec-note-sky-maps").is_visible()  # says what to do before the first sky
-    page.locator(".lensrec-sky-nside select").select_option(label="32")
-    page.wait_for_function("() => document.querySelector('.lensrec-sky-lmax input').value === '64'")
+    page.locator(".lensrec-sky-nside select").select_option(label="64")
+    page.wait_for_function("() => document.querySelector('.lensrec-sky-lmax input').value === '128'")
     page.locator("button.lensrec-simulate").click()
     page.wait_for_selector("img.lensrec-plot-sky-maps[src^='blob:']", state="visible", timeout=120_000)
     page.wait_for_function(
         "() => document.querySelector('.lensrec-progress-label-sky').innerText.startsWith('done')"
     )  # fmt: skip
+
+
+def test_simulate_a_small_sky_and_view_it(workbench_page, artifacts_dir):
+    page = workbench_page
+    _open_tab(page, "Sky")
+    assert page.locator(".lensrec-note-sky-maps").is_visible()  # says what to do before the first sky
+    _simulate_small_sky(page)
     assert "rms deflection" in page.locator(".lensrec-status-sky").inner_text()
     assert not page.locator("button.lensrec-simulate").is_disabled()
     before = _src(page, "img.lensrec-plot-sky-maps")
@@ -294,3 +301,18 @@ def test_delensing_forecast_appears(workbench_page, artifacts_dir):
     summary = page.locator(".lensrec-delensing-summary").inner_text()
     assert "A_lens^res" in summary and "σ(r), delensed" in summary
     _screenshot(page, artifacts_dir, "workbench-delensing.png")
+
+
+@pytest.mark.skipif(not hasattr(lensrec, "reconstruct"), reason="this lensrec has no reconstruct()")
+def test_reconstruct_the_small_sky(workbench_page, artifacts_dir):
+    page = workbench_page
+    _open_tab(page, "Sky")
+    if page.locator(".lensrec-note-sky-maps").is_visible():
+        _simulate_small_sky(page)
+    _open_tab(page, "Reconstruction")
+    page.locator("button.lensrec-reconstruct").click()
+    for name in ("reconstruction-maps", "reconstruction-spectra"):
+        page.wait_for_selector(f"img.lensrec-plot-{name}[src^='blob:']", state="visible", timeout=120_000)
+    assert "Reconstructed MV" in page.locator(".lensrec-status-reconstruction").inner_text()
+    assert not page.locator("button.lensrec-reconstruct").is_disabled()
+    _screenshot(page, artifacts_dir, "workbench-reconstruction.png")

@@ -83,7 +83,7 @@ class DelensingSection(Section):
         self.template_ready = True
         self.template = None
         self.method = widgets.ToggleButtons(options=[("exact remapping", "remap"), ("first order", "first_order")],
-                                            value="remap", description="template", style={"button_width": "10em"})  # fmt: skip
+                                            value="remap", style={"button_width": "12em"})  # fmt: skip
         self.method.add_class("lensrec-template-method")
         self.build_button = widgets.Button(description="Build template", icon="play", button_style="primary")
         self.build_button.add_class("lensrec-build-template")
@@ -250,7 +250,7 @@ class DelensingSection(Section):
         self.template_view.draw()
         bias = self.template_estimator in ("MV", "EB", "TB")
         self.template_summary.value = (
-            "<table style='margin:1.5em 1em;border-collapse:collapse'>"
+            "<table style='margin:1.5em 1em;border-collapse:collapse;white-space:nowrap'>"
             f"<tr><td style='padding:2px 8px'>A_lens^res (measured)</td><td><b>{result.alens_residual:.3f}</b></td></tr>"
             f"<tr><td style='padding:2px 8px'>ℓ range</td><td>{result.ell_min}–{result.ell_max}</td></tr>"
             f"<tr><td style='padding:2px 8px'>template</td><td>{html.escape(result.method)}</td></tr>"
@@ -308,7 +308,7 @@ class DelensingSection(Section):
         self.view.draw()
         bias = self.forecast_label in ("MV", "EB", "TB")
         self.summary.value = (
-            "<table style='margin:1.5em 1em;border-collapse:collapse'>"
+            "<table style='margin:1.5em 1em;border-collapse:collapse;white-space:nowrap'>"
             f"<tr><td style='padding:2px 8px'>A_lens^res</td><td><b>{forecast.alens_residual:.3f}</b></td></tr>"
             f"<tr><td style='padding:2px 8px'>σ(r), lensed</td><td>{forecast.sigma_r_lensed:.3g}</td></tr>"
             f"<tr><td style='padding:2px 8px'>σ(r), delensed</td><td><b>{forecast.sigma_r_delensed:.3g}</b></td></tr>"

@@ -122,9 +122,9 @@ class ReconstructionSection(Section):
             self.result, self.products = result, products
             self.state.reconstruction = result
             self._draw()
-            ratio = products["cross_band"][1]
-            return (f"Reconstructed {estimator} up to L = {result.lmax_L}; band-averaged cross/input "
-                    f"{np.min(ratio):.2f}–{np.max(ratio):.2f} (1 = unbiased).")  # fmt: skip
+            mean = band_average(products["cross_over_input"], 2, result.lmax_L, bands=1)[1][0]
+            return (f"Reconstructed {estimator} up to L = {result.lmax_L}; cross/input averaged over L = 2–"
+                    f"{result.lmax_L} with weights 2L+1: {mean:.2f} (1 for a unit-response estimator).")  # fmt: skip
 
         return self.task.start(work, finish)
 

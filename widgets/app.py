@@ -15,6 +15,8 @@ from .reconstruction_panel import ReconstructionSection
 from .section import Section
 from .sky_panel import SkySection
 from .state import WorkbenchState
+from .validation_panel import NEEDS as VALIDATION_NEEDS
+from .validation_panel import ValidationSection
 
 __all__ = ["Workbench", "library_function"]
 
@@ -89,7 +91,7 @@ class Workbench(widgets.VBox):
              lambda: ReconstructionSection(self.state, nthreads=nthreads)),
             ("delensing", "Delensing", ("delensing_forecast",),
              lambda: DelensingSection(self.state, nthreads=nthreads)),
-            ("validation", "Validation", ("reconstruct", "run_validation_suite"), None),
+            ("validation", "Validation", VALIDATION_NEEDS, lambda: ValidationSection(self.state, nthreads=nthreads)),
         )  # fmt: skip
         for name, title, needs, build in plan:
             available = build is not None and all(library_function(n) is not None for n in needs)

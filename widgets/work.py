@@ -170,12 +170,16 @@ class LongTask:
             self.cancel_event.set()
             self.label.value = "cancelling…"
 
-    def report(self, fraction: float, text: str | None = None) -> None:
-        """Move the bar to ``fraction`` (0…1) and optionally change the label; raise Cancelled if asked to stop."""
+    def report(self, fraction: float, text: str | None = None, check_cancel: bool = True) -> None:
+        """Move the bar to ``fraction`` (0…1) and optionally change the label.
+
+        Raises Cancelled if asked to stop, unless ``check_cancel`` is False (for progress callbacks called
+        from inside lensrec, which watches the same cancel event and stops cleanly by itself).
+        """
         self.progress.value = min(1.0, max(0.0, float(fraction)))
         if text is not None:
             self.label.value = text
-        if self.cancel_event.is_set():
+        if check_cancel and self.cancel_event.is_set():
             raise Cancelled()
 
     def start(self, work, finish) -> bool:
@@ -217,10 +221,10 @@ class LongTask:
             self.progress.bar_style = "success"
             self.label.value = f"done in {seconds:.1f} s"
             self.status.ok(message or f"{self.doing}: done in {seconds:.1f} s.")
-        except Cancelled:
+        except Cancelled as exc:
             self.progress.bar_style = "warning"
             self.label.value = "cancelled"
-            self.status.warn(f"{self.doing} was cancelled; the previous results are unchanged.")
+            self.status.warn(str(exc) or f"{self.doing} was cancelled; the previous results are unchanged.")
         except Exception as exc:
             self.progress.bar_style = "danger"
             self.label.value = "failed"

@@ -1,0 +1,365 @@
+r"""Filtering of observed T, Q, U maps for the quadratic estimators: the seam where filters plug in.
+
+A *filter* turns observed maps into :class:`FilteredFields`, the inverse-variance filtered harmonic
+coefficients T̄, Ē, B̄ that every quadratic estimator of :mod:`lensrec.reconstruction` uses as its legs.
+Any object with a method ``filter(maps) -> FilteredFields`` is a filter (the :class:`FieldFilter`
+protocol), so a better one (conjugate-gradient inversion of the full pixel covariance, anisotropic noise,
+a joint T/E filter) plugs in without touching the estimators. The estimators use the filtered fields as
+they are; their analytic normalisation assumes the isotropic filter below (on a masked sky, or with any
+other filter, the normalisation is only approximate and simulations calibrate it).
+
+Isotropic filter (:class:`IsotropicFilter`)
+===========================================
+Exactly the diagonal filter of :mod:`lensrec.estimator_weights` (module docstring, item 2)::
+
+    X_ℓm = [map2alm(w · (T, Q, U))]_ℓm / b_ℓ ,         X̄_ℓm = X_ℓm / C^XX_tot,ℓ   (ℓ_min ≤ ℓ ≤ ℓ_max(X)),
+
+and X̄_ℓm = 0 outside each field's multipole cuts, with b_ℓ the experiment's Gaussian beam, w the mask
+(1 without one) and C_tot = lensed CMB + beam-deconvolved noise (:meth:`lensrec.Experiment.total_spectra`).
+T̄, Ē, B̄ are in µK⁻¹. The harmonic analysis is healpy's iterative ``map2alm`` (3 Jacobi steps by
+default, :func:`lensrec.harmonics.map2alm_tqu`); no pixel window is deconvolved (lensrec's simulations do
+not apply one unless asked).
+
+Wiener filter: :meth:`FilteredFields.wiener` returns C^XX · X̄ (lensed C^XX), which for this diagonal
+filter is the Wiener-filtered field C^XX/(C^XX + N^XX) · X of each field separately (the TE correlation is
+not used: e.g. the Wiener-filtered E does not borrow from T). That is the E-mode template delensing
+needs, and the "gradient" leg of the estimators.
+
+Masks
+=====
+With a mask, the maps are multiplied by the weights w(n) before the transform. Pass an *apodized* mask
+(:func:`lensrec.masks.apodize_binary_mask`, :func:`lensrec.masks.cap_mask` with a taper width, or
+``apodization=`` here to apodize a binary one): a sharp edge rings in harmonic space and feeds a large
+mean-field into the lensing estimate. The sky-fraction moments ⟨wⁿ⟩, n = 1…4, are recorded in
+:attr:`FilteredFields.mask_moments` for the pseudo-C_ℓ corrections of :mod:`lensrec.power`.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass
+from dataclasses import field as dataclass_field
+from types import MappingProxyType
+from typing import Protocol, runtime_checkable
+
+import numpy as np
+
+from . import harmonics
+from ._checks import as_finite_array, as_float, as_int, check_lmax_for_nside, resolve_nthreads
+from .experiment import Experiment, load_experiment
+from .harmonics import ell_of_alm, nalm, npix_to_nside, truncate_alm
+from .masks import apodize_binary_mask, check_mask, sky_fraction_moments
+from .spectra import Spectra, fiducial_spectra
+
+__all__ = ["FIELDS", "FilteredFields", "FieldFilter", "IsotropicFilter"]
+
+FIELDS = ("T", "E", "B")
+_SIGNAL_KEYS = ("TT", "EE", "BB", "TE")
+
+
+def _readonly(array: np.ndarray) -> np.ndarray:
+    array = np.array(array, copy=True)
+    array.setflags(write=False)
+    return array
+
+
+def _field_index(name) -> int:
+    if not isinstance(name, str) or name.upper() not in FIELDS:
+        raise ValueError(f"field must be one of {FIELDS}, got {name!r}")
+    return FIELDS.index(name.upper())
+
+
+# ----------------------------------------------------------------------------------------- container
+@dataclass(frozen=True, eq=False)
+class FilteredFields:
+    """Inverse-variance filtered T̄, Ē, B̄ harmonic coefficients (read-only) and how they were made.
+
+    Parameters
+    ----------
+    alm : complex array, shape (3, nalm(lmax))
+        T̄, Ē, B̄ in µK⁻¹ (healpy's triangular layout), zero outside each field's multipole cuts.
+    lmax : int
+        Band limit of ``alm``.
+    signal : mapping
+        CMB spectra ``"TT"``, ``"EE"``, ``"BB"``, ``"TE"`` (µK², ℓ = 0 … lmax) that define the Wiener filter
+        C^XX · X̄ (lensed spectra for :class:`IsotropicFilter`).
+    mask_moments : mapping or None
+        ⟨wⁿ⟩ of the mask (``"w1"`` … ``"w4"``, ``"fsky"``, ``"fsky_spectra"``; see
+        :func:`lensrec.masks.sky_fraction_moments`), None for a full, unmasked sky.
+    settings : mapping
+        How the fields were filtered (filter name, experiment, nside, iterations, …).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from lensrec.harmonics import nalm
+    >>> spectra = {k: np.ones(9) for k in ("TT", "EE", "BB", "TE")}
+    >>> fields = FilteredFields(np.ones((3, nalm(8)), complex), 8, spectra)
+    >>> fields.E.shape, float(fields.wiener("E")[3].real)
+    ((45,), 1.0)
+    """
+
+    alm: np.ndarray
+    lmax: int
+    signal: Mapping
+    mask_moments: Mapping | None = None
+    settings: Mapping = dataclass_field(default_factory=dict)
+
+    def __post_init__(self):
+        lmax = as_int(self.lmax, "lmax", minimum=1)
+        alm = as_finite_array(self.alm, "alm", shape=(3, nalm(lmax)), dtype=np.complex128)
+        object.__setattr__(self, "lmax", lmax)
+        object.__setattr__(self, "alm", _readonly(alm))
+        if not isinstance(self.signal, Mapping):
+            raise TypeError(f"signal must be a mapping of spectra {_SIGNAL_KEYS}, got {type(self.signal).__name__}")
+        signal = {}
+        for key in _SIGNAL_KEYS:
+            if key not in self.signal:
+                raise ValueError(f"signal must hold the spectra {_SIGNAL_KEYS}; {key!r} is missing")
+            values = as_finite_array(self.signal[key], f"signal[{key!r}]", ndim=1)
+            if values.size < lmax + 1:
+                raise ValueError(f"signal[{key!r}] has {values.size} entries but lmax={lmax} needs {lmax + 1}")
+            signal[key] = _readonly(values[: lmax + 1])
+        object.__setattr__(self, "signal", MappingProxyType(signal))
+        if self.mask_moments is not None:
+            object.__setattr__(self, "mask_moments", MappingProxyType(dict(self.mask_moments)))
+        object.__setattr__(self, "settings", MappingProxyType(dict(self.settings)))
+
+    @property
+    def T(self) -> np.ndarray:
+        """T̄_ℓm (µK⁻¹)."""
+        return self.alm[0]
+
+    @property
+    def E(self) -> np.ndarray:
+        """Ē_ℓm (µK⁻¹)."""
+        return self.alm[1]
+
+    @property
+    def B(self) -> np.ndarray:
+        """B̄_ℓm (µK⁻¹)."""
+        return self.alm[2]
+
+    @property
+    def masked(self) -> bool:
+        """True when the maps were multiplied by a mask before filtering."""
+        return self.mask_moments is not None
+
+    def field(self, name: str) -> np.ndarray:
+        """X̄_ℓm of ``name`` ('T', 'E' or 'B')."""
+        return self.alm[_field_index(name)]
+
+    def wiener(self, name: str) -> np.ndarray:
+        """The Wiener-filtered field C^XX · X̄ (µK) of ``name`` ('T', 'E' or 'B'), a new array.
+
+        For the diagonal isotropic filter this is C^XX/(C^XX + N^XX) · X of that field alone.
+        """
+        index = _field_index(name)
+        key = FIELDS[index] * 2
+        return harmonics.scale_alm(self.alm[index], self.signal[key], self.lmax)
+
+    def wiener_alm(self) -> np.ndarray:
+        """Wiener-filtered T, E, B coefficients, shape (3, nalm(lmax)) (µK)."""
+        return np.stack([self.wiener(name) for name in FIELDS])
+
+
+# ------------------------------------------------------------------------------------------ protocol
+@runtime_checkable
+class FieldFilter(Protocol):
+    """Anything that turns observed (T, Q, U) maps into :class:`FilteredFields`.
+
+    The estimators only ever call ``filter(maps)``; implement it (and nothing else is required) to plug in
+    another filter. Implementations should validate the maps up front and record their settings in
+    ``FilteredFields.settings``.
+    """
+
+    def filter(self, maps) -> FilteredFields:  # pragma: no cover - protocol signature only
+        ...
+
+
+# ----------------------------------------------------------------------------------------- isotropic
+@dataclass(frozen=True, eq=False)
+class IsotropicFilter:
+    """The diagonal, isotropic inverse-variance filter X̄ = X / (b_ℓ C^XX_tot) (see the module docstring).
+
+    Parameters
+    ----------
+    experiment : Experiment or str
+        Noise, beam and multipole cuts (or the name / TOML path of an experiment).
+    spectra : Spectra, optional
+        Theory spectra for the total spectra and the Wiener filter; default: the fiducial cosmology.
+    lmax : int, optional
+        Band limit of the filtered fields. Default: the experiment's largest ℓ_max. A smaller value cuts
+        both fields there (the experiment is replaced by one with ℓ_max ≤ lmax, stored as
+        :attr:`experiment`, so that responses and N0 computed from it match the filter).
+    mask : array, optional
+        Weights w in [0, 1] on HEALPix RING pixels, multiplied into the maps before the transform.
+    apodization : float, optional
+        Taper width in degrees: apodize a *binary* ``mask`` first (:func:`lensrec.masks.apodize_binary_mask`,
+        C2 taper). Default: use ``mask`` as given.
+    iterations : int
+        Jacobi iterations of the HEALPix analysis (default 3, healpy's default; 0 is plain quadrature).
+    nthreads : int, optional
+        Threads for the transforms (default ``LENSREC_NTHREADS`` or all cores).
+
+    Attributes
+    ----------
+    experiment : Experiment
+        The experiment actually used (ℓ_max capped at ``lmax``).
+    total : mapping
+        C_tot for 'TT', 'EE', 'BB' (inf outside the cuts) and 'TE', ℓ = 0 … lmax (µK²).
+
+    Examples
+    --------
+    >>> import numpy as np, lensrec
+    >>> e = lensrec.Experiment(name="demo", noise_temperature=5.0, beam_fwhm=10.0, ell_min=2,
+    ...                        ell_max_temperature=40, ell_max_polarization=40)
+    >>> f = IsotropicFilter(e, nthreads=1)
+    >>> fields = f.filter(np.zeros((3, 12 * 16**2)))
+    >>> fields.lmax, fields.masked
+    (40, False)
+    """
+
+    experiment: Experiment
+    spectra: Spectra | None = None
+    lmax: int | None = None
+    mask: np.ndarray | None = None
+    apodization: float | None = None
+    iterations: int = 3
+    nthreads: int | None = None
+
+    def __post_init__(self):
+        set_ = object.__setattr__
+        experiment = load_experiment(self.experiment)
+        spectra = fiducial_spectra() if self.spectra is None else self.spectra
+        if not isinstance(spectra, Spectra):
+            raise TypeError(f"spectra must be a lensrec Spectra object (or None), got {type(spectra).__name__}")
+        largest = max(experiment.ell_max_temperature, experiment.ell_max_polarization)
+        lmax = largest if self.lmax is None else as_int(self.lmax, "lmax", minimum=experiment.ell_min + 1)
+        if lmax > spectra.lmax:
+            raise ValueError(f"lmax={lmax} exceeds the reach of the spectra (l <= {spectra.lmax}); lower lmax or "
+                             "supply spectra computed to higher l")
+        if lmax < largest:
+            experiment = experiment.replace(ell_max_temperature=min(experiment.ell_max_temperature, lmax),
+                                            ell_max_polarization=min(experiment.ell_max_polarization, lmax))
+        set_(self, "experiment", experiment)
+        set_(self, "spectra", spectra)
+        set_(self, "lmax", lmax)
+        set_(self, "iterations", as_int(self.iterations, "iterations", minimum=0, maximum=100))
+        if self.nthreads is not None:
+            set_(self, "nthreads", resolve_nthreads(self.nthreads))
+        if self.mask is not None:
+            mask = np.array(check_mask(self.mask))
+            if self.apodization is not None:
+                width = as_float(self.apodization, "apodization", minimum=0.0, maximum=90.0, strict_minimum=True)
+                mask = apodize_binary_mask(mask, width)
+                set_(self, "apodization", width)
+            mask.setflags(write=False)
+            set_(self, "mask", mask)
+        elif self.apodization is not None:
+            raise ValueError("apodization was given without a mask; pass mask= (a binary mask to apodize)")
+        total = experiment.total_spectra(spectra, lmax, lensed=True)
+        set_(self, "total", MappingProxyType({k: _readonly(v) for k, v in total.items()}))
+        beam = experiment.beam(lmax)
+        factors = []
+        for name in FIELDS:
+            auto = total[name * 2]
+            usable = np.isfinite(auto) & (auto > 0)
+            factor = np.zeros(lmax + 1)
+            factor[usable] = 1.0 / (beam[usable] * auto[usable])
+            if not np.any(usable):
+                raise ValueError(f"field {name} has no usable multipole between ell_min={experiment.ell_min} and "
+                                 f"lmax={lmax}")
+            factors.append(factor)
+        set_(self, "_factors", _readonly(np.array(factors)))
+
+    @property
+    def mask_moments(self) -> dict | None:
+        """⟨wⁿ⟩ of the mask (None without one)."""
+        return None if self.mask is None else sky_fraction_moments(self.mask)
+
+    def inverse_variance(self, field: str) -> np.ndarray:
+        """The filter 1/(b_ℓ C^XX_tot,ℓ) applied to the observed X_ℓm of ``field`` (0 outside the cuts)."""
+        return np.array(self._factors[_field_index(field)])
+
+    def _settings(self, **extra) -> dict:
+        settings = {"filter": "isotropic", "lmax": self.lmax, "iterations": self.iterations,
+                    "experiment": self.experiment.to_dict(), "spectra": dict(self.spectra.metadata),
+                    "apodization_deg": self.apodization}
+        settings.update(extra)
+        return settings
+
+    def _signal(self) -> dict:
+        signal = self.spectra.cmb(lensed=True)
+        return {key: signal[key][: self.lmax + 1] for key in _SIGNAL_KEYS}
+
+    def filter(self, maps) -> FilteredFields:
+        """Filter observed (T, Q, U) HEALPix maps (µK, RING).
+
+        Parameters
+        ----------
+        maps : array, shape (3, 12·nside²)
+            Observed T, Q, U (beam-convolved sky plus noise) in healpy's polarization convention.
+
+        Returns
+        -------
+        FilteredFields
+
+        Raises
+        ------
+        ValueError, TypeError
+            Maps of the wrong shape or with non-finite pixels, nside not a power of two, lmax above
+            3·nside − 1, a mask of another nside.
+        """
+        array = _check_maps(maps)
+        nside = npix_to_nside(array.shape[1], "maps")
+        check_lmax_for_nside(self.lmax, nside, name="lmax")
+        moments = None
+        if self.mask is not None:
+            if self.mask.size != array.shape[1]:
+                mask_nside = npix_to_nside(self.mask.size, "mask")
+                raise ValueError(f"mask has nside {mask_nside} ({self.mask.size} pixels) but the maps have nside "
+                                 f"{nside} ({array.shape[1]} pixels); regrade the mask (e.g. healpy.ud_grade)")
+            array = array * self.mask
+            moments = sky_fraction_moments(self.mask)
+        alm = harmonics.map2alm_tqu(array, self.lmax, iterations=self.iterations, nthreads=self.nthreads)
+        return self._finish(alm, moments, nside=nside, source="maps")
+
+    def filter_alm(self, alm) -> FilteredFields:
+        """Filter observed full-sky (T, E, B) harmonic coefficients (beam-convolved, µK), skipping the maps.
+
+        Parameters
+        ----------
+        alm : complex array, shape (3, nalm(L)) with L ≥ lmax
+            Coefficients to any band limit at or above the filter's ``lmax`` (higher ℓ are dropped).
+
+        Raises
+        ------
+        ValueError
+            If a mask was given (masks act on maps: use :meth:`filter`), or for a bad shape.
+        """
+        if self.mask is not None:
+            raise ValueError("filter_alm takes full-sky coefficients; with a mask, filter the maps with filter(maps)")
+        raw = np.asarray(alm)
+        if raw.ndim != 2 or raw.shape[0] != 3:
+            raise ValueError(f"alm must have shape (3, nalm) for T, E, B, got {raw.shape}")
+        lmax_in = harmonics.lmax_from_nalm(raw.shape[1], "alm")
+        if lmax_in < self.lmax:
+            raise ValueError(f"alm reach l={lmax_in} but the filter needs l up to lmax={self.lmax}")
+        array = as_finite_array(raw, "alm", dtype=np.complex128)
+        if lmax_in > self.lmax:
+            array = truncate_alm(array, self.lmax, lmax_in)
+        return self._finish(array, None, source="alm")
+
+    def _finish(self, alm: np.ndarray, moments, **extra) -> FilteredFields:
+        alm = alm * self._factors[:, ell_of_alm(self.lmax)]
+        return FilteredFields(alm, self.lmax, self._signal(), moments, self._settings(**extra))
+
+
+def _check_maps(maps) -> np.ndarray:
+    raw = np.asarray(maps) if not isinstance(maps, (str, bytes)) else maps
+    if isinstance(raw, np.ndarray) and (raw.ndim != 2 or raw.shape[0] != 3):
+        raise ValueError(f"maps must have shape (3, npix) for T, Q, U, got {raw.shape}")
+    array = as_finite_array(maps, "maps", ndim=2)
+    npix_to_nside(array.shape[1], "maps")
+    return array

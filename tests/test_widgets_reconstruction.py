@@ -140,6 +140,32 @@ def test_template_is_built_from_the_reconstruction_as_lensrec_delens_does(app, e
     assert 0 < section.template.alens_residual < 1
 
 
+def test_masked_sky_spectra_are_divided_by_the_mask_moments():
+    from lensrec import power
+
+    workbench = Workbench(experiment="deep_highland", nthreads=2)
+    sky = workbench["sky"]
+    sky.nside.value, sky.lmax.value = 32, 64
+    sky.mask.value = "latitude"
+    sky.b_min.value, sky.taper.value = 20.0, 10.0
+    sky.simulate_button.click()
+    assert workbench.wait(120) and sky.status.kind == "ok", sky.status.message
+    section = workbench["reconstruction"]
+    section.run_button.click()
+    assert workbench.wait(120) and section.status.kind == "ok", section.status.message
+    state = workbench.state
+    result = lensrec.reconstruct(state.sky.maps, state.sky_experiment, estimator="MV", lmax_L=64, lmax=64,
+                                 mask=state.sky.mask, nthreads=2)  # fmt: skip
+    phi_input = harmonics.truncate_alm(state.sky.phi_alm, 64, state.sky.lmax_unlensed)
+    moments = lensrec.sky_fraction_moments(state.sky.mask)
+    # pseudo-C_L of w²φ̂ × φ is ⟨w²⟩ C_L (Hivon et al. 2002, ApJ 567, 2, eqs. 5–6; lensrec.power docstring)
+    expected = alm_cross_spectrum(result.phi_alm, phi_input)[2:] / moments["w2"]
+    expected = expected / alm_cross_spectrum(phi_input)[2:]
+    np.testing.assert_allclose(section.plotted()["cross"][1], expected, rtol=1e-9)
+    assert power.mask_moment_order("estimate", "estimate") == 4
+    assert "⟨w⁴⟩" in section.auto_title.get_text()
+
+
 # tests below change the shared state: keep them last
 def test_a_new_sky_withdraws_the_old_reconstruction(app):
     section = app["reconstruction"]

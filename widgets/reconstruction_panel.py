@@ -1,9 +1,10 @@
 """Section 4 – Reconstruction: the lensing convergence reconstructed from the simulated sky, against the input.
 
 Maps: the input κ and the Wiener-filtered reconstruction κ^WF (C_L^φφ/(C_L^φφ + N0_L) φ̂), both band-limited
-at lmax_L, in Mollweide views on one colour scale. Spectra (full sky): the cross-spectrum of the
-reconstruction with the input divided by the input's auto-spectrum (≈ 1 for a unit-response estimator), and
-the reconstruction's auto-spectrum minus the analytic N0 against the theory C_L^φφ, with N0 drawn.
+at lmax_L, in Mollweide views on one colour scale. Spectra: the cross-spectrum of the reconstruction with the
+input divided by the input's auto-spectrum (≈ 1 for a unit-response estimator), and the reconstruction's
+auto-spectrum minus the analytic N0 against the theory C_L^φφ, with N0 drawn; on a masked sky the pseudo-
+spectra are divided by the mask moments of lensrec.power (⟨w²⟩ for the cross, ⟨w⁴⟩ for the auto).
 """
 
 from __future__ import annotations
@@ -15,8 +16,7 @@ import ipywidgets as widgets
 import numpy as np
 
 import lensrec
-from lensrec import harmonics
-from lensrec.biases import alm_cross_spectrum
+from lensrec import harmonics, power
 
 from .plotting import COLORS, ESTIMATOR_COLORS, MAP_CMAP, FigureView, phi_plot_units, style_axes, symmetric_limit
 from .section import Section, labelled
@@ -56,7 +56,8 @@ class ReconstructionSection(Section):
     guide = (
         "Reconstruct φ from the sky of the Sky tab with a quadratic estimator, filtered with the experiment the "
         "sky was simulated with, up to the sky's lmax. Left: the input κ; right: the Wiener-filtered "
-        "reconstruction on the same colour scale. Spectra are full-sky and band-averaged for display."
+        "reconstruction on the same colour scale. Spectra are band-averaged for display; on a masked sky they are "
+        "divided by the mask moments ⟨w²⟩ (cross) and ⟨w⁴⟩ (auto)."
     )
 
     def __init__(self, state, nthreads=None):
@@ -136,9 +137,13 @@ class ReconstructionSection(Section):
         phi_wf = lensrec.wiener_filter_phi(result.phi_alm, n0, spectra.phi)
         kappa_input = lensrec.deflection_maps(phi_input, nside, lmax_L, nthreads=self.nthreads).kappa
         kappa_wf = lensrec.deflection_maps(phi_wf, nside, lmax_L, nthreads=self.nthreads).kappa
-        cross = alm_cross_spectrum(result.phi_alm, phi_input, lmax=lmax_L)
-        input_auto = alm_cross_spectrum(phi_input, lmax=lmax_L)
-        auto = alm_cross_spectrum(result.phi_alm, lmax=lmax_L)
+        # on a masked sky the estimate carries w² and the input none: divide by ⟨w²⟩ and ⟨w⁴⟩ (lensrec.power)
+        moments = result.mask_moments
+        cross = power.mask_corrected(power.cross_spectrum(result.phi_alm, phi_input, lmax=lmax_L), moments,
+                                     power.mask_moment_order("estimate", "input"))  # fmt: skip
+        input_auto = power.auto_spectrum(phi_input, lmax=lmax_L)
+        auto = power.mask_corrected(power.auto_spectrum(result.phi_alm, lmax=lmax_L), moments,
+                                    power.mask_moment_order("estimate", "estimate"))  # fmt: skip
         with np.errstate(divide="ignore", invalid="ignore"):
             ratio = np.where(input_auto > 0, cross / input_auto, np.nan)
         auto_minus_n0 = auto - n0
@@ -254,7 +259,7 @@ class ReconstructionSection(Section):
         top = np.nanmax(phi_plot_units(products["theory"], units)[shown])
         self.ax_auto.set_ylim(top / 300.0, top * 30.0)
         masked = products["mask"] is not None
-        self.auto_title.set_text("auto − N0 against theory" + (" (masked sky: no mask correction)" if masked else ""))
+        self.auto_title.set_text("auto − N0 against theory" + (" (masked: pseudo-spectra ÷ ⟨w⁴⟩)" if masked else ""))
         self.spectra_view.draw()
 
 

@@ -63,6 +63,8 @@ class Workbench(widgets.VBox):
         Theory spectra; default the embedded fiducial cosmology.
     delay : float
         Quiet time in seconds before live plots recompute after a change (default 0.3).
+    nthreads : int, optional
+        Threads for lensrec's transforms and sums (default: ``LENSREC_NTHREADS`` or all cores).
 
     Attributes
     ----------
@@ -98,7 +100,7 @@ class Workbench(widgets.VBox):
             if available:
                 self.sections[name] = build()
             else:
-                self.sections[name] = MissingLibrarySection(self.state, title, name, needs, PURPOSES[name])
+                self.sections[name] = MissingLibrarySection(self.state, title, name, needs, PURPOSES.get(name, ""))
         self.tabs = widgets.Tab(
             children=[s.panel for s in self.sections.values()], titles=[s.title for s in self.sections.values()]
         )

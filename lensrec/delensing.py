@@ -62,7 +62,7 @@ import numpy as np
 from . import harmonics
 from ._checks import as_finite_array, as_float, as_int, resolve_nthreads
 from .harmonics import gl_grid_for_band_limits, lmax_from_nalm, scale_alm
-from .biases import alm_cross_spectrum
+from .power import auto_spectrum, cross_spectrum
 from .tensor_forecast import DELENSING_BIAS_NOTE
 
 __all__ = [
@@ -70,6 +70,7 @@ __all__ = [
     "DelensingResult",
     "wiener_filter_phi",
     "wiener_filter_e",
+    "template_inputs",
     "lensing_b_template",
     "delens",
     "delensing_spectra",
@@ -193,23 +194,23 @@ def wiener_filter_phi(phi_alm, n0, phi_spectrum=None) -> np.ndarray:
 
 
 def wiener_filter_e(e_alm, experiment, spectra=None, beam_convolved=True) -> np.ndarray:
-    """Wiener-filter full-sky E modes with isotropic noise: E^WF = C̃^EE / (C̃^EE + N^EE) · E.
+    """Wiener-filter full-sky E modes: E^WF = C̃^EE · Ē, Ē the isotropic inverse-variance-filtered E.
 
-    This is C̃^EE · Ē with Ē = E / (C̃^EE + N^EE), the inverse-variance filter of a full sky with the
-    experiment's isotropic, beam-deconvolved noise N^EE (``inf`` outside its polarization cuts, so those
-    multipoles are set to zero).
+    Ē comes from :class:`lensrec.filtering.IsotropicFilter` (Ē = E / (b_ℓ C̃^EE_tot) inside the polarization
+    cuts, 0 outside), so E^WF = C̃^EE / (C̃^EE + N^EE) · E / b_ℓ with the beam-deconvolved noise N^EE: the same
+    field as ``IsotropicFilter(...).filter(maps).wiener("E")`` for coefficients already analysed from maps.
 
     Parameters
     ----------
     e_alm : complex array, shape (nalm(lmax),)
-        Observed E modes in µK: as analysed from the maps (beam-convolved) if ``beam_convolved``, else already
-        divided by the beam.
+        Observed E modes in µK on the full sky: as analysed from the maps (beam-convolved) if
+        ``beam_convolved``, else already divided by the beam.
     experiment : Experiment or str
         The survey (noise, beam and cuts), or a shipped name / TOML path.
     spectra : Spectra, optional
-        Theory spectra for the lensed C̃^EE; default :func:`lensrec.fiducial_spectra`.
+        Theory spectra for C̃^EE and the total spectra; default :func:`lensrec.fiducial_spectra`.
     beam_convolved : bool, default True
-        Divide ``e_alm`` by the beam b_ℓ first.
+        Whether ``e_alm`` still carries the beam.
 
     Returns
     -------
@@ -236,26 +237,66 @@ def wiener_filter_e(e_alm, experiment, spectra=None, beam_convolved=True) -> np.
     (True, 0.0)
     """
     from .experiment import load_experiment
-    from .spectra import Spectra, fiducial_spectra
+    from .filtering import IsotropicFilter
 
     e_alm, lmax = _coefficients(e_alm, "e_alm")
-    experiment = load_experiment(experiment)
-    spectra = fiducial_spectra() if spectra is None else spectra
-    if not isinstance(spectra, Spectra):
-        raise TypeError(f"spectra must be a lensrec.Spectra (or None for the fiducial ones), got {type(spectra).__name__}")
-    if spectra.lmax < lmax:
-        raise ValueError(f"spectra reach l = {spectra.lmax} but e_alm reaches l = {lmax}")
     if not isinstance(beam_convolved, (bool, np.bool_)):
         raise TypeError(f"beam_convolved must be True or False, got {beam_convolved!r}")
-    signal = np.array(spectra.lensed["EE"][: lmax + 1])
-    noise = experiment.noise_spectrum("E", lmax)
-    factor = np.zeros(lmax + 1)
-    used = np.isfinite(noise) & (signal + noise > 0)
-    factor[used] = signal[used] / (signal[used] + noise[used])
-    if beam_convolved:
-        beam = experiment.beam(lmax)
-        factor[used] /= beam[used]
-    return scale_alm(e_alm, factor, lmax)
+    experiment = load_experiment(experiment)
+    fields = np.zeros((3, e_alm.size), dtype=np.complex128)
+    fields[1] = e_alm if beam_convolved else scale_alm(e_alm, experiment.beam(lmax), lmax)
+    return IsotropicFilter(experiment, spectra, lmax=lmax).filter_alm(fields).wiener("E")
+
+
+def template_inputs(maps, experiment, spectra=None, lmax: int | None = None, mask=None,
+                    nthreads: int | None = None):
+    """The Wiener-filtered E and the observed B (sky units) of T, Q, U maps, from the isotropic filter.
+
+    Parameters
+    ----------
+    maps : array, shape (3, 12·nside²)
+        Observed T, Q, U in µK (HEALPix RING).
+    experiment : Experiment or str
+    spectra : Spectra, optional
+        Default :func:`lensrec.fiducial_spectra`.
+    lmax : int, optional
+        Band limit (default min(3·nside − 1, the experiment's polarization ℓ_max)).
+    mask : array, optional
+        Weights applied before filtering (:class:`lensrec.filtering.IsotropicFilter`); spectra of masked
+        B modes are pseudo-spectra (⟨w²⟩ for the observed B; E-to-B leakage is not removed).
+    nthreads : int, optional
+
+    Returns
+    -------
+    e_wiener : ndarray
+        C̃^EE · Ē (µK), zero outside the polarization cuts.
+    b_observed : ndarray
+        B̄ · C^BB_tot = B / b_ℓ (µK, beam removed), zero outside the polarization cuts.
+    fields : FilteredFields
+        The filtered fields themselves.
+
+    Raises
+    ------
+    TypeError, ValueError
+        As :class:`lensrec.filtering.IsotropicFilter` (bad maps, nside, lmax above 3·nside − 1, mask).
+    """
+    from ._checks import check_lmax_for_nside
+    from .experiment import load_experiment
+    from .filtering import IsotropicFilter
+
+    experiment = load_experiment(experiment)
+    shape = np.shape(maps) if not isinstance(maps, (str, bytes)) else ()
+    if len(shape) != 2 or shape[0] != 3:
+        raise ValueError(f"maps must have shape (3, npix) for T, Q, U, got {shape}")
+    nside = harmonics.npix_to_nside(shape[1], "maps")
+    if lmax is None:
+        lmax = min(3 * nside - 1, experiment.ell_max_polarization)
+    lmax = check_lmax_for_nside(lmax, nside)
+    field_filter = IsotropicFilter(experiment, spectra, lmax=lmax, mask=mask, nthreads=nthreads)
+    fields = field_filter.filter(maps)
+    total = field_filter.total["BB"]
+    b_factor = np.where(np.isfinite(total), total, 0.0)
+    return fields.wiener("E"), scale_alm(fields.B, b_factor, lmax), fields
 
 
 # ----------------------------------------------------------------------------------------- templates
@@ -669,16 +710,16 @@ def delensing_spectra(observed_b_alm, template_alm, noise_bb=None, lensed_bb=Non
     ell_min = int(finite[0]) if ell_min is None else as_int(ell_min, "ell_min", minimum=2, maximum=lmax)
     ell_max = int(finite[-1]) if ell_max is None else as_int(ell_max, "ell_max", minimum=ell_min, maximum=lmax)
     residual = observed - template_alm
-    observed_bb = alm_cross_spectrum(observed, lmax=lmax)
-    residual_bb = alm_cross_spectrum(residual, lmax=lmax)
+    observed_bb = auto_spectrum(observed, lmax)
+    residual_bb = auto_spectrum(residual, lmax)
     return DelensingResult(
         ell=np.arange(lmax + 1),
         template_alm=template_alm,
         residual_alm=residual,
         observed_bb=observed_bb,
-        template_bb=alm_cross_spectrum(template_alm, lmax=lmax),
+        template_bb=auto_spectrum(template_alm, lmax),
         residual_bb=residual_bb,
-        cross_bb=alm_cross_spectrum(observed, template_alm, lmax=lmax),
+        cross_bb=cross_spectrum(observed, template_alm, lmax),
         noise_bb=noise,
         lensed_bb=lensed,
         efficiency=delensing_efficiency(observed_bb, residual_bb, noise),

@@ -117,10 +117,7 @@ def test_template_is_built_from_the_reconstruction_as_lensrec_delens_does(app, e
     result, _ = expected
     lmax = min(LMAX, experiment.ell_max_polarization)
     # the delensing pipeline written out with lensrec's own functions
-    observed = harmonics.map2alm_tqu(sky.maps, lmax, nthreads=2)
-    beam = experiment.beam(lmax)
-    e_wiener = delensing.wiener_filter_e(observed[1], experiment, spectra)
-    b_observed = harmonics.scale_alm(observed[2], 1.0 / beam, lmax)
+    e_wiener, b_observed, _ = delensing.template_inputs(sky.maps, experiment, spectra, lmax=lmax, nthreads=2)
     phi_wiener = lensrec.wiener_filter_phi(result.phi_alm, result.n0["gradient"], spectra.phi)
     reference = lensrec.delens(b_observed, e_wiener, phi_wiener, lmax, method="first_order",
                                noise_bb=experiment.noise_spectrum("B", lmax), lensed_bb=spectra.lensed["BB"],

@@ -14,7 +14,7 @@ import ipywidgets as widgets
 import numpy as np
 
 import lensrec
-from lensrec import delensing, harmonics
+from lensrec import delensing
 
 from .plotting import COLORS, PAIR, FigureView, d_ell, finite_or_nan, style_axes
 from .section import Section, heading, labelled
@@ -23,6 +23,7 @@ from .work import LongTask
 __all__ = ["DelensingSection"]
 
 TEMPLATE_NEEDS = ("reconstruct", "delens", "wiener_filter_phi")
+# lensrec.delensing.template_inputs gives the Wiener-filtered E and the observed B of the maps
 
 
 class DelensingSection(Section):
@@ -177,11 +178,9 @@ class DelensingSection(Section):
         lmax = min(sky.lmax, experiment.ell_max_polarization)
 
         def work(report, cancel):
-            report(0.05, "E and B modes of the maps…")
-            observed = harmonics.map2alm_tqu(sky.maps, lmax, nthreads=nthreads)
-            beam = experiment.beam(lmax)
-            e_wiener = delensing.wiener_filter_e(observed[1], experiment, spectra)
-            b_observed = harmonics.scale_alm(observed[2], np.where(beam > 0, 1.0 / beam, 0.0), lmax)
+            report(0.05, "Wiener-filtered E and observed B of the maps…")
+            e_wiener, b_observed, _ = delensing.template_inputs(sky.maps, experiment, spectra, lmax=lmax,
+                                                                mask=sky.mask, nthreads=nthreads)  # fmt: skip
             phi_wiener = lensrec.wiener_filter_phi(reconstruction.phi_alm, reconstruction.n0["gradient"], spectra.phi)
             report(0.3, f"lensing the E modes ({method})…")
             return lensrec.delens(b_observed, e_wiener, phi_wiener, lmax, method=method,

@@ -11,9 +11,12 @@ __version__ = "0.1.0"
 from .delensing import DelensingResult, delens, delensing_spectra, lensing_b_template, wiener_filter_phi
 from .estimator_noise import ReconstructionNoise, reconstruction_noise
 from .experiment import Experiment, available_experiments, load_experiment
+from .filtering import FieldFilter, FilteredFields, IsotropicFilter
 from .io import OutputExistsError
 from .lensed_spectra import delensed_spectra, first_order_lensed_bb, lensed_cmb_spectra
 from .masks import apodize_binary_mask, cap_mask, latitude_mask, load_mask, sky_fraction_moments
+from .power import auto_spectrum, bin_spectrum, binned_cross_spectrum, cross_spectrum, mask_corrected
+from .reconstruction import MeanField, Reconstruction, mean_field, quadratic_estimates, reconstruct, reconstruct_filtered
 from .sky import SimulatedSky, deflection_maps, lens_alm, lens_tqu_alm, simulate_sky
 from .spectra import Spectra, fiducial_spectra, spectra_from_camb
 from .tensor_forecast import delensing_forecast, sigma_r
@@ -49,4 +52,18 @@ __all__ = [
     "delens",
     "delensing_spectra",
     "wiener_filter_phi",
+    "FieldFilter",
+    "FilteredFields",
+    "IsotropicFilter",
+    "Reconstruction",
+    "MeanField",
+    "reconstruct",
+    "reconstruct_filtered",
+    "quadratic_estimates",
+    "mean_field",
+    "cross_spectrum",
+    "auto_spectrum",
+    "bin_spectrum",
+    "binned_cross_spectrum",
+    "mask_corrected",
 ]

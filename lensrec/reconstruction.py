@@ -1,0 +1,774 @@
+r"""Curved-sky quadratic-estimator reconstruction of the lensing potential φ (and the curl Ω) from maps.
+
+The estimators are those of :mod:`lensrec.estimator_weights` (TT, TE, EE, TB, EB; weights [f^XY]* of
+Okamoto & Hu 2003, PRD 67, 083002), evaluated in position space as products of filtered maps and
+normalised with the exact full-sky responses of :mod:`lensrec.estimator_noise`.
+
+Position-space form
+===================
+By item 5 of the :mod:`lensrec.estimator_weights` docstring, each separable term t of the weight
+(coefficient c_t, spins (s1, sL, s2), ℓ-weights u_t(ℓ1), v(L) = √(L(L+1)), w_t(ℓ2)) contributes::
+
+    ḡ_LM ⊃ (1/η) c_t v(L) (−1)^sL ∫ dn ₋ₛL Y*_LM(n) A_t(n) B_t(n),
+    A_t = Σ_ℓm u_t(ℓ) X̄^a_ℓm ₛ₁Y_ℓm ,   B_t = Σ_ℓm w_t(ℓ) Ȳ^b_ℓm ₛ₂Y_ℓm ,
+
+where X̄^a is the filtered field X of the *first* input and Ȳ^b the filtered Y of the *second* input. All
+lensing kernels have sL = ±1 and v(L) = √(L(L+1)). Three facts make this cheap:
+
+1. A leg Σ u(ℓ) X̄_ℓm ₛY_ℓm of a real field with a real ℓ-weight is one spin-|s| synthesis (gradient
+   coefficients −u X̄, no curl, in healpy/ducc0's convention ₛf = −Σ (G + iC) ₛY), and its spin −s
+   partner is free: Σ u X̄ ₋ₛY = (−1)^s conj(Σ u X̄ ₛY) (from ₛY*_ℓm = (−1)^(s+m) ₋ₛY_ℓ,−m and
+   X̄_ℓ,−m = (−1)^m X̄*_ℓm).
+2. With F₊₁ = Σ_{sL=−1} c_t A_t B_t and F₋₁ = Σ_{sL=+1} c_t A_t B_t, the relation
+   ∫ ₋₁Y*_LM F = −(−1)^M conj(∫ ₁Y*_L,−M conj F) and the reality of ḡ (ḡ_L,−M = (−1)^M ḡ*_LM, which
+   f* = (−1)^(ℓ1+L+ℓ2) f guarantees for any two real inputs) give::
+
+       ḡ^grad_LM = √(L(L+1))/η · G_LM[H],    H = F₊₁ − conj(F₋₁),
+
+   where G, C are the gradient and curl coefficients of the spin-1 field H = −Σ (G + iC) ₁Y: one spin-1
+   analysis per estimator. conj(F₋₁) is again a sum of products of legs (at negated spins).
+3. The curl weights are the gradient ones times iσ (κ_σ = −iσ in the kernel), so H^curl = −i H^grad
+   and ḡ^curl_LM = √(L(L+1))/η · C_LM[H^grad]: the same analysis gives both components (checked when
+   the plan is built).
+
+The products are evaluated on a Gauss–Legendre grid with ⌊(2ℓ_max + L_max)/2⌋ + 1 rings and
+≥ 2ℓ_max + L_max + 1 pixels per ring (:func:`lensrec.harmonics.gl_grid_for_band_limits`): H is
+band-limited at 2ℓ_max, so the analysis to L_max is exact quadrature (no aliasing). The grid is processed
+in blocks of ring pairs (north and south together) to bound memory.
+
+Transform counts (full-sky equivalents, ``Reconstruction.settings["transforms"]``) for one input (a = b):
+TT 2 syntheses (spin 0 T̄, spin 1 √(ℓ(ℓ+1)) C^TT T̄) + 1 spin-1 analysis; EE 3 + 1 (Ē at spin 2, C^EE Ē
+at spins 1 and 3); TB 3 + 1; TE 5 + 1; EB 6 + 1 (3 + 1 when C^BB = 0 in the weights); MV 11 + 5, every
+leg shared between the estimators that use it. Each distinct (field, ℓ-weight, |spin|) needs its own
+synthesis and each estimator its own analysis (its normalisation and MV weight depend on L), so these are
+the minimum for this form. Two different inputs need both sides' legs (e.g. MV: 16 syntheses + 5).
+
+Leg order of ḡ[a, b]: the first field of the label comes from the first input, the second from the
+second input: TE[a, b] uses T̄ of a and Ē of b; TB[a, b] T̄ of a and B̄ of b; EB[a, b] Ē of a and B̄ of b;
+TT and EE are symmetric, ḡ[a, b] = ḡ[b, a]. Mixed pairs (data × simulation, simulation i × j) are what
+realization-dependent N0 and N1 need (Namikawa, Hanson & Takahashi 2013, MNRAS 431, 609).
+
+Normalisation: φ̂_LM = A_L ḡ_LM with A_L = 1/R_L from :func:`lensrec.reconstruction_noise` (full sky,
+lensed weights by default); the MV estimate is Σ_i w_i(L) φ̂^i_LM with the MV weights of the N0
+covariance. On a masked sky the same full-sky normalisation is used, so φ̂ ≈ w²φ locally; correct
+spectra with the mask moments (:mod:`lensrec.power`) and subtract the mean-field
+(:func:`mean_field`). L < 2 is set to zero.
+"""
+
+from __future__ import annotations
+
+import concurrent.futures
+import difflib
+import time
+from collections.abc import Mapping
+from dataclasses import dataclass
+from types import MappingProxyType
+
+import numpy as np
+
+from ._checks import as_int, resolve_nthreads
+from .estimator_noise import ReconstructionNoise, reconstruction_noise
+from .estimator_weights import COMPONENTS, ESTIMATOR_FIELDS, FactorTable, quadratic_estimator
+from .experiment import Experiment, load_experiment
+from .filtering import FieldFilter, FilteredFields, IsotropicFilter
+from .harmonics import ell_of_alm, gl_grid_for_band_limits, nalm
+from .spectra import Spectra, fiducial_spectra
+
+__all__ = [
+    "ESTIMATORS",
+    "QuadraticEstimates",
+    "Reconstruction",
+    "MeanField",
+    "quadratic_estimates",
+    "reconstruct_filtered",
+    "reconstruct",
+    "mean_field",
+]
+
+ESTIMATORS = ("TT", "TE", "EE", "TB", "EB", "MV")
+BASE_ESTIMATORS = ("TT", "TE", "EE", "TB", "EB")
+_FIELD_INDEX = {"T": 0, "E": 1, "B": 2}
+# Work space for one block of rings (legs and products); bounds the peak memory at any size.
+_WORKSPACE_BYTES = 768 * 2**20
+# Points per product block: a few arrays of this many complex values stay in cache.
+_PRODUCT_BLOCK = 1 << 15
+# ducc0 0.42 measured: the "STANDARD" spin-1 and spin-2 syntheses (with a zero curl) are faster than
+# "GRAD_ONLY"; for spin 3 the reverse holds. Only speed depends on this choice.
+_SYNTHESIS_MODE = {1: "STANDARD", 2: "STANDARD", 3: "GRAD_ONLY"}
+
+
+# ------------------------------------------------------------------------------------------- labels
+def _check_label(estimator, allowed=ESTIMATORS) -> str:
+    if not isinstance(estimator, str):
+        raise TypeError(f"estimator must be a string from {allowed}, got {estimator!r}")
+    if estimator not in allowed:
+        close = difflib.get_close_matches(estimator.upper(), allowed, n=1, cutoff=0.4)
+        hint = f"; did you mean {close[0]!r}?" if close else ""
+        raise ValueError(f"unknown estimator {estimator!r}{hint} Allowed: {', '.join(allowed)}")
+    return estimator
+
+
+def _check_labels(estimators) -> tuple[str, ...]:
+    if isinstance(estimators, str):
+        estimators = [part.strip() for part in estimators.split(",")]
+    labels = tuple(_check_label(label, BASE_ESTIMATORS) for label in estimators)
+    if not labels or len(set(labels)) != len(labels):
+        raise ValueError(f"estimators must be distinct labels from {BASE_ESTIMATORS}, got {estimators!r}")
+    return labels
+
+
+# --------------------------------------------------------------------------------------------- plan
+def _strip_filters(names) -> tuple[str, ...]:
+    """ℓ-weights of a leg without the filters (the filtered fields already hold them)."""
+    return tuple(sorted(name for name in names if not name.startswith("inverse:")))
+
+
+def _products(label: str, component: str, factors: FactorTable, shared: bool) -> dict:
+    """{((leg, spin), (leg, spin)): coefficient} of H = F₊₁ − conj(F₋₁) for one estimator and component.
+
+    A leg is (side, field, ℓ-weight names, |spin|); side 0 is the first input, 1 the second (0 for both
+    when they are the same fields, and then the unordered pair is the key).
+    """
+    estimator = quadratic_estimator(label, component)
+    x, y = estimator.fields
+    out: dict = {}
+    for term in estimator.weight.terms:
+        names = [n for n in term.first + term.lensing + term.second if not n.startswith("inverse:")]
+        if any(factors.is_zero(name) for name in names):
+            continue
+        if term.lensing != ("ladder(0)",):
+            raise RuntimeError(f"internal error: unexpected lensing factor {term.lensing} in {label}")
+        s1, s_l, s2 = term.spins
+        if s_l == -1:
+            coefficient, spin_a, spin_b = complex(term.coefficient), s1, s2
+        elif s_l == 1:  # −conj(c A B) = conj(c)·(−1)^(s1+s2+1)·A_{−s1} B_{−s2}, with s1 + s2 = −1
+            coefficient, spin_a, spin_b = complex(term.coefficient).conjugate(), -s1, -s2
+        else:
+            raise RuntimeError(f"internal error: lensing spin {s_l} in {label}")
+        leg_a = ((0, x, _strip_filters(term.first), abs(spin_a)), spin_a)
+        leg_b = ((0 if shared else 1, y, _strip_filters(term.second), abs(spin_b)), spin_b)
+        key = (leg_a, leg_b) if not shared or leg_a <= leg_b else (leg_b, leg_a)
+        out[key] = out.get(key, 0.0) + coefficient
+    return {key: value for key, value in out.items() if abs(value) > 1e-15}
+
+
+def _plan(labels, factors: FactorTable, shared: bool) -> dict:
+    """Per estimator: its products (gradient form) and η; checks H^curl = −i H^grad term by term."""
+    plan = {}
+    for label in labels:
+        gradient = _products(label, "gradient", factors, shared)
+        curl = _products(label, "curl", factors, shared)
+        if set(gradient) != set(curl) or any(abs(curl[k] + 1j * gradient[k]) > 1e-12 * abs(gradient[k])
+                                             for k in gradient):
+            raise RuntimeError(f"internal error: the curl weights of {label} are not i·sigma times the gradient ones")
+        x, y = ESTIMATOR_FIELDS[label]
+        plan[label] = (gradient, 2 if x == y else 1)
+    return plan
+
+
+# ------------------------------------------------------------------------------------------- result
+def _readonly(array, dtype=None) -> np.ndarray:
+    array = np.array(array, dtype=dtype, copy=True)
+    array.setflags(write=False)
+    return array
+
+
+@dataclass(frozen=True, eq=False)
+class QuadraticEstimates:
+    """Unnormalised estimates ḡ^XY_LM of a pair of filtered inputs (read-only).
+
+    Attributes
+    ----------
+    gradient, curl : mapping label → complex ndarray, shape (nalm(lmax_L),)
+        ḡ for the lensing (φ) and curl (Ω) weights, healpy layout; normalise with A_L = 1/R_L.
+    lmax_L : int
+    shared : bool
+        True when both legs came from the same filtered fields.
+    settings : mapping
+        Grid shape, ring blocks, transform counts.
+    """
+
+    gradient: Mapping
+    curl: Mapping
+    lmax_L: int
+    shared: bool
+    settings: Mapping
+
+
+@dataclass(frozen=True, eq=False)
+class Reconstruction:
+    """A normalised quadratic-estimator reconstruction (all arrays read-only).
+
+    Attributes
+    ----------
+    phi_alm : complex ndarray, shape (nalm(lmax_L),)
+        φ̂_LM (dimensionless), response one to the input φ on the full sky; zero for L < 2.
+    curl_alm : complex ndarray
+        Ω̂_LM from the curl weights (a null test: no curl signal is expected from lensing).
+    estimator : str
+        "TT", "TE", "EE", "TB", "EB" or "MV".
+    lmax_L : int
+    n0 : mapping component → ndarray
+        Analytic Gaussian N0 of ``phi_alm`` ("gradient") and ``curl_alm`` ("curl"), C_L units, NaN below L = 2.
+    response : mapping component → ndarray
+        R_L of the unnormalised estimator (A_L = 1/R_L); for "MV", 1/N0_MV (the convention of
+        :class:`lensrec.ReconstructionNoise`).
+    unnormalised : mapping label → mapping component → ndarray
+        The ḡ_LM that were combined (the five estimators for "MV").
+    mv_weights : mapping component → ndarray or None
+        For "MV": per-L weights of the five normalised estimators (shape (5, lmax_L + 1)).
+    noise : ReconstructionNoise
+        The full noise calculation used for the normalisation.
+    mask_moments : mapping or None
+        ⟨wⁿ⟩ of the mask of the first input (None on the full sky).
+    mean_field_subtracted : bool
+    settings : mapping
+        Estimator, lmax, lmax_L, weights, grid, transform counts, filter settings.
+    """
+
+    phi_alm: np.ndarray
+    curl_alm: np.ndarray
+    estimator: str
+    lmax_L: int
+    n0: Mapping
+    response: Mapping
+    unnormalised: Mapping
+    mv_weights: Mapping | None
+    noise: ReconstructionNoise
+    mask_moments: Mapping | None
+    mean_field_subtracted: bool
+    settings: Mapping
+
+    @property
+    def L(self) -> np.ndarray:
+        """0 … lmax_L."""
+        return np.arange(self.lmax_L + 1)
+
+    def alm(self, component: str = "gradient") -> np.ndarray:
+        """``phi_alm`` for "gradient", ``curl_alm`` for "curl"."""
+        if component not in COMPONENTS:
+            raise ValueError(f"component must be one of {COMPONENTS}, got {component!r}")
+        return self.phi_alm if component == "gradient" else self.curl_alm
+
+
+@dataclass(frozen=True, eq=False)
+class MeanField:
+    """The average of normalised reconstructions of simulations: the estimate's mean-field ⟨φ̂⟩.
+
+    Attributes
+    ----------
+    phi_alm, curl_alm : complex ndarray, shape (nalm(lmax_L),)
+    estimator : str
+    lmax_L : int
+    count : int
+        Number of simulations averaged; the mean-field estimate carries noise N0/count per mode.
+    """
+
+    phi_alm: np.ndarray
+    curl_alm: np.ndarray
+    estimator: str
+    lmax_L: int
+    count: int
+
+    def alm(self, component: str = "gradient") -> np.ndarray:
+        if component not in COMPONENTS:
+            raise ValueError(f"component must be one of {COMPONENTS}, got {component!r}")
+        return self.phi_alm if component == "gradient" else self.curl_alm
+
+
+# ------------------------------------------------------------------------------------------- engine
+def _ring_blocks(ntheta: int, rings_per_block: int) -> list[np.ndarray]:
+    """Ring indices in blocks of north/south pairs (θ and π − θ together), the equator in the last one."""
+    half = ntheta // 2
+    pairs = max(1, rings_per_block // 2)
+    blocks = []
+    for start in range(0, half, pairs):
+        north = np.arange(start, min(start + pairs, half))
+        blocks.append(np.concatenate([north, ntheta - 1 - north[::-1]]))
+    if ntheta % 2:
+        if blocks:
+            blocks[-1] = np.sort(np.append(blocks[-1], half))
+        else:
+            blocks.append(np.array([half]))
+    return blocks
+
+
+def _leg_coefficients(legs, fields, factors: FactorTable, lmax: int) -> np.ndarray:
+    """−u(ℓ) X̄_ℓm for every leg (rows), plus one zero row last (the curl of the spin-s syntheses)."""
+    ell = ell_of_alm(lmax)
+    out = np.zeros((len(legs) + 1, nalm(lmax)), dtype=np.complex128)
+    for row, (side, name, weights, _spin) in enumerate(legs):
+        u = factors.product(weights, lmax)
+        np.multiply(fields[side].alm[_FIELD_INDEX[name]], -u[ell], out=out[row])
+    return out
+
+
+def _synthesise_legs(legs, coefficients, lmax, geometry, npix, nthreads):
+    """Leg maps on the rings of ``geometry``: real for spin 0, complex Σ u X̄ ₛY for spin s > 0."""
+    import ducc0
+
+    from numpy.lib.stride_tricks import as_strided
+
+    row_bytes = coefficients.strides[0]
+    zero_row = coefficients.shape[0] - 1
+    maps = []
+    for row, (_side, _name, _weights, spin) in enumerate(legs):
+        if spin == 0:
+            values = np.empty((1, npix))
+            ducc0.sht.synthesis(alm=coefficients[row:row + 1], lmax=lmax, spin=0, nthreads=nthreads, map=values,
+                                **geometry)
+            values = values[0]
+            values *= -1.0  # the stored coefficients are −u X̄
+        else:
+            values = np.empty(npix, dtype=np.complex128)
+            view = values.view(np.float64).reshape(npix, 2).T
+            mode = _SYNTHESIS_MODE[spin]
+            if mode == "GRAD_ONLY":
+                alm = coefficients[row:row + 1]
+            else:  # gradient row and the shared zero row as one (2, nalm) array, without a copy
+                alm = as_strided(coefficients[row], shape=(2, coefficients.shape[1]),
+                                 strides=((zero_row - row) * row_bytes, coefficients.strides[1]))
+            ducc0.sht.synthesis(alm=alm, lmax=lmax, spin=spin, nthreads=nthreads, map=view, mode=mode, **geometry)
+        maps.append(values)
+    return maps
+
+
+def _multiply_block(block, legs_maps, products, out, scratch):
+    """out[e, block] = Σ coefficient · leg_a · leg_b for every estimator e (legs conjugated as needed)."""
+    tmp = scratch[: block.stop - block.start]
+    for e, items in enumerate(products):
+        acc = out[e, block]
+        first = True
+        for index_a, conj_a, index_b, conj_b, coefficient in items:
+            a = legs_maps[index_a][block]
+            b = legs_maps[index_b][block]
+            if conj_a and conj_b:
+                np.multiply(a, b, out=tmp)
+                np.conjugate(tmp, out=tmp)
+            elif conj_a:
+                np.conjugate(a, out=tmp)
+                tmp *= b
+            elif conj_b:
+                np.conjugate(b, out=tmp)
+                tmp *= a
+            else:
+                np.multiply(a, b, out=tmp)
+            if first:
+                np.multiply(tmp, coefficient, out=acc)
+                first = False
+            else:
+                tmp *= coefficient
+                acc += tmp
+        if first:
+            acc[...] = 0.0
+
+
+def quadratic_estimates(first: FilteredFields, second: FilteredFields | None = None,
+                        estimators=BASE_ESTIMATORS, lmax_L: int | None = None, spectra: Spectra | None = None,
+                        lensed_weights: bool = True, nthreads: int | None = None) -> QuadraticEstimates:
+    """Unnormalised quadratic estimates ḡ^XY_LM[a, b] in position space (gradient and curl weights).
+
+    Parameters
+    ----------
+    first : FilteredFields
+        Input a: the first field of each label (T of TE, TB; E of EB) comes from it.
+    second : FilteredFields, optional
+        Input b: the second field of each label; default ``first`` (then legs are shared and the
+        symmetric products computed once).
+    estimators : sequence of str or str
+        Labels from "TT", "TE", "EE", "TB", "EB" (default all five); a comma-separated string works too.
+    lmax_L : int, optional
+        Highest L returned (default: the fields' lmax; at most 2·lmax, the band limit of the products).
+    spectra : Spectra, optional
+        CMB spectra in the weights f^XY (default: the fiducial cosmology).
+    lensed_weights : bool
+        Lensed (default, common practice) or unlensed spectra in the weights.
+    nthreads : int, optional
+
+    Returns
+    -------
+    QuadraticEstimates
+        ḡ as defined in :mod:`lensrec.estimator_weights` (item 2) with X̄ = the given filtered fields.
+
+    Raises
+    ------
+    TypeError, ValueError
+        Inputs that are not FilteredFields or of different lmax, unknown labels, lmax_L out of range,
+        spectra too short.
+
+    References
+    ----------
+    Okamoto & Hu 2003, PRD 67, 083002 (full-sky estimators); the position-space form follows from the
+    Gaunt integral of spin-weighted harmonics (module docstring).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from lensrec.filtering import FilteredFields
+    >>> from lensrec.harmonics import nalm
+    >>> rng = np.random.default_rng(1)
+    >>> alm = rng.normal(size=(3, nalm(16))) + 0j
+    >>> fields = FilteredFields(alm, 16, {k: np.ones(17) for k in ("TT", "EE", "BB", "TE")})
+    >>> g = quadratic_estimates(fields, estimators="TT,EB", lmax_L=8, nthreads=1)
+    >>> sorted(g.gradient), g.gradient["TT"].shape
+    (['EB', 'TT'], (45,))
+    """
+    import ducc0
+
+    if not isinstance(first, FilteredFields):
+        raise TypeError(f"first must be FilteredFields (from a filter's filter(maps)), got {type(first).__name__}")
+    shared = second is None or second is first
+    second = first if second is None else second
+    if not isinstance(second, FilteredFields):
+        raise TypeError(f"second must be FilteredFields or None, got {type(second).__name__}")
+    if second.lmax != first.lmax:
+        raise ValueError(f"the two inputs must share one lmax, got {first.lmax} and {second.lmax}")
+    labels = _check_labels(estimators)
+    lmax = first.lmax
+    lmax_L = lmax if lmax_L is None else as_int(lmax_L, "lmax_L", minimum=1, maximum=2 * lmax)
+    spectra = fiducial_spectra() if spectra is None else spectra
+    if not isinstance(spectra, Spectra):
+        raise TypeError(f"spectra must be a lensrec Spectra object, got {type(spectra).__name__}")
+    if spectra.lmax < lmax:
+        raise ValueError(f"spectra reach l={spectra.lmax} but the filtered fields go to lmax={lmax}")
+    nthreads = resolve_nthreads(nthreads)
+    signal = spectra.cmb(lensed=bool(lensed_weights))
+    factors = FactorTable({f"cmb:{key}": signal[key][: lmax + 1] for key in ("TT", "EE", "BB", "TE")})
+    plan = _plan(labels, factors, shared)
+    fields = (first, second)
+
+    legs = sorted({leg for products, _ in plan.values() for key in products for leg, _ in key})
+    index = {leg: i for i, leg in enumerate(legs)}
+    products = []
+    for label in labels:
+        items = []
+        for ((leg_a, spin_a), (leg_b, spin_b)), coefficient in plan[label][0].items():
+            # a leg at spin −s is (−1)^s conj(leg at +s)
+            conj_a, conj_b = spin_a < 0, spin_b < 0
+            sign = (-1) ** (abs(spin_a) * conj_a + abs(spin_b) * conj_b)
+            items.append((index[leg_a], conj_a, index[leg_b], conj_b, complex(sign * coefficient)))
+        products.append(items)
+
+    grid = gl_grid_for_band_limits(lmax_L, 2 * lmax)
+    theta = ducc0.misc.GL_thetas(grid.ntheta)
+    ring_weights = ducc0.sht.get_gridweights("GL", grid.ntheta) / grid.nphi
+    n_complex = sum(1 for leg in legs if leg[3] > 0) + len(labels)
+    ring_bytes = grid.nphi * (16 * n_complex + 8 * (len(legs) - n_complex + len(labels)))
+    blocks = _ring_blocks(grid.ntheta, max(2, _WORKSPACE_BYTES // max(ring_bytes, 1)))
+    coefficients = _leg_coefficients(legs, fields, factors, lmax)
+    result = np.zeros((len(labels), 2, nalm(lmax_L)), dtype=np.complex128)
+    pool = concurrent.futures.ThreadPoolExecutor(nthreads) if nthreads > 1 else None
+    seconds = {"legs": 0.0, "products": 0.0, "analysis": 0.0}
+    try:
+        for rings in blocks:
+            clock = time.perf_counter()
+            npix = rings.size * grid.nphi
+            geometry = {"theta": np.ascontiguousarray(theta[rings]), "nphi": np.full(rings.size, grid.nphi, np.uintp),
+                        "phi0": np.zeros(rings.size), "ringstart": (np.arange(rings.size) * grid.nphi).astype(np.uintp)}
+            leg_maps = _synthesise_legs(legs, coefficients, lmax, geometry, npix, nthreads)
+            seconds["legs"] += time.perf_counter() - clock
+            clock = time.perf_counter()
+            h = np.empty((len(labels), npix), dtype=np.complex128)
+            pieces = [slice(start, min(start + _PRODUCT_BLOCK, npix)) for start in range(0, npix, _PRODUCT_BLOCK)]
+            if pool is None:
+                scratch = np.empty(_PRODUCT_BLOCK, dtype=np.complex128)
+                for piece in pieces:
+                    _multiply_block(piece, leg_maps, products, h, scratch)
+            else:
+                scratches = {}
+
+                def work(piece):
+                    import threading
+
+                    key = threading.get_ident()
+                    if key not in scratches:
+                        scratches[key] = np.empty(_PRODUCT_BLOCK, dtype=np.complex128)
+                    _multiply_block(piece, leg_maps, products, h, scratches[key])
+
+                list(pool.map(work, pieces))
+            del leg_maps
+            seconds["products"] += time.perf_counter() - clock
+            clock = time.perf_counter()
+            view = h.view(np.float64).reshape(len(labels), npix, 2).transpose(0, 2, 1)
+            result += ducc0.sht.adjoint_synthesis(map=view, lmax=lmax_L, spin=1, nthreads=nthreads,
+                                                  ringfactor=np.ascontiguousarray(ring_weights[rings]), **geometry)
+            del h, view
+            seconds["analysis"] += time.perf_counter() - clock
+    finally:
+        if pool is not None:
+            pool.shutdown()
+
+    ell = ell_of_alm(lmax_L).astype(np.float64)
+    root = np.sqrt(ell * (ell + 1.0))
+    gradient, curl = {}, {}
+    for k, label in enumerate(labels):
+        eta = plan[label][1]
+        gradient[label] = _readonly(result[k, 0] * (root / eta))
+        curl[label] = _readonly(result[k, 1] * (root / eta))
+    spins = {}
+    for leg in legs:
+        spins[str(leg[3])] = spins.get(str(leg[3]), 0) + 1
+    settings = {
+        "lmax": lmax, "lmax_L": lmax_L, "lensed_weights": bool(lensed_weights), "estimators": list(labels),
+        "grid": [grid.ntheta, grid.nphi], "ring_blocks": len(blocks),
+        "transforms": {"synthesis_by_spin": spins, "synthesis": len(legs), "analysis_spin1": len(labels),
+                       "total": len(legs) + len(labels)},
+        "products": int(sum(len(items) for items in products)),
+        "seconds": seconds,
+    }
+    return QuadraticEstimates(gradient=MappingProxyType(gradient), curl=MappingProxyType(curl), lmax_L=lmax_L,
+                              shared=shared, settings=MappingProxyType(settings))
+
+
+# ------------------------------------------------------------------------------------ normalisation
+def _check_mean_field(mean_field, estimator: str, lmax_L: int):
+    if mean_field is None:
+        return None
+    if not isinstance(mean_field, MeanField):
+        raise TypeError(f"mean_field must be a MeanField (from lensrec.mean_field), got {type(mean_field).__name__}")
+    if mean_field.estimator != estimator or mean_field.lmax_L != lmax_L:
+        raise ValueError(f"mean_field is for estimator {mean_field.estimator!r} to lmax_L={mean_field.lmax_L}, but "
+                         f"this reconstruction uses {estimator!r} to lmax_L={lmax_L}")
+    return mean_field
+
+
+def reconstruct_filtered(first: FilteredFields, experiment, second: FilteredFields | None = None,
+                         spectra: Spectra | None = None, estimator: str = "MV", lmax_L: int | None = None,
+                         mean_field: MeanField | None = None, lensed_weights: bool = True,
+                         noise: ReconstructionNoise | None = None, nthreads: int | None = None) -> Reconstruction:
+    """Normalised reconstruction from filtered fields (one input, or a mixed pair [a, b]).
+
+    Parameters
+    ----------
+    first : FilteredFields
+        Input a (first field of the label).
+    experiment : Experiment or str
+        The experiment whose full-sky response normalises the estimate (for an :class:`IsotropicFilter`,
+        its ``experiment`` attribute).
+    second : FilteredFields, optional
+        Input b (second field of the label); default ``first``.
+    spectra : Spectra, optional
+        Theory spectra (weights, total spectra, response); default the fiducial cosmology.
+    estimator : {'TT', 'TE', 'EE', 'TB', 'EB', 'MV'}
+    lmax_L : int, optional
+        Highest L (default and maximum: the fields' lmax).
+    mean_field : MeanField, optional
+        Subtracted from the normalised estimate.
+    lensed_weights : bool
+        Lensed (default) or unlensed CMB spectra in the weights and response.
+    noise : ReconstructionNoise, optional
+        A precomputed :func:`lensrec.reconstruction_noise` result for the same experiment, spectra, lmax_L
+        and weights (it must contain the estimator, and all five for "MV"); saves recomputing it.
+    nthreads : int, optional
+
+    Returns
+    -------
+    Reconstruction
+
+    References
+    ----------
+    Okamoto & Hu 2003, PRD 67, 083002, §III (normalisation and minimum-variance combination).
+    """
+    estimator = _check_label(estimator)
+    experiment = load_experiment(experiment)
+    if not isinstance(experiment, Experiment):
+        raise TypeError(f"experiment must be an Experiment, got {type(experiment).__name__}")
+    if not isinstance(first, FilteredFields):
+        raise TypeError(f"first must be FilteredFields, got {type(first).__name__}")
+    largest = max(experiment.ell_max_temperature, experiment.ell_max_polarization)
+    if largest > first.lmax:
+        raise ValueError(f"the experiment uses l up to {largest} but the filtered fields stop at lmax={first.lmax}; "
+                         "normalise with the experiment the filter used (IsotropicFilter.experiment)")
+    if lmax_L is None:
+        lmax_L = largest
+    lmax_L = as_int(lmax_L, "lmax_L", minimum=2)
+    if lmax_L > largest:
+        raise ValueError(f"lmax_L={lmax_L} exceeds the CMB band limit lmax={largest} of the filtered maps; choose "
+                         f"lmax_L <= {largest} (or filter to a higher lmax)")
+    mean_field = _check_mean_field(mean_field, estimator, lmax_L)
+    spectra = fiducial_spectra() if spectra is None else spectra
+    labels = BASE_ESTIMATORS if estimator == "MV" else (estimator,)
+    if noise is None:
+        noise = reconstruction_noise(experiment, spectra, estimators=ESTIMATORS if estimator == "MV" else labels,
+                                     lmax_L=lmax_L, lensed_weights=lensed_weights, nthreads=nthreads)
+    elif not isinstance(noise, ReconstructionNoise):
+        raise TypeError(f"noise must be a ReconstructionNoise, got {type(noise).__name__}")
+    if int(noise.L[-1]) != lmax_L or any(label not in noise.n0 for label in labels + (estimator,)):
+        raise ValueError(f"noise must hold {estimator} (and its parts) to lmax_L={lmax_L}; got estimators "
+                         f"{list(noise.n0)} to lmax_L={int(noise.L[-1])}")
+    estimates = quadratic_estimates(first, second, labels, lmax_L, spectra, lensed_weights, nthreads)
+
+    ell = ell_of_alm(lmax_L)
+    low = ell < 2
+    out = {}
+    for component in COMPONENTS:
+        parts = estimates.gradient if component == "gradient" else estimates.curl
+        if estimator == "MV":
+            weights = noise.mv_weights[component]
+            order = list(noise.covariance_labels)
+            total = np.zeros(nalm(lmax_L), dtype=np.complex128)
+            for label in labels:
+                response = noise.response[label][component]
+                with np.errstate(divide="ignore", invalid="ignore"):
+                    scale = np.where(np.isfinite(response) & (response > 0), weights[order.index(label)] / response, 0.0)
+                scale = np.nan_to_num(scale, nan=0.0)
+                total += parts[label] * scale[ell]
+        else:
+            response = noise.response[estimator][component]
+            with np.errstate(divide="ignore", invalid="ignore"):
+                scale = np.where(np.isfinite(response) & (response > 0), 1.0 / response, 0.0)
+            total = parts[estimator] * scale[ell]
+        total[low] = 0.0
+        if mean_field is not None:
+            total = total - mean_field.alm(component)
+        out[component] = total
+
+    settings = dict(estimates.settings)
+    settings.update({"estimator": estimator, "experiment": experiment.to_dict(), "spectra": dict(spectra.metadata),
+                     "filter": dict(first.settings), "mixed_inputs": not estimates.shared,
+                     "mean_field_count": None if mean_field is None else mean_field.count})
+    return Reconstruction(
+        phi_alm=_readonly(out["gradient"]), curl_alm=_readonly(out["curl"]), estimator=estimator, lmax_L=lmax_L,
+        n0=MappingProxyType({c: noise.n0[estimator][c] for c in COMPONENTS}),
+        response=MappingProxyType({c: noise.response[estimator][c] for c in COMPONENTS}),
+        unnormalised=MappingProxyType({label: MappingProxyType({"gradient": estimates.gradient[label],
+                                                                "curl": estimates.curl[label]})
+                                       for label in labels}),
+        mv_weights=MappingProxyType(dict(noise.mv_weights)) if estimator == "MV" else None,
+        noise=noise, mask_moments=first.mask_moments, mean_field_subtracted=mean_field is not None,
+        settings=MappingProxyType(settings),
+    )
+
+
+def reconstruct(maps, experiment, spectra: Spectra | None = None, estimator: str = "MV", lmax_L: int | None = None,
+                mask=None, mean_field: MeanField | None = None, lmax: int | None = None,
+                nthreads: int | None = None, lensed_weights: bool = True,
+                field_filter: FieldFilter | None = None) -> Reconstruction:
+    """Reconstruct the lensing potential φ (and the curl Ω) from observed T, Q, U maps.
+
+    Filters the maps (:class:`lensrec.filtering.IsotropicFilter` unless ``field_filter`` is given), forms
+    the quadratic estimate in position space and normalises it with the exact full-sky response.
+
+    Parameters
+    ----------
+    maps : array, shape (3, 12·nside²)
+        Observed T, Q, U in µK (HEALPix RING), e.g. ``lensrec.simulate_sky(...).maps``.
+    experiment : Experiment or str
+        Noise, beam and multipole cuts (or a shipped name / TOML path).
+    spectra : Spectra, optional
+        Theory spectra (default: the fiducial cosmology).
+    estimator : {'TT', 'TE', 'EE', 'TB', 'EB', 'MV'}
+        Default "MV" (all five, minimum-variance weights with the full N0 covariance).
+    lmax_L : int, optional
+        Highest lensing multipole (default and maximum: the CMB lmax).
+    mask : array, optional
+        Apodized weights in [0, 1] on the maps' pixels, applied before filtering (see
+        :mod:`lensrec.filtering`).
+    mean_field : MeanField, optional
+        Mean-field to subtract (from :func:`mean_field` of simulations with the same mask and settings).
+    lmax : int, optional
+        CMB band limit of the filter (default: the experiment's largest ℓ_max; must be ≤ 3·nside − 1).
+    nthreads : int, optional
+    lensed_weights : bool
+        Lensed (default, common practice) or unlensed spectra in the weights and response.
+    field_filter : FieldFilter, optional
+        Another filter (anything with ``filter(maps) -> FilteredFields``); ``mask`` and ``lmax`` then belong
+        to it. The analytic normalisation still assumes ``experiment``'s isotropic filter.
+
+    Returns
+    -------
+    Reconstruction
+        ``phi_alm``, ``curl_alm`` (normalised), ``n0``, ``response``, ``unnormalised``, ``settings``.
+
+    Raises
+    ------
+    TypeError, ValueError
+        Unknown estimator (the nearest label is suggested), maps of the wrong shape or with NaN pixels,
+        a mask of another nside, lmax above 3·nside − 1, lmax_L above lmax — all before any transform.
+
+    References
+    ----------
+    Okamoto & Hu 2003, PRD 67, 083002; Hu & Okamoto 2002, ApJ 574, 566.
+
+    Examples
+    --------
+    >>> import lensrec
+    >>> e = lensrec.Experiment(name="demo", noise_temperature=1.0, beam_fwhm=30.0, ell_min=2,
+    ...                        ell_max_temperature=48, ell_max_polarization=48)
+    >>> sky = lensrec.simulate_sky(e, nside=32, lmax=48, lmax_margin=32, seed=2, nthreads=1)
+    >>> result = lensrec.reconstruct(sky.maps, e, estimator="TT", lmax_L=32, nthreads=1)
+    >>> result.phi_alm.shape, result.estimator
+    ((561,), 'TT')
+    """
+    estimator = _check_label(estimator)
+    experiment = load_experiment(experiment)
+    if field_filter is None:
+        field_filter = IsotropicFilter(experiment, spectra, lmax=lmax, mask=mask, nthreads=nthreads)
+        experiment = field_filter.experiment
+    else:
+        if mask is not None or lmax is not None:
+            raise ValueError("pass mask and lmax to the field_filter itself, not to reconstruct")
+        if not isinstance(field_filter, FieldFilter):
+            raise TypeError(f"field_filter must have a filter(maps) method, got {type(field_filter).__name__}")
+        experiment = getattr(field_filter, "experiment", experiment)
+    cmb_lmax = max(experiment.ell_max_temperature, experiment.ell_max_polarization)
+    if lmax_L is not None:
+        lmax_L = as_int(lmax_L, "lmax_L", minimum=2)
+        if lmax_L > cmb_lmax:
+            raise ValueError(f"lmax_L={lmax_L} exceeds the CMB band limit lmax={cmb_lmax} the maps are filtered to; "
+                             f"choose lmax_L <= {cmb_lmax}")
+    fields = field_filter.filter(maps)
+    return reconstruct_filtered(fields, experiment, spectra=spectra, estimator=estimator, lmax_L=lmax_L,
+                                mean_field=mean_field, lensed_weights=lensed_weights, nthreads=nthreads)
+
+
+def mean_field(reconstructions) -> MeanField:
+    """The mean-field ⟨φ̂⟩ (and ⟨Ω̂⟩): the average of normalised reconstructions of simulations.
+
+    A mask, inhomogeneous noise or any other statistical anisotropy makes the quadratic estimate non-zero
+    on average even without lensing; subtract it with ``reconstruct(..., mean_field=...)``. Simulations
+    must share the data's estimator, lmax_L, mask, filter and noise; reuse of the same simulations for the
+    mean-field and for the estimate biases the result, so keep them apart. The average of N simulations
+    carries noise N0/N per mode.
+
+    Parameters
+    ----------
+    reconstructions : iterable of Reconstruction
+        Reconstructions (without mean-field subtraction) of one estimator and lmax_L.
+
+    Returns
+    -------
+    MeanField
+
+    Raises
+    ------
+    TypeError, ValueError
+        Empty input, objects that are not Reconstruction, mixed estimators or lmax_L, inputs that already
+        had a mean-field subtracted.
+
+    References
+    ----------
+    Hanson, Challinor & Lewis 2010, GRG 42, 2197 (mean-field of masked skies); Namikawa, Hanson & Takahashi
+    2013, MNRAS 431, 609.
+    """
+    items = list(reconstructions)
+    if not items:
+        raise ValueError("mean_field needs at least one reconstruction, got none")
+    phi = None
+    for k, item in enumerate(items):
+        if not isinstance(item, Reconstruction):
+            raise TypeError(f"reconstructions[{k}] must be a Reconstruction, got {type(item).__name__}")
+        if item.mean_field_subtracted:
+            raise ValueError(f"reconstructions[{k}] already had a mean-field subtracted; average raw reconstructions")
+        if item.estimator != items[0].estimator or item.lmax_L != items[0].lmax_L:
+            raise ValueError(f"reconstructions[{k}] is {item.estimator} to lmax_L={item.lmax_L}, but the first is "
+                             f"{items[0].estimator} to lmax_L={items[0].lmax_L}")
+        if phi is None:
+            phi = np.array(item.phi_alm, dtype=np.complex128)
+            curl = np.array(item.curl_alm, dtype=np.complex128)
+        else:
+            phi += item.phi_alm
+            curl += item.curl_alm
+    count = len(items)
+    return MeanField(phi_alm=_readonly(phi / count), curl_alm=_readonly(curl / count), estimator=items[0].estimator,
+                     lmax_L=items[0].lmax_L, count=count)

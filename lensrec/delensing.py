@@ -36,13 +36,17 @@ where B^lens draws on E and φ modes whose product with the deflection (ℓ · |
    subtracted from (EB, TB, or the MV combination, which EB dominates for deep polarization surveys), the
    template is correlated with the B-mode noise and with the lensing B modes themselves, beyond what the
    lensing potential alone explains. The residual power measured on the data then comes out lower than the
-   true residual, the delensing looks better than it is, and an uncorrected r analysis is biased low. The
-   effect is of the order of the reused B modes' share of the reconstruction noise, and reaches tens of
-   percent of the residual lensing power for deep polarization-based reconstructions (from memory;
-   Namikawa 2017, PRD 95, 103514; Baleato Lizancos, Challinor & Carron 2021, JCAP 03, 016). Reusing the E
-   modes of the template inside an EE or TE reconstruction gives a smaller, analogous correlation. Avoid it
-   by reconstructing φ without the delensed B modes (TT, TE, EE only, or disjoint multipole ranges, or
-   independent data), or calibrate it with simulations; nothing here corrects it.
+   true residual, the delensing looks better than it is, and an uncorrected r analysis is biased low.
+   Measured with this module on one full-sky simulation at 1.4 µK-arcmin (1 arcmin beam, E to ℓ = 1500, φ̂
+   to L = 1000, first-order template, tests/test_delensing.py): an EB reconstruction from the same maps gives
+   an apparent A_lens^res of 0.28 where the forecast without the bias is 0.40 (the residual ~30% low; 0.35
+   measured against the noise-free lensed B, the rest from the B noise), while an EE reconstruction of the
+   same sky gives 0.89 against 0.88. Published estimates are of the same order, tens of percent of the
+   residual for deep polarization-based reconstructions (from memory; Namikawa 2017, PRD 95, 103514;
+   Baleato Lizancos, Challinor & Carron 2021, JCAP 03, 016). Reusing the template's E modes inside an EE or
+   TE reconstruction gives a much smaller correlation. Avoid the bias by reconstructing φ without the
+   delensed B modes (TT, TE, EE only, disjoint multipole ranges, or independent data), or calibrate it with
+   simulations; nothing here corrects it.
 
 References
 ----------
@@ -63,7 +67,6 @@ from . import harmonics
 from ._checks import as_finite_array, as_float, as_int, resolve_nthreads
 from .harmonics import gl_grid_for_band_limits, lmax_from_nalm, scale_alm
 from .power import auto_spectrum, cross_spectrum
-from .tensor_forecast import DELENSING_BIAS_NOTE
 
 __all__ = [
     "TEMPLATE_METHODS",
@@ -76,7 +79,7 @@ __all__ = [
     "delensing_spectra",
     "delensing_efficiency",
     "measured_alens_residual",
-    "DELENSING_BIAS_NOTE",
+    "MEASURED_BIAS_NOTE",
 ]
 
 TEMPLATE_METHODS = ("remap", "first_order")
@@ -640,6 +643,19 @@ class DelensingResult:
         }
 
 
+MEASURED_BIAS_NOTE = (
+    "Delensing bias: this residual is measured on the B modes given. If the lensing potential of the template "
+    "was reconstructed partly from those same B modes (EB, TB or MV from the same maps), the template correlates "
+    "with their noise and with the lensing B modes beyond what phi explains, and the measured residual comes out "
+    "lower than the true one: the efficiency and A_lens^res are then optimistic and an r analysis of the residual "
+    "biased low. On a full-sky simulation at 1.4 uK-arcmin (EB to L = 1000, E to l = 1500) lensrec measured an "
+    "apparent A_lens^res of 0.28 against 0.40 forecast without the bias (the residual ~30% low); an EE "
+    "reconstruction of the same sky gave 0.89 against 0.88. Published estimates are of the same order (from "
+    "memory; Namikawa 2017, PRD 95, 103514; Baleato Lizancos, Challinor & Carron 2021, JCAP 03, 016). Avoid it "
+    "by reconstructing phi without the delensed B modes (TT, TE, EE, disjoint multipoles or independent data) or "
+    "calibrate it with simulations; nothing here corrects it."
+)
+
 _EFFICIENCY_NOTE = (
     "efficiency = 1 - (C_res - N) / (C_obs - N) per l, with N the expected B-mode noise power subtracted from the "
     "observed and residual spectra (zero for noise-free B modes); alens_residual is the Fisher-weighted fit of "
@@ -727,7 +743,7 @@ def delensing_spectra(observed_b_alm, template_alm, noise_bb=None, lensed_bb=Non
         ell_min=ell_min,
         ell_max=ell_max,
         method=method,
-        notes=(DELENSING_BIAS_NOTE, _EFFICIENCY_NOTE),
+        notes=(MEASURED_BIAS_NOTE, _EFFICIENCY_NOTE),
     )
 
 

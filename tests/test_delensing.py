@@ -15,14 +15,22 @@ from lensrec.harmonics import nalm, truncate_alm
 from lensrec.sky import gaussian_alm
 
 BANDS = ((30, 100), (100, 300), (300, 600), (600, 1000))
-LMAX = 1000  # lensed band limit of the noise-free simulation
-MARGIN = 1000  # unlensed E and phi reach LMAX + MARGIN = 2000
+LMAX = 1000  # band limit of the B-mode templates tested
+LMAX_CMB = 1500  # lensed band limit of the simulation and of the filtered E
+MARGIN = 1500  # the unlensed E and phi of the simulation reach LMAX + MARGIN = 2500
+# A low-noise full-sky survey: the shipped deep patch's noise and beam (1.0 / 1.4 uK-arcmin, 1 arcmin), cut at
+# l = 1500 so that nside 512 resolves it, observing the whole sky.
+DEEP = dict(noise_temperature=1.0, noise_polarization=1.4, beam_fwhm=1.0, ell_min=30,
+            ell_max_temperature=LMAX_CMB, ell_max_polarization=LMAX_CMB, sky_fraction=1.0)
+
+
+def band_modes(lo, hi):
+    return (hi + 1) ** 2 - lo**2
 
 
 def band_sigma(lo, hi):
     """Gaussian σ/C of a full-sky band power over [lo, hi] (module docstring)."""
-    modes = (hi + 1) ** 2 - lo**2
-    return np.sqrt(2.0 / modes)
+    return np.sqrt(2.0 / band_modes(lo, hi))
 
 
 def band_mean(cl, lo, hi):
@@ -31,17 +39,22 @@ def band_mean(cl, lo, hi):
 
 
 @pytest.fixture(scope="module")
-def noise_free_sky():
-    """One noise-free full-sky lensed simulation at nside 512, lensed to l = 1000, unlensed E and phi to 2000."""
-    experiment = lensrec.Experiment(name="no noise", noise_temperature=0.0, beam_fwhm=0.0)
-    return lensrec.simulate_sky(experiment, nside=512, lmax=LMAX, lmax_margin=MARGIN, seed=17, noise=False,
-                                nthreads=2)
+def experiment():
+    return lensrec.Experiment(name="deep full sky", **DEEP)
 
 
 @pytest.fixture(scope="module")
-def true_inputs(noise_free_sky):
-    sky = noise_free_sky
-    return np.array(sky.unlensed_alm[1]), np.array(sky.phi_alm), np.array(sky.lensed_alm[2])
+def sky(experiment):
+    """One low-noise full-sky simulation at nside 512: lensed to l = 1500, unlensed E and phi to 2500."""
+    return lensrec.simulate_sky(experiment, nside=512, lmax=LMAX_CMB, lmax_margin=LMAX + MARGIN - LMAX_CMB,
+                                seed=21, nthreads=2)
+
+
+@pytest.fixture(scope="module")
+def true_inputs(sky):
+    """True unlensed E and phi (to 2500) and the noise-free lensed B to l = 1000 of the simulation."""
+    lensed_b = truncate_alm(np.array(sky.lensed_alm[2]), LMAX, LMAX_CMB)
+    return np.array(sky.unlensed_alm[1]), np.array(sky.phi_alm), lensed_b
 
 
 @pytest.fixture(scope="module")
@@ -55,30 +68,31 @@ def perfect_templates(true_inputs):
 # ------------------------------------------------------------------------------- perfect knowledge
 @pytest.mark.slow
 def test_perfect_knowledge_remap_template_removes_the_lensing_b_modes(true_inputs, perfect_templates):
-    # Reference: the simulation's own lensed B modes (exact remapping of the same E and phi, lensrec.sky).
-    # With the true phi and the true unlensed E over the simulation's full band the non-perturbative template
-    # removes 100.000% of the lensing B power in every band of 30 <= l <= 1000 (measured: the residual is
-    # zero to rounding, since template and simulation evaluate the same remapping on the same grid).
+    # Reference: the simulation's own noise-free lensed B modes (lensrec.sky's exact remapping). With the
+    # true phi and the true unlensed E the non-perturbative template removes, on this sim, 99.94%, 99.94%,
+    # 99.87% and 99.51% of the lensing B power in the four bands (99.71% over 30-1000). What is left is the
+    # aliasing of the lensed tail: the simulation analysed its lensed field on a grid sized for l <= 1500 and
+    # the template on one for l <= 1000, each good to < 0.6% of lensed BB near its band limit (lens_alm's
+    # stated accuracy), so together at most ~1.2%: hence >= 98.5% in every band, beyond the >= 95% required.
     _, _, lensed_b = true_inputs
     result = delensing.delensing_spectra(lensed_b, perfect_templates["remap"])
-    assert result.efficiency_in_range(30, 1000) >= 0.95  # required removal
+    assert result.efficiency_in_range(30, 1000) >= 0.95
     for lo, hi in BANDS:
-        assert result.efficiency_in_range(lo, hi) >= 0.95, (lo, hi)
-    # numerical precision: same remapping, same quadrature; anything above 1e-10 of the power is a defect
-    assert np.sum(np.abs(result.residual_alm) ** 2) <= 1e-10 * np.sum(np.abs(lensed_b) ** 2)
+        assert result.efficiency_in_range(lo, hi) >= 0.985, (lo, hi)
 
 
 @pytest.mark.slow
 def test_first_order_template_removes_less_at_high_ell(true_inputs, perfect_templates):
     # Common practice (no source): the gradient-order template misses the higher-order terms of the remapping,
     # which grow with l |d| (|d| ~ 2.5 arcmin rms), so it removes less than the exact remapping, and less at
-    # high l than at low l. Measured on this sim: 90.3%, 90.2%, 85.4%, 76.0% in the four bands (remap: 100%).
+    # high l than at low l. Measured on this sim: 90.0%, 89.6%, 84.5%, 74.6% in the four bands (80.6% over
+    # 30-1000), against 99.5-99.9% for the remapping.
     _, _, lensed_b = true_inputs
     first = delensing.delensing_spectra(lensed_b, perfect_templates["first_order"], method="first_order")
     exact = delensing.delensing_spectra(lensed_b, perfect_templates["remap"])
     low, high = first.efficiency_in_range(30, 300), first.efficiency_in_range(600, 1000)
-    # The band efficiencies scatter by < 0.1% between realisations (the residual's power over ν > 9e3 modes);
-    # the differences asserted are set at 5 percentage points, far above that.
+    # The band efficiencies scatter by < 1 percentage point between realisations (residual power over
+    # > 9e3 modes, module docstring); the differences asserted are 5 points.
     assert high < exact.efficiency_in_range(600, 1000) - 0.05
     assert high < low - 0.05
     assert low > 0.8  # the first-order term is the bulk of the lensing B modes at l < 300 (Hu 2000, PRD 62, 043007)
@@ -88,12 +102,13 @@ def test_first_order_template_removes_less_at_high_ell(true_inputs, perfect_temp
 def test_first_order_template_power_matches_the_full_sky_first_order_kernel(true_inputs, perfect_templates):
     # Reference: Hu 2000, PRD 62, 043007: first-order lensing BB = convolution of C^EE and C^phiphi
     # (lensrec.first_order_lensed_bb, checked against Hu's 3j sums and camb elsewhere). Evaluated with this
-    # realisation's own C^EE and C^phiphi (to l = 2000, the simulation's band), so the phi cosmic variance that
+    # realisation's own C^EE and C^phiphi (to l = 2500, the simulation's band), so the phi cosmic variance that
     # moves all bands together drops out; what remains is the Gaussian scatter of the B modes themselves.
     # Tolerance: 4 sigma of the band power (module docstring) plus 0.3% for the non-Gaussian scatter left.
     e_alm, phi_alm, _ = true_inputs
-    template_bb = healpy.alm2cl(perfect_templates["first_order"])
-    kernel = lensrec.first_order_lensed_bb(healpy.alm2cl(e_alm), healpy.alm2cl(phi_alm), LMAX, ell_margin=MARGIN)
+    template_bb = lensrec.auto_spectrum(perfect_templates["first_order"])
+    kernel = lensrec.first_order_lensed_bb(lensrec.auto_spectrum(e_alm), lensrec.auto_spectrum(phi_alm), LMAX,
+                                           ell_margin=MARGIN)
     for lo, hi in BANDS:
         ratio = band_mean(template_bb, lo, hi) / band_mean(kernel, lo, hi)
         assert abs(ratio - 1.0) < 4 * band_sigma(lo, hi) + 0.003, (lo, hi, ratio)
@@ -101,11 +116,11 @@ def test_first_order_template_power_matches_the_full_sky_first_order_kernel(true
 
 @pytest.mark.slow
 def test_template_from_band_limited_sources_removes_the_predicted_fraction(true_inputs, fiducial):
-    # With E and phi known only to l = 1500 (the simulation has them to 2000), the template misses the lensing
+    # With E and phi known only to l = 1500 (the simulation has them to 2500), the template misses the lensing
     # B modes sourced by the higher multipoles. At first order (Hu 2000 kernel K) the removed fraction is
     # K[C^EE_<, C^phiphi_<] / K[C^EE, C^phiphi] (the template is a part of the bilinear sum, so its cross with
-    # the lensed B equals its own power). Measured: 98.2%, 98.0%, 96.6%, 91.3% against predicted 98.2%, 98.1%,
-    # 96.7%, 92.1%. Tolerance: the residual's band-power scatter (< 0.05 points) plus 1.5 percentage points
+    # the lensed B equals its own power). Measured: 97.8%, 97.7%, 96.1%, 90.3% against predicted 97.9%, 97.8%,
+    # 96.2%, 90.7%. Tolerance: the residual's band-power scatter (< 0.1 points) plus 1.5 percentage points
     # for the non-perturbative terms, which move lensed BB by ~1% at l <= 1000 (Challinor & Lewis 2005,
     # PRD 71, 103010).
     e_alm, phi_alm, lensed_b = true_inputs
@@ -122,13 +137,104 @@ def test_template_from_band_limited_sources_removes_the_predicted_fraction(true_
         assert abs(result.efficiency_in_range(lo, hi) - predicted) < 0.015, (lo, hi)
     assert result.efficiency_in_range(600, 1000) < result.efficiency_in_range(30, 100)  # the loss grows with l
 
+
+# ------------------------------------------------------------------------------- reconstructed phi
+@pytest.fixture(scope="module")
+def ee_reconstruction(sky, experiment):
+    """The EE reconstruction of the simulation to L = 1000 (no B modes enter it: no B-mode delensing bias).
+
+    Above L = 1000 its N0 exceeds C^phiphi by more than 10^3, so the Wiener filter would keep < 0.1% there."""
+    return lensrec.reconstruct(sky.maps, experiment, estimator="EE", lmax_L=LMAX, nthreads=2)
+
+
+@pytest.fixture(scope="module")
+def template_fields(sky, experiment, fiducial):
+    e_wiener, b_observed, _ = delensing.template_inputs(sky.maps, experiment, fiducial, lmax=LMAX_CMB, nthreads=2)
+    return e_wiener, truncate_alm(b_observed, LMAX, LMAX_CMB)
+
+
+def efficiency_sigma(efficiency, lo, hi):
+    """Realisation scatter of a measured band efficiency ε = (2 C^{B,T} − C^{T,T}) / C^{B,B}.
+
+    For a template of power ≈ ε C^BB and cross ≈ ε C^BB, the Gaussian band scatter of the cross is
+    √(C^BB C^TT / ν) and of each auto √(2/ν) C; adding the cross (twice), template-auto and reference-auto
+    terms linearly (conservative): σ_ε ≈ 2 √(ε/ν) + 2 ε √(2/ν).
+    """
+    modes = band_modes(lo, hi)
+    return 2 * np.sqrt(efficiency / modes) + 2 * efficiency * np.sqrt(2 / modes)
+
+
+@pytest.mark.slow
+def test_reconstructed_phi_delensing_matches_the_forecast(ee_reconstruction, template_fields, true_inputs,
+                                                          experiment, fiducial):
+    # Reference: the forecast residual of lensrec.delensing_forecast (Smith et al. 2012, JCAP 06, 014: residual
+    # C^BB - K[W C^EE, rho^2 C^phiphi] at first order, lensed spectra checked against camb elsewhere) from the
+    # analytic N0 of the same EE reconstruction, with the same band limits as the simulation (E and phi to 2500,
+    # the template's E to 1500 through the E noise cut). Measured against the simulation's noise-free lensed B
+    # so that the B noise does not enter. EE reconstruction: no B modes are reused.
+    # Tolerance: 3 sigma of the realisation scatter (efficiency_sigma) plus a 10% (of epsilon) allowance for
+    # what the forecast leaves out: the higher-order response of phi-hat (a few percent), N1 bias absent from
+    # the Wiener filter (a few percent of N0 at this noise, from memory), and the reuse of the template's E
+    # modes inside the EE estimate (percent level, from memory).
+    # Measured (first order): 8.6%, 11.3%, 12.2%, 11.4% against forecast 8.2%, 11.1%, 12.1%, 11.8%;
+    # remap: 8.6%, 11.0%, 11.5%, 9.9%.
+    e_wiener, _ = template_fields
+    _, _, lensed_b = true_inputs
+    n0 = np.array(ee_reconstruction.n0["gradient"])
+    phi_wiener = delensing.wiener_filter_phi(ee_reconstruction.phi_alm, n0, fiducial.phi)
+    forecast = lensrec.delensing_forecast(experiment, fiducial, n0=n0, lmax=LMAX, ell_margin=MARGIN, nthreads=2)
+    expected = {band: 1.0 - band_mean(forecast.residual_bb, *band) / band_mean(forecast.lensed_bb, *band)
+                for band in BANDS}
+    assert 0.05 < min(expected.values())  # a reconstruction that delenses measurably
+    measured = {}
+    for method in delensing.TEMPLATE_METHODS:
+        template = delensing.lensing_b_template(e_wiener, phi_wiener, LMAX, method=method, nthreads=2)
+        measured[method] = delensing.delensing_spectra(lensed_b, template, method=method)
+    for band in BANDS:
+        tolerance = 3 * efficiency_sigma(expected[band], *band) + 0.1 * expected[band]
+        assert abs(measured["first_order"].efficiency_in_range(*band) - expected[band]) < tolerance, band
+    # The forecast is of a template linear in phi^WF. The remapped template agrees where l |d^WF| << 1; at
+    # higher l its own deflection by phi^WF (mostly reconstruction noise at L > 300) decorrelates it from the
+    # lensing B modes and it removes less (measured 9.9% against 11.8% at 600-1000): checked at l <= 300.
+    for band in BANDS[:2]:
+        tolerance = 3 * efficiency_sigma(expected[band], *band) + 0.1 * expected[band]
+        assert abs(measured["remap"].efficiency_in_range(*band) - expected[band]) < tolerance, band
+
     # sigma(r) with the measured residual lensing power is lower than without delensing (Knox & Song 2002,
-    # PRL 89, 011303: removing lensing B power lowers the sample variance of the r measurement).
-    experiment = lensrec.load_experiment("deep_highland")
+    # PRL 89, 011303: removing lensing B power lowers the sample variance of the r measurement)
     noise = experiment.noise_spectrum("B", LMAX)
     tensor = fiducial.tensor["BB"][: LMAX + 1]
-    args = (noise, tensor, experiment.sky_fraction, 30, LMAX)
-    assert lensrec.sigma_r(result.residual_bb, *args) < 0.9 * lensrec.sigma_r(result.observed_bb, *args)
+    result = measured["remap"]
+    args = (noise, tensor, experiment.sky_fraction, experiment.ell_min, LMAX)
+    assert lensrec.sigma_r(result.residual_bb, *args) < lensrec.sigma_r(result.observed_bb, *args)
+    assert forecast.sigma_r_delensed < forecast.sigma_r_lensed
+
+
+@pytest.mark.slow
+def test_reusing_the_b_modes_biases_the_measured_residual_low(sky, experiment, template_fields, true_inputs,
+                                                              fiducial):
+    # Delensing bias (Namikawa 2017, PRD 95, 103514; Baleato Lizancos, Challinor & Carron 2021, JCAP 03, 016):
+    # with an EB reconstruction (the estimator that dominates MV at this noise) from the same maps, the template
+    # correlates with the B-mode noise, so the noise-subtracted efficiency measured on the observed B modes
+    # exceeds the true efficiency, measured on the simulation's noise-free lensed B modes with the same
+    # template. Without the bias the two differ only by the noise realisation:
+    # σ ≈ [√(2/ν) N + 2 √(C^res N / ν)] / C^BB ≈ 0.4 points over 30 <= l <= 300 (N/C^BB ≈ 0.08 at
+    # 1.4 uK-arcmin); asserted: more than 2 points, 5 sigma.
+    # Measured on this sim (remap): 71.3% apparent against 67.1% true over 30-300 (forecast without any bias:
+    # 62.1%); A_lens^res 0.39 apparent, 0.46 true. The true efficiency also exceeds the forecast because the
+    # lensing B modes themselves entered the EB estimate (first-order template: 70.4% true, 74.8% apparent,
+    # A_lens^res 0.35 and 0.28 against 0.40 forecast: the apparent residual is ~30% low).
+    e_wiener, b_observed = template_fields
+    _, _, lensed_b = true_inputs
+    eb = lensrec.reconstruct(sky.maps, experiment, estimator="EB", lmax_L=LMAX, nthreads=2)
+    phi_wiener = delensing.wiener_filter_phi(eb.phi_alm, np.array(eb.n0["gradient"]), fiducial.phi)
+    template = delensing.lensing_b_template(e_wiener, phi_wiener, LMAX, nthreads=2)
+    noise = experiment.noise_spectrum("B", LMAX)
+    apparent = delensing.delensing_spectra(b_observed, template, noise_bb=noise)
+    true = delensing.delensing_spectra(lensed_b, template)
+    assert apparent.efficiency_in_range(30, 300) > true.efficiency_in_range(30, 300) + 0.02
+    assert apparent.alens_residual < true.alens_residual  # biased low, as every note on it says
+    assert "delensing bias" in apparent.notes[0].lower()
 
 
 # ------------------------------------------------------------------------------ first-order signs

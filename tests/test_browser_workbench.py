@@ -271,8 +271,8 @@ def test_noise_change_redraws_the_n0_plot(workbench_page, artifacts_dir):
 
 def _simulate_small_sky(page) -> None:
     _open_tab(page, "Sky")
-    page.locator(".lensrec-sky-nside select").select_option(label="64")
-    page.wait_for_function("() => document.querySelector('.lensrec-sky-lmax input').value === '128'")
+    page.locator(".lensrec-sky-nside select").select_option(label="32")
+    page.wait_for_function("() => document.querySelector('.lensrec-sky-lmax input').value === '64'")
     page.locator("button.lensrec-simulate").click()
     page.wait_for_selector("img.lensrec-plot-sky-maps[src^='blob:']", state="visible", timeout=120_000)
     page.wait_for_function(

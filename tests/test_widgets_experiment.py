@@ -11,11 +11,24 @@ from widgets import Workbench
 ARCMIN = math.pi / 10800
 
 
+@pytest.fixture(scope="module")
+def app():
+    workbench = Workbench(experiment="deep_highland", nthreads=2)
+    assert workbench.wait(60)
+    return workbench
+
+
 @pytest.fixture
-def section():
-    app = Workbench(experiment="deep_highland")
-    assert app.wait(30)
-    return app["experiment"]
+def section(app):
+    """The Experiment section, reset to the shipped deep_highland example before each test."""
+    section = app["experiment"]
+    section.picker.value = "wide_lowland"  # a change of example resets every control
+    section.picker.value = "deep_highland"
+    section.path_box.value = ""
+    section.overwrite.value = False
+    assert app.wait(60)
+    assert section.state.experiment == lensrec.load_experiment("deep_highland")
+    return section
 
 
 def d_ell(cl):

@@ -30,8 +30,9 @@ def simulated():
     return app
 
 
-@pytest.fixture
+@pytest.fixture(scope="module")
 def app():
+    """A workbench without a sky yet, shared by the tests of settings and errors."""
     workbench = Workbench(experiment="wide_lowland", nthreads=2)
     assert workbench.wait(60)
     return workbench
@@ -102,7 +103,8 @@ def test_zoom_window_follows_its_controls(simulated):
     assert "30° × 30° at (40°, 20°)" in section.title_zoom.get_text()
 
 
-def test_cap_mask_is_applied_and_shaded(app):
+def test_cap_mask_is_applied_and_shaded():
+    app = Workbench(experiment="wide_lowland", nthreads=2)
     section = app["sky"]
     _configure(section, noise=False)
     section.mask.value = "cap"
@@ -137,6 +139,8 @@ def test_bad_mask_parameter_is_reported(app):
     section.simulate_button.click()
     assert app.wait(60)
     assert section.status.kind == "error" and "b_min must be <= 90" in section.status.message
+    assert app.state.sky is None
+    section.mask.value = "none"
 
 
 def test_nside_sets_a_default_lmax(app):

@@ -258,6 +258,8 @@ class ValidationSection(Section):
             cells = [f"<td style='{cell}'>{row['L_min']}–{row['L_max']}</td>"]
             for _, key in columns[1:]:
                 value = row.get(key)
+                if key in ("n1", "n1_over_signal") and not self.result.n1_computed:
+                    value = None  # not estimated, rather than zero
                 text = "n/a" if value is None else (f"{value:.4f}" if key == "normalisation_correction"
                                                     else f"{value:.3g}")  # fmt: skip
                 cells.append(f"<td style='{cell}'>{text}</td>")

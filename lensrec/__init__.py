@@ -8,6 +8,7 @@ from __future__ import annotations
 
 __version__ = "0.1.0"
 
+from .bandpowers import LensingBandpowers, bias_budget_table, lensing_bandpowers, plot_bias_budget
 from .delensing import DelensingResult, delens, delensing_spectra, lensing_b_template, wiener_filter_phi
 from .estimator_noise import ReconstructionNoise, reconstruction_noise
 from .experiment import Experiment, available_experiments, load_experiment
@@ -19,6 +20,7 @@ from .power import auto_spectrum, bin_spectrum, binned_cross_spectrum, cross_spe
 from .reconstruction import MeanField, Reconstruction, mean_field, quadratic_estimates, reconstruct, reconstruct_filtered
 from .sky import SimulatedSky, deflection_maps, lens_alm, lens_tqu_alm, simulate_sky
 from .spectra import Spectra, fiducial_spectra, spectra_from_camb
+from .suites import LensingSuite, lensing_suite_settings, open_lensing_suite, run_lensing_suite
 from .tensor_forecast import delensing_forecast, sigma_r
 
 __all__ = [
@@ -66,4 +68,12 @@ __all__ = [
     "bin_spectrum",
     "binned_cross_spectrum",
     "mask_corrected",
+    "LensingSuite",
+    "lensing_suite_settings",
+    "run_lensing_suite",
+    "open_lensing_suite",
+    "LensingBandpowers",
+    "lensing_bandpowers",
+    "bias_budget_table",
+    "plot_bias_budget",
 ]

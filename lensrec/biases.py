@@ -1,7 +1,8 @@
 r"""Estimators of the biases of the lensing power spectrum, on plain harmonic coefficients and spectra.
 
-Every function here works on arrays (a_LM in healpy's layout, or raw spectra C_L indexed from L = 0), so
-it can be checked on synthetic Gaussian fields where the answer is known, and reused on any suite.
+Every function here works on arrays (a_LM in healpy's layout, or raw spectra C_L indexed from L = 0, e.g.
+from :func:`lensrec.power.cross_spectrum`), so it can be checked on synthetic Gaussian fields where the
+answer is known, and reused on any suite.
 
 Notation
 ========
@@ -60,10 +61,10 @@ from dataclasses import dataclass
 import numpy as np
 
 from ._checks import as_finite_array, as_int
+from .power import cross_spectrum
 
 __all__ = [
     "BiasEstimate",
-    "alm_cross_spectrum",
     "half_split_mean_fields",
     "mean_field_split_spectrum",
     "mean_field_power",
@@ -107,37 +108,6 @@ def _standard_error(rows: np.ndarray) -> np.ndarray:
     if rows.shape[0] < 2:
         return np.full(rows.shape[1:], np.nan)
     return rows.std(axis=0, ddof=1) / np.sqrt(rows.shape[0])
-
-
-def alm_cross_spectrum(first, second=None, lmax: int | None = None) -> np.ndarray:
-    """C_L = Re (1/(2L+1)) Σ_M a_LM b*_LM of two coefficient arrays (healpy layout), L = 0 … lmax.
-
-    Parameters
-    ----------
-    first, second : complex array, shape (nalm(lmax),)
-        ``second`` defaults to ``first`` (the auto-spectrum).
-    lmax : int, optional
-        Band limit of the arrays (derived from their size by default).
-
-    Returns
-    -------
-    ndarray, shape (lmax + 1,)
-
-    Examples
-    --------
-    >>> import numpy as np
-    >>> a = np.zeros(6, complex); a[3] = 1 + 1j      # (l, m) = (1, 1) of lmax 2
-    >>> alm_cross_spectrum(a).tolist()               # 2 |a_11|^2 / 3 (m and -m)
-    [0.0, 1.3333333333333333, 0.0]
-    """
-    import healpy
-
-    from .harmonics import lmax_from_nalm
-
-    a = as_finite_array(first, "first", ndim=1, dtype=np.complex128)
-    b = a if second is None else as_finite_array(second, "second", shape=a.shape, dtype=np.complex128)
-    lmax = lmax_from_nalm(a.size, "first") if lmax is None else as_int(lmax, "lmax", minimum=0)
-    return np.asarray(healpy.alm2cl(a, b, lmax=lmax), dtype=np.float64)
 
 
 # ------------------------------------------------------------------------------------------ mean-field
@@ -207,12 +177,12 @@ def mean_field_split_spectrum(estimate, mean_field_1, mean_field_2, lmax: int | 
     estimate = as_finite_array(estimate, "estimate", ndim=1, dtype=np.complex128)
     one = as_finite_array(mean_field_1, "mean_field_1", shape=estimate.shape, dtype=np.complex128)
     two = as_finite_array(mean_field_2, "mean_field_2", shape=estimate.shape, dtype=np.complex128)
-    return alm_cross_spectrum(estimate - one, estimate - two, lmax)
+    return cross_spectrum(estimate - one, estimate - two, lmax)
 
 
 def mean_field_power(mean_field_1, mean_field_2, lmax: int | None = None) -> np.ndarray:
     """The power of the mean-field, C^{MF₁ MF₂}: unbiased by the halves' independent Monte-Carlo noise."""
-    return alm_cross_spectrum(mean_field_1, mean_field_2, lmax)
+    return cross_spectrum(mean_field_1, mean_field_2, lmax)
 
 
 # -------------------------------------------------------------------------------------- N0 and N1

@@ -8,7 +8,9 @@ ndarray]``, and stores its arrays in ``<folder>/sims/sim_<index>.npz`` (written 
 - Resuming: finished indices whose checksum verifies are not recomputed, so a suite stopped by a crash or
   Ctrl-C continues where it stopped and ends with the same answer as an uninterrupted run.
 - Safety: a folder that holds a suite made with other settings is refused (the message lists the keys that
-  differ); a stored file whose checksum fails is reported, deleted and recomputed, never used.
+  differ); a stored file whose checksum fails is reported, deleted and recomputed, never used. Settings
+  keys that start with "_" reach the task but are not fingerprinted: they say where inputs live on this
+  machine (a folder, a file path), whose contents the fingerprinted keys pin (e.g. by a checksum).
 - Executors: ``"serial"``, ``"processes"`` (``concurrent.futures.ProcessPoolExecutor``) or any
   ``dask.distributed.Client`` (a ``LocalCluster`` on a laptop, or a batch-system cluster through
   dask-jobqueue). Tasks are deterministic functions of (settings, index) through
@@ -41,9 +43,15 @@ MANIFEST = "manifest.json"
 FORMAT_VERSION = 1
 
 
+def _fingerprinted(key) -> bool:
+    """Keys that describe what is computed; ``n_sims`` and keys starting with "_" (where inputs live on this
+    machine, e.g. a mask file's path whose content is fingerprinted by its checksum) are not."""
+    return key != "n_sims" and not str(key).startswith("_")
+
+
 def settings_fingerprint(settings: dict) -> str:
-    """SHA-256 of the canonical JSON of ``settings`` (the number of simulations is not part of it)."""
-    canonical = {k: v for k, v in settings.items() if k != "n_sims"}
+    """SHA-256 of the canonical JSON of ``settings`` (the number of simulations and "_" keys are not part of it)."""
+    canonical = {k: v for k, v in settings.items() if _fingerprinted(k)}
     text = json.dumps(canonical, sort_keys=True, separators=(",", ":"), default=_plain)
     return hashlib.sha256(text.encode()).hexdigest()
 
@@ -123,7 +131,8 @@ class SuiteCache:
             manifest = read_json(cache.manifest_path)
             if manifest.get("fingerprint") != settings_fingerprint(settings) or manifest.get("task") != task_name:
                 old = manifest.get("settings", {})
-                keys = sorted(k for k in set(old) | set(settings) if k != "n_sims" and old.get(k) != _jsonable(settings.get(k)))
+                keys = sorted(k for k in set(old) | set(settings)
+                              if _fingerprinted(k) and old.get(k) != _jsonable(settings.get(k)))
                 if manifest.get("task") != task_name:
                     keys.append(f"task ({manifest.get('task')} vs {task_name})")
                 raise ValueError(
@@ -193,7 +202,8 @@ class SuiteRun:
 
 
 def run_suite(settings: dict, directory, task: Callable, executor="serial", max_workers: int | None = None,
-              progress=True, cancel: threading.Event | None = None, indices=None) -> SuiteRun:
+              progress=True, cancel: threading.Event | None = None, indices=None,
+              label: str = "simulations") -> SuiteRun:
     """Run ``task`` for every simulation index of the suite, reusing verified cached results.
 
     Parameters
@@ -214,6 +224,8 @@ def run_suite(settings: dict, directory, task: Callable, executor="serial", max_
         When set, no new task starts; finished ones stay cached; the run returns with ``cancelled=True``.
     indices : iterable of int, optional
         Run only these indices (default: ``range(n_sims)``).
+    label : str
+        Description shown on the progress bar (default "simulations").
 
     Returns
     -------
@@ -244,7 +256,7 @@ def run_suite(settings: dict, directory, task: Callable, executor="serial", max_
     if cache.entries == {} and not os.path.exists(cache.manifest_path):
         cache.write_manifest(task_name)
 
-    bar, report = _progress(progress, len(wanted), len(reused))
+    bar, report = _progress(progress, len(wanted), len(reused), label)
     computed: list[int] = []
     cancelled = False
 
@@ -274,7 +286,7 @@ def run_suite(settings: dict, directory, task: Callable, executor="serial", max_
                     cancelled=cancelled, seconds=time.perf_counter() - start)
 
 
-def _progress(progress, total: int, initial: int):
+def _progress(progress, total: int, initial: int, label: str = "simulations"):
     if callable(progress):
         state = {"done": initial}
 
@@ -287,7 +299,7 @@ def _progress(progress, total: int, initial: int):
     if progress:
         from tqdm.auto import tqdm
 
-        bar = tqdm(total=total, initial=initial, desc="simulations", unit="sim")
+        bar = tqdm(total=total, initial=initial, desc=label, unit="sim")
         return bar, bar.update
     return None, lambda step: None
 

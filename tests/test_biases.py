@@ -13,7 +13,6 @@ import numpy as np
 import pytest
 
 from lensrec.biases import (
-    alm_cross_spectrum,
     half_split_mean_fields,
     mean_field_power,
     mean_field_split_spectrum,
@@ -22,6 +21,7 @@ from lensrec.biases import (
     normalisation_correction,
     realization_dependent_n0,
 )
+from lensrec.power import cross_spectrum
 
 LMAX_FIELD = 24
 LMAX_Q = 32
@@ -101,16 +101,16 @@ def test_half_split_mean_field_spectrum_is_unbiased_and_a_single_mean_is_not(rng
         data = _gaussian(rng, cl_g, lmax) + mf
         one, two = half_split_mean_fields(sims)
         split.append(mean_field_split_spectrum(data, one, two))
-        naive.append(alm_cross_spectrum(data - sims.mean(axis=0)))
+        naive.append(cross_spectrum(data - sims.mean(axis=0)))
         mf_cross.append(mean_field_power(one, two))
-        mf_naive.append(alm_cross_spectrum(sims.mean(axis=0)))
+        mf_naive.append(cross_spectrum(sims.mean(axis=0)))
     ells = np.arange(2, lmax + 1)
     ratio, sigma = _pooled_ratio(np.array(split), cl_g, ells)
     assert abs(ratio - 1.0) < 4 * sigma  # 4 sigma of the pooled Monte-Carlo mean, no systematic allowance
     naive_ratio, naive_sigma = _pooled_ratio(np.array(naive), cl_g, ells)
     assert abs(naive_ratio - (1.0 + 1.0 / n)) < 4 * naive_sigma  # the expected 1/n excess of a single mean
     assert naive_ratio - 1.0 > 10 * sigma  # so the test above would see the bias if the split were wrong
-    cl_mf = alm_cross_spectrum(mf)
+    cl_mf = cross_spectrum(mf)
     mf_ratio, mf_sigma = _pooled_ratio(np.array(mf_cross), cl_mf, ells)
     assert abs(mf_ratio - 1.0) < 4 * mf_sigma  # cross of the halves: the mean-field power without its noise
     naive_mf_ratio, _ = _pooled_ratio(np.array(mf_naive), cl_mf, ells)
@@ -139,8 +139,8 @@ def test_rdn0_of_independent_gaussian_legs_is_the_gaussian_noise(rng, cmb_like):
         for _ in range(repeats):
             data = _gaussian(rng, (1.0 + eps) * cmb_like, LMAX_FIELD)
             sims = _gaussian(rng, cmb_like, LMAX_FIELD, count=n)
-            ds = [alm_cross_spectrum(_product(synth, analyse, data, s)) for s in sims]
-            ss = [alm_cross_spectrum(_product(synth, analyse, sims[i - 1], sims[i])) for i in range(1, n)]
+            ds = [cross_spectrum(_product(synth, analyse, data, s)) for s in sims]
+            ss = [cross_spectrum(_product(synth, analyse, sims[i - 1], sims[i])) for i in range(1, n)]
             rdn0.append(realization_dependent_n0(ds, ss).value)
             mcn0.append(monte_carlo_n0(ss).value)
         ratio, sigma = _pooled_ratio(np.array(rdn0), 2 * (1 + 2 * eps) * c1, ells)
@@ -165,8 +165,8 @@ def test_rdn0_error_matches_its_scatter(rng, cmb_like):
     for _ in range(repeats):
         data = _gaussian(rng, cmb_like, LMAX_FIELD)
         sims = _gaussian(rng, cmb_like, LMAX_FIELD, count=n)
-        ds = [alm_cross_spectrum(_product(synth, analyse, data, s)) for s in sims]
-        ss = [alm_cross_spectrum(_product(synth, analyse, sims[i - 1], sims[i])) for i in range(1, n)]
+        ds = [cross_spectrum(_product(synth, analyse, data, s)) for s in sims]
+        ss = [cross_spectrum(_product(synth, analyse, sims[i - 1], sims[i])) for i in range(1, n)]
         estimate = realization_dependent_n0(ds, ss)
         pulls.append((estimate.value[ells] - 2 * c1[ells]) / estimate.error[ells])
     rms = np.sqrt(np.mean(np.square(pulls)))
@@ -187,8 +187,8 @@ def test_mc_n1_recovers_the_cross_contraction_of_a_shared_component(rng, cmb_lik
     for _ in range(repeats):
         x, y = _gaussian(rng, cmb_like, LMAX_FIELD, 2 * n).reshape(2, n, -1)
         u, u_other = _gaussian(rng, cl_u, LMAX_FIELD, 2 * n).reshape(2, n, -1)
-        shared = [alm_cross_spectrum(_product(synth, analyse, x[i] + u[i], y[i] + u[i])) for i in range(n)]
-        independent = [alm_cross_spectrum(_product(synth, analyse, x[i] + u[i], y[i] + u_other[i]))
+        shared = [cross_spectrum(_product(synth, analyse, x[i] + u[i], y[i] + u[i])) for i in range(n)]
+        independent = [cross_spectrum(_product(synth, analyse, x[i] + u[i], y[i] + u_other[i]))
                        for i in range(n)]
         values.append(monte_carlo_n1(shared, independent).value)
     ratio, sigma = _pooled_ratio(np.array(values), expected, ells)
@@ -207,8 +207,8 @@ def test_normalisation_correction_recovers_a_known_response(rng):
     for _ in range(repeats):
         phi = _gaussian(rng, cl_phi, lmax, count=n)
         noise = _gaussian(rng, 2.0 * cl_phi, lmax, count=n)
-        cross = [alm_cross_spectrum(rho * p + e, p) for p, e in zip(phi, noise, strict=True)]
-        auto = [alm_cross_spectrum(p) for p in phi]
+        cross = [cross_spectrum(rho * p + e, p) for p, e in zip(phi, noise, strict=True)]
+        auto = [cross_spectrum(p) for p in phi]
         estimate = normalisation_correction(cross, auto, binning=bins)
         factors.append(estimate.value)
         errors.append(estimate.error)

@@ -1,0 +1,630 @@
+r"""Debiased lensing bandpowers from a suite, their covariance, the lensing amplitude and the bias budget.
+
+Bandpowers
+==========
+Every spectrum is binned as D_L = [L(L+1)]² C_L / 2π with weights 2L + 1 inside each bin
+(:class:`Binning`); the theory is binned the same way, so data and model are compared like with like. On a
+masked sky, spectra of two reconstructions are divided by ⟨w⁴⟩ and cross-spectra of a reconstruction with
+the input φ by ⟨w²⟩ (:mod:`lensrec.power`: each quadratic estimate carries two powers of the mask weights).
+
+The data bandpowers (:func:`lensing_bandpowers`, notation of :mod:`lensrec.biases`)::
+
+    Ĉ_b = (1/ρ_b²) · [C_b^{split} − RDN0_b − N1_b] ,
+
+with C^{split} the half-split mean-field-subtracted spectrum (eq. 4), RDN0 from data × simulation and
+simulation × simulation pairs (eq. 1), the Monte-Carlo N1 (eq. 3, zero when the suite has none) and the
+normalisation correction 1/ρ² from the simulations' cross-spectra with their input φ. Each simulation's
+own bandpowers are debiased the same way with the Monte-Carlo N0 (eq. 2) in place of RDN0 and
+mean-field halves that leave it out; their sample covariance, plus the (diagonal) Monte-Carlo variance of
+the RDN0 and N1 that the data subtracts, is the covariance of the data bandpowers (slightly conservative:
+RDN0 removes part of the bandpower correlations that MC-N0 leaves; Namikawa, Hanson & Takahashi 2013,
+MNRAS 431, 609, §5). With few simulations the Monte-Carlo part is not small: RDN0's error falls only as
+1/√n_sims.
+
+Lensing amplitude
+=================
+A = Σ_b w_b Ĉ_b / Σ_b w_b C_b^{fid} with w_b = C_b^{fid}/σ_b², the diagonal inverse-variance fit of the
+fiducial shape (near-optimal when bandpower correlations are weak). Its error is the scatter of the same
+linear estimator over the simulations (no inverse of a noisy covariance is needed) combined with the
+Monte-Carlo error of the subtracted RDN0 and N1. χ² of the fiducial
+model uses the inverse sample covariance with the factor (n − n_b − 2)/(n − 1) of Hartlap, Simon &
+Schneider 2007 (A&A 464, 399) when n > n_b + 2 simulations are available, and the diagonal otherwise.
+
+For the curl component, and for a suite of Gaussian (unlensed) skies, the model is zero: the debiased
+bandpowers are a null test (χ² to zero), and no normalisation correction or amplitude applies.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass
+from types import MappingProxyType
+
+import numpy as np
+
+from ._checks import as_int
+from .biases import (
+    half_split_mean_fields,
+    mean_field_power,
+    mean_field_split_spectrum,
+    monte_carlo_n0,
+    monte_carlo_n1,
+    normalisation_correction,
+    realization_dependent_n0,
+)
+from .power import cross_spectrum, mask_corrected, mask_moment_order
+
+__all__ = [
+    "Binning",
+    "default_binning",
+    "LensingBandpowers",
+    "lensing_bandpowers",
+    "fit_amplitude",
+    "chi_squared",
+    "bias_budget",
+    "bias_budget_table",
+    "plot_bias_budget",
+    "write_bias_report",
+]
+
+TERMS = ("mean_field", "rdn0", "mc_n0", "n1", "analytic_n0")
+TERM_LABELS = {"mean_field": "mean-field power", "rdn0": "RDN0", "mc_n0": "MC-N0", "n1": "MC-N1",
+               "analytic_n0": "analytic N0"}
+
+
+def _lensing_factor(L: np.ndarray) -> np.ndarray:
+    L = L.astype(np.float64)
+    return (L * (L + 1.0)) ** 2 / (2.0 * np.pi)
+
+
+# --------------------------------------------------------------------------------------------- binning
+@dataclass(frozen=True, eq=False)
+class Binning:
+    """Bandpower bins [edges[b], edges[b+1]) in L, binning D_L = [L(L+1)]² C_L/2π with weights 2L + 1.
+
+    Parameters
+    ----------
+    edges : sequence of int
+        Strictly increasing, first ≥ 2.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> b = Binning([2, 4, 8])
+    >>> b.n_bins, b.L_eff.round(2).tolist()
+    (2, [2.58, 5.71])
+    >>> b.bin(np.ones(10)).shape
+    (2,)
+    """
+
+    edges: np.ndarray
+
+    def __post_init__(self):
+        edges = np.asarray(self.edges)
+        if edges.ndim != 1 or edges.size < 2 or not np.issubdtype(edges.dtype, np.number):
+            raise ValueError(f"edges must be at least two increasing multipoles, got {self.edges!r}")
+        if np.any(edges != np.round(edges)) or edges[0] < 2 or np.any(np.diff(edges) <= 0):
+            raise ValueError(f"edges must be increasing integers starting at L >= 2, got {edges.tolist()}")
+        edges = edges.astype(np.int64)
+        edges.setflags(write=False)
+        object.__setattr__(self, "edges", edges)
+
+    @property
+    def n_bins(self) -> int:
+        return int(self.edges.size - 1)
+
+    @property
+    def lmax_L(self) -> int:
+        """Highest L used (edges[-1] − 1)."""
+        return int(self.edges[-1] - 1)
+
+    @property
+    def L_eff(self) -> np.ndarray:
+        """(2L+1)-weighted mean L of each bin."""
+        out = []
+        for lo, hi in zip(self.edges[:-1], self.edges[1:], strict=True):
+            L = np.arange(lo, hi)
+            out.append(float(np.sum((2 * L + 1) * L) / np.sum(2 * L + 1)))
+        return np.array(out)
+
+    def matrix(self, lmax_L: int | None = None) -> np.ndarray:
+        """(n_bins, lmax_L + 1) matrix taking raw C_L to binned [L(L+1)]² C_L/2π."""
+        lmax_L = self.lmax_L if lmax_L is None else as_int(lmax_L, "lmax_L", minimum=self.lmax_L)
+        out = np.zeros((self.n_bins, lmax_L + 1))
+        L = np.arange(lmax_L + 1)
+        for b, (lo, hi) in enumerate(zip(self.edges[:-1], self.edges[1:], strict=True)):
+            weights = 2.0 * L[lo:hi] + 1.0
+            out[b, lo:hi] = weights / weights.sum() * _lensing_factor(L[lo:hi])
+        return out
+
+    def bin(self, spectrum) -> np.ndarray:
+        """Binned [L(L+1)]² C_L/2π of raw spectra (last axis L = 0 … ≥ lmax_L)."""
+        spectrum = np.asarray(spectrum, dtype=np.float64)
+        if spectrum.shape[-1] < self.lmax_L + 1:
+            raise ValueError(f"spectrum has {spectrum.shape[-1]} multipoles but the bins reach L = {self.lmax_L}")
+        return spectrum[..., : self.lmax_L + 1] @ self.matrix().T
+
+
+def default_binning(lmax_L: int, L_min: int = 8, n_bins: int = 8) -> Binning:
+    """Logarithmically spaced bins from ``L_min`` to ``lmax_L`` (inclusive).
+
+    Examples
+    --------
+    >>> default_binning(400).edges.tolist()
+    [8, 13, 21, 35, 57, 92, 151, 246, 401]
+    """
+    lmax_L = as_int(lmax_L, "lmax_L", minimum=4)
+    L_min = as_int(L_min, "L_min", minimum=2, maximum=lmax_L - 1)
+    n_bins = as_int(n_bins, "n_bins", minimum=1, maximum=lmax_L - L_min + 1)
+    edges = np.unique(np.round(np.geomspace(L_min, lmax_L + 1, n_bins + 1)).astype(int))
+    return Binning(edges)
+
+
+# ------------------------------------------------------------------------------------------ statistics
+def fit_amplitude(bandpowers, model, variance) -> float:
+    """A = Σ w b / Σ w t with w = t/σ²: the diagonal inverse-variance fit of the model's amplitude.
+
+    Parameters
+    ----------
+    bandpowers : array, shape (..., n_bins)
+        One or more sets of bandpowers (the fit is linear, so it applies row by row).
+    model : array, shape (n_bins,)
+    variance : array, shape (n_bins,)
+        σ_b² (positive).
+
+    Returns
+    -------
+    float or ndarray
+
+    Examples
+    --------
+    >>> float(fit_amplitude([2.0, 4.0], [1.0, 2.0], [1.0, 1.0]))
+    2.0
+    """
+    model = np.asarray(model, dtype=np.float64)
+    variance = np.asarray(variance, dtype=np.float64)
+    if np.any(~(variance > 0)):
+        raise ValueError("variance must be positive in every bin")
+    weights = model / variance
+    return np.asarray(bandpowers, dtype=np.float64) @ weights / float(weights @ model)
+
+
+def chi_squared(bandpowers, model, covariance, n_sims: int) -> tuple[float, int, float, str]:
+    """χ², degrees of freedom, probability to exceed and method, for a covariance estimated from n_sims.
+
+    With n_sims > n_bins + 2 the inverse sample covariance is scaled by (n − n_b − 2)/(n − 1) (Hartlap,
+    Simon & Schneider 2007, A&A 464, 399); otherwise only its diagonal is used.
+    """
+    from scipy import stats
+
+    residual = np.asarray(bandpowers, dtype=np.float64) - np.asarray(model, dtype=np.float64)
+    covariance = np.asarray(covariance, dtype=np.float64)
+    n_bins = residual.size
+    if n_sims > n_bins + 2:
+        inverse = np.linalg.inv(covariance) * (n_sims - n_bins - 2) / (n_sims - 1)
+        method = "sample covariance with the Hartlap factor"
+    else:
+        inverse = np.diag(1.0 / np.diag(covariance))
+        method = "diagonal of the sample covariance (too few simulations for its inverse)"
+    value = float(residual @ inverse @ residual)
+    return value, n_bins, float(stats.chi2.sf(value, n_bins)), method
+
+
+# ------------------------------------------------------------------------------------------ the result
+@dataclass(frozen=True, eq=False)
+class LensingBandpowers:
+    """Debiased lensing bandpowers of one estimator and component, with every bias term (read-only).
+
+    All bandpower arrays are binned [L(L+1)]² C_L/2π (shape (n_bins,)); ``unbinned`` holds the same terms
+    per L (raw C_L, L = 0 … lmax_L) for plots.
+
+    Attributes
+    ----------
+    estimator, component : str
+    binning : Binning
+    theory : ndarray
+        The fiducial C_L^φφ binned (zero for the curl).
+    raw : ndarray
+        The data's half-split mean-field-subtracted spectrum, before any bias subtraction.
+    terms, term_errors : mapping name → ndarray
+        "mean_field" (the mean-field's own power, already excluded from ``raw`` by the split),
+        "rdn0", "mc_n0", "n1" (zero without N1 pairs), "analytic_n0"; errors are Monte-Carlo 1σ.
+    normalisation, normalisation_error : ndarray
+        The factor 1/ρ² applied to the bias-subtracted spectrum (1 for the curl), and its error.
+    debiased, errors : ndarray
+        Ĉ_b of the data and √diag(covariance).
+    covariance : ndarray, shape (n_bins, n_bins)
+        Of the data bandpowers: the simulations' sample covariance plus the Monte-Carlo variance of the
+        subtracted RDN0 and N1 on the diagonal.
+    simulations : ndarray, shape (n_sims, n_bins)
+        Each simulation's debiased bandpowers.
+    amplitude, amplitude_error : float or None
+        A_lens of the data and its error (None for the curl).
+    amplitude_simulations : ndarray or None
+    chi2, dof, pte : float, int, float
+        Of the fiducial model (zero for the curl).
+    chi2_method : str
+    n_sims, n1_computed : int, bool
+    unbinned : mapping
+    settings : mapping
+    """
+
+    estimator: str
+    component: str
+    binning: Binning
+    theory: np.ndarray
+    raw: np.ndarray
+    terms: Mapping
+    term_errors: Mapping
+    normalisation: np.ndarray
+    normalisation_error: np.ndarray
+    debiased: np.ndarray
+    errors: np.ndarray
+    covariance: np.ndarray
+    simulations: np.ndarray
+    amplitude: float | None
+    amplitude_error: float | None
+    amplitude_simulations: np.ndarray | None
+    chi2: float
+    dof: int
+    pte: float
+    chi2_method: str
+    n_sims: int
+    n1_computed: bool
+    unbinned: Mapping
+    settings: Mapping
+
+    @property
+    def L_eff(self) -> np.ndarray:
+        return self.binning.L_eff
+
+    def to_dict(self) -> dict:
+        """Plain lists and dicts for JSON."""
+        return {
+            "estimator": self.estimator,
+            "component": self.component,
+            "units": "[L(L+1)]^2 C_L / 2pi (binned with weights 2L+1)",
+            "bin_edges": self.binning.edges.tolist(),
+            "L_eff": self.L_eff.tolist(),
+            "theory": self.theory.tolist(),
+            "raw": self.raw.tolist(),
+            "terms": {k: v.tolist() for k, v in self.terms.items()},
+            "term_errors": {k: v.tolist() for k, v in self.term_errors.items()},
+            "normalisation_correction": self.normalisation.tolist(),
+            "normalisation_correction_error": self.normalisation_error.tolist(),
+            "debiased": self.debiased.tolist(),
+            "errors": self.errors.tolist(),
+            "covariance": self.covariance.tolist(),
+            "amplitude": self.amplitude,
+            "amplitude_error": self.amplitude_error,
+            "chi2": self.chi2,
+            "dof": self.dof,
+            "pte": self.pte,
+            "chi2_method": self.chi2_method,
+            "n_sims": self.n_sims,
+            "n1_computed": self.n1_computed,
+            "settings": dict(self.settings),
+        }
+
+
+def _frozen(array) -> np.ndarray:
+    array = np.array(array, dtype=np.float64, copy=True)
+    array.setflags(write=False)
+    return array
+
+
+def lensing_bandpowers(suite, estimator: str | None = None, component: str = "gradient",
+                       binning: Binning | None = None) -> LensingBandpowers:
+    """Debiased bandpowers of the suite's data, the bias budget, the covariance and A_lens.
+
+    Parameters
+    ----------
+    suite : LensingSuite or path
+        A finished suite (:func:`lensrec.run_lensing_suite`) or its folder.
+    estimator : str, optional
+        One of the suite's estimators (default: the first).
+    component : {"gradient", "curl"}
+        Lensing potential (default) or the curl null test.
+    binning : Binning, optional
+        Default :func:`default_binning` (lmax_L).
+
+    Returns
+    -------
+    LensingBandpowers
+
+    Raises
+    ------
+    ValueError
+        An unfinished suite, an estimator it does not hold, bins beyond its lmax_L.
+
+    References
+    ----------
+    Namikawa, Hanson & Takahashi 2013, MNRAS 431, 609 (RDN0); Kesden, Cooray & Kamionkowski 2003, PRD 67,
+    123507 (N1); Hartlap, Simon & Schneider 2007, A&A 464, 399 (inverse sample covariance).
+    """
+    from .suites import COMPONENTS, LensingSuite, _context, estimate_key, open_lensing_suite
+
+    if not isinstance(suite, LensingSuite):
+        suite = open_lensing_suite(suite)
+    settings = suite.settings
+    estimator = suite.estimators[0] if estimator is None else estimator
+    if estimator not in suite.estimators:
+        raise ValueError(f"estimator {estimator!r} is not in this suite (it holds {suite.estimators})")
+    if component not in COMPONENTS:
+        raise ValueError(f"component must be one of {COMPONENTS}, got {component!r}")
+    lmax_L = int(settings["lmax_L"])
+    binning = default_binning(lmax_L) if binning is None else binning
+    if not isinstance(binning, Binning):
+        raise TypeError(f"binning must be a lensrec.bandpowers.Binning, got {type(binning).__name__}")
+    if binning.lmax_L > lmax_L:
+        raise ValueError(f"the bins reach L = {binning.lmax_L} but the suite stops at lmax_L = {lmax_L}")
+    if not suite.complete:
+        raise ValueError(f"suite {suite.directory!r} is not finished; run it again (it resumes) before the report")
+    n = suite.n_sims
+    moments = settings["mask_moments"]  # None on the full sky
+    auto_order = mask_moment_order("estimate", "estimate")  # ⟨w⁴⟩
+    input_order = mask_moment_order("estimate", "input")  # ⟨w²⟩
+
+    def estimate_power(first, second=None):
+        return mask_corrected(cross_spectrum(first, second), moments, auto_order)
+    matrix = binning.matrix(lmax_L)
+
+    def key(kind):
+        return estimate_key(kind, component, estimator)
+
+    autos, inputs, shared, independent, data_sim, sim_sim = [], [], [], [], [], []
+    for i in range(n):
+        stored = suite.simulation(i)
+        autos.append(stored[key("auto")])
+        inputs.append(stored["phi_input"])
+        if key("n1_shared") in stored:
+            shared.append(estimate_power(stored[key("n1_shared")]))
+            independent.append(estimate_power(stored[key("n1_independent")]))
+        pairs = suite.pairs(i)
+        data_sim.append(estimate_power(pairs[key("data_sim")]))
+        if i >= 1:
+            sim_sim.append(estimate_power(pairs[key("sim_sim")]))
+    autos = np.array(autos)
+    data_auto = suite.data()[key("auto")]
+
+    one, two = half_split_mean_fields(autos)
+    raw_data = mask_corrected(mean_field_split_spectrum(data_auto, one, two), moments, auto_order)
+    mf_power = mask_corrected(mean_field_power(one, two), moments, auto_order)
+    raw_sims = np.array([mask_corrected(mean_field_split_spectrum(autos[i], *half_split_mean_fields(autos, exclude=i)),
+                                        moments, auto_order) for i in range(n)])
+    data_sim, sim_sim = np.array(data_sim), np.array(sim_sim)
+
+    binned = {}
+    unbinned = {"L": np.arange(lmax_L + 1)}
+    rdn0 = realization_dependent_n0(data_sim @ matrix.T, sim_sim @ matrix.T)
+    mcn0 = monte_carlo_n0(sim_sim @ matrix.T)
+    binned["rdn0"], binned["mc_n0"] = rdn0, mcn0
+    unbinned["rdn0"] = realization_dependent_n0(data_sim, sim_sim).value
+    unbinned["mc_n0"] = monte_carlo_n0(sim_sim).value
+    if len(shared) >= 2:
+        shared, independent = np.array(shared), np.array(independent)
+        binned["n1"] = monte_carlo_n1(shared @ matrix.T, independent @ matrix.T)
+        unbinned["n1"] = monte_carlo_n1(shared, independent).value
+    context = _context(settings)
+    analytic = np.nan_to_num(np.asarray(context.noise.n0[estimator][component])[: lmax_L + 1], nan=0.0)
+    unbinned["analytic_n0"] = analytic
+    unbinned["mean_field"] = mf_power
+    unbinned["raw"] = raw_data
+
+    spectra = context.spectra
+    has_signal = component == "gradient" and bool(settings.get("lensing", True))
+    if has_signal:
+        theory_unbinned = np.array(spectra.phi[: lmax_L + 1])
+        cross = np.array([mask_corrected(cross_spectrum(a, p), moments, input_order)
+                          for a, p in zip(autos, inputs, strict=True)])
+        input_auto = np.array([cross_spectrum(p) for p in inputs])
+        correction = normalisation_correction(cross, input_auto, binning=matrix)
+        factor, factor_error = correction.value, correction.error
+    else:
+        theory_unbinned = np.zeros(lmax_L + 1)
+        factor, factor_error = np.ones(binning.n_bins), np.zeros(binning.n_bins)
+    unbinned["theory"] = theory_unbinned
+    theory = matrix @ theory_unbinned
+
+    zeros = np.zeros(binning.n_bins)
+    n1_value = binned["n1"].value if "n1" in binned else zeros
+    terms = {"mean_field": matrix @ mf_power, "rdn0": rdn0.value, "mc_n0": mcn0.value, "n1": n1_value,
+             "analytic_n0": matrix @ analytic}
+    term_errors = {"mean_field": zeros, "rdn0": rdn0.error, "mc_n0": mcn0.error,
+                   "n1": binned["n1"].error if "n1" in binned else zeros, "analytic_n0": zeros}
+    raw = matrix @ raw_data
+    debiased = factor * (raw - rdn0.value - n1_value)
+    simulations = factor * (raw_sims @ matrix.T - mcn0.value - n1_value)
+    sample = np.cov(simulations, rowvar=False, ddof=1).reshape(binning.n_bins, binning.n_bins)
+    # the Monte-Carlo errors of the subtracted terms enter the data (each simulation shares one MC-N0 and N1,
+    # so they do not appear in the simulations' scatter)
+    monte_carlo = factor**2 * (rdn0.error**2 + term_errors["n1"] ** 2)
+    covariance = sample + np.diag(monte_carlo)
+    errors = np.sqrt(np.diag(covariance))
+    if has_signal:
+        weights = theory / errors**2
+        amplitude = float(fit_amplitude(debiased, theory, errors**2))
+        amplitude_sims = fit_amplitude(simulations, theory, errors**2)
+        amplitude_error = float(np.sqrt(np.var(amplitude_sims, ddof=1)
+                                        + np.sum(weights**2 * monte_carlo) / float(weights @ theory) ** 2))
+    else:
+        amplitude = amplitude_error = amplitude_sims = None
+    chi2, dof, pte, method = chi_squared(debiased, theory, covariance, n)
+    info = {"experiment": settings["experiment"]["name"], "nside": settings["nside"], "lmax": settings["lmax"],
+            "lmax_L": lmax_L, "seed": settings["seed"], "data": dict(settings["data"]),
+            "mask_moments": settings["mask_moments"], "directory": suite.directory}
+    return LensingBandpowers(
+        estimator=estimator, component=component, binning=binning, theory=_frozen(theory), raw=_frozen(raw),
+        terms=MappingProxyType({k: _frozen(v) for k, v in terms.items()}),
+        term_errors=MappingProxyType({k: _frozen(v) for k, v in term_errors.items()}),
+        normalisation=_frozen(factor), normalisation_error=_frozen(factor_error), debiased=_frozen(debiased),
+        errors=_frozen(errors), covariance=_frozen(covariance), simulations=_frozen(simulations),
+        amplitude=amplitude, amplitude_error=amplitude_error,
+        amplitude_simulations=None if amplitude_sims is None else _frozen(amplitude_sims),
+        chi2=chi2, dof=dof, pte=pte, chi2_method=method, n_sims=n, n1_computed="n1" in binned,
+        unbinned=MappingProxyType({k: _frozen(v) for k, v in unbinned.items()}), settings=MappingProxyType(info),
+    )
+
+
+# ----------------------------------------------------------------------------------------- the budget
+def bias_budget(result: LensingBandpowers) -> dict:
+    """The bias budget as plain data: per bandpower, every term and its ratio to the signal.
+
+    The signal is the fiducial bandpower (for the curl or Gaussian skies, which have none, ratios are to
+    the analytic N0).
+    """
+    if not isinstance(result, LensingBandpowers):
+        raise TypeError(f"result must be LensingBandpowers, got {type(result).__name__}")
+    has_signal = result.amplitude is not None
+    reference = result.theory if has_signal else result.terms["analytic_n0"]
+    rows = []
+    for b in range(result.binning.n_bins):
+        lo, hi = int(result.binning.edges[b]), int(result.binning.edges[b + 1] - 1)
+        row = {"L_min": lo, "L_max": hi, "L_eff": float(result.L_eff[b]), "signal": float(result.theory[b]),
+               "raw": float(result.raw[b]), "debiased": float(result.debiased[b]), "error": float(result.errors[b]),
+               "normalisation_correction": float(result.normalisation[b]),
+               "normalisation_correction_error": float(result.normalisation_error[b])}
+        for name in TERMS:
+            row[name] = float(result.terms[name][b])
+            row[f"{name}_error"] = float(result.term_errors[name][b])
+            row[f"{name}_over_signal"] = float(result.terms[name][b] / reference[b]) if reference[b] else None
+        rows.append(row)
+    return {
+        "estimator": result.estimator, "component": result.component,
+        "units": "[L(L+1)]^2 C_L / 2pi", "reference_for_ratios": "signal" if has_signal else "analytic_n0",
+        "bandpowers": rows, "amplitude": result.amplitude, "amplitude_error": result.amplitude_error,
+        "chi2": result.chi2, "dof": result.dof, "pte": result.pte, "chi2_method": result.chi2_method,
+        "n_sims": result.n_sims, "n1_computed": result.n1_computed, "settings": dict(result.settings),
+    }
+
+
+def bias_budget_table(result: LensingBandpowers) -> str:
+    """A text table of the bias budget: each term per bandpower and as a fraction of the signal."""
+    budget = bias_budget(result)
+    ratio_name = "S" if result.amplitude is not None else "N0"
+    header = (f"{'L range':>11} {'L_eff':>7} {'signal':>10} {'raw':>10} {'RDN0':>10} {'MC-N0':>10} {'N1':>10} "
+              f"{'MF':>10} {'1/rho^2':>8} {'debiased':>10} {'sigma':>9} "
+              f"{'RDN0/' + ratio_name:>8} {'N1/' + ratio_name:>8} {'MF/' + ratio_name:>8}")
+    lines = [f"bias budget: estimator {result.estimator}, {result.component}; units [L(L+1)]^2 C_L/2pi; "
+             f"{result.n_sims} simulations" + ("" if result.n1_computed else "; N1 not computed"), header,
+             "-" * len(header)]
+
+    def ratio(value):
+        return "n/a" if value is None else f"{value:.3g}"
+
+    for row in budget["bandpowers"]:
+        lines.append(
+            f"{row['L_min']:>5}-{row['L_max']:<5} {row['L_eff']:>7.1f} {row['signal']:>10.3e} {row['raw']:>10.3e} "
+            f"{row['rdn0']:>10.3e} {row['mc_n0']:>10.3e} {row['n1']:>10.3e} {row['mean_field']:>10.3e} "
+            f"{row['normalisation_correction']:>8.4f} {row['debiased']:>10.3e} {row['error']:>9.2e} "
+            f"{ratio(row['rdn0_over_signal']):>8} {ratio(row['n1_over_signal']):>8} "
+            f"{ratio(row['mean_field_over_signal']):>8}")
+    if result.amplitude is not None:
+        lines.append(f"A_lens = {result.amplitude:.4f} +- {result.amplitude_error:.4f} "
+                     f"(scatter of {result.n_sims} simulations)")
+    target = "fiducial model" if result.amplitude is not None else "zero (null test)"
+    lines.append(f"chi2 to the {target} = {result.chi2:.2f} for {result.dof} bandpowers (PTE {result.pte:.3f}; "
+                 f"{result.chi2_method})")
+    return "\n".join(lines) + "\n"
+
+
+_STYLE = {"theory": "#1b3a5c", "data": "#c0392b", "rdn0": "#2e86ab", "mc_n0": "#7fb3d5", "n1": "#e67e22",
+          "mean_field": "#8e44ad", "analytic_n0": "#7f8c8d", "normalisation": "#27ae60"}
+
+
+def plot_bias_budget(result: LensingBandpowers, title: str | None = None):
+    """A log–log figure of the bias budget: signal, debiased data, and |each term| per bandpower.
+
+    Returns a :class:`matplotlib.figure.Figure` (not attached to pyplot); negative terms are drawn with
+    open markers at their absolute value.
+    """
+    from matplotlib.figure import Figure
+
+    if not isinstance(result, LensingBandpowers):
+        raise TypeError(f"result must be LensingBandpowers, got {type(result).__name__}")
+    figure = Figure(figsize=(8.0, 5.6), dpi=110, layout="constrained")
+    axes = figure.add_subplot()
+    L_all = np.asarray(result.unbinned["L"])
+    keep = L_all >= 2
+    factor = _lensing_factor(L_all)
+    L_eff = result.L_eff
+    if result.amplitude is not None:
+        axes.plot(L_all[keep], (factor * result.unbinned["theory"])[keep], color=_STYLE["theory"], lw=2.0,
+                  label=r"fiducial $C_L^{\phi\phi}$")
+    axes.plot(L_all[keep], (factor * result.unbinned["analytic_n0"])[keep], color=_STYLE["analytic_n0"], lw=1.2,
+              ls="--", label="analytic N0")
+    for name, marker in (("rdn0", "s"), ("mc_n0", "D"), ("n1", "o"), ("mean_field", "v")):
+        if name == "n1" and not result.n1_computed:
+            continue
+        values = result.terms[name]
+        positive = values > 0
+        # a line only joins terms that are positive in every bin; mixed signs are shown as markers alone
+        axes.plot(L_eff[positive], values[positive], marker=marker, ls="-" if positive.all() else "none", lw=0.8,
+                  color=_STYLE[name], ms=6, label=TERM_LABELS[name])
+        if np.any(~positive):
+            axes.plot(L_eff[~positive], -values[~positive], marker=marker, ls="none", ms=6, mfc="white",
+                      color=_STYLE[name], label=f"−{TERM_LABELS[name]} (negative)")
+    if result.amplitude is not None:
+        shift = np.abs(result.normalisation - 1.0) * result.theory
+        axes.plot(L_eff, shift, marker="^", ls=":", color=_STYLE["normalisation"], ms=6,
+                  label=r"|1/ρ² − 1| × signal")
+    visible = result.debiased > 0
+    axes.errorbar(L_eff[visible], result.debiased[visible], yerr=result.errors[visible], fmt="o", ms=5,
+                  color=_STYLE["data"], ecolor=_STYLE["data"], capsize=3, label="debiased data", zorder=5)
+    axes.set_xscale("log")
+    axes.set_yscale("log")
+    axes.set_xlabel("lensing multipole $L$")
+    axes.set_ylabel(r"$[L(L+1)]^2\, C_L / 2\pi$" + ("" if result.component == "gradient" else "  (curl)"))
+    axes.set_xlim(max(2.0, result.binning.edges[0] * 0.8), result.binning.edges[-1] * 1.1)
+    axes.grid(True, which="major", color="#dddddd", lw=0.6)
+    axes.grid(True, which="minor", color="#f0f0f0", lw=0.4)
+    for spine in ("top", "right"):
+        axes.spines[spine].set_visible(False)
+    if title is None:
+        title = f"bias budget: {result.estimator} {result.component}, {result.n_sims} simulations"
+        if result.amplitude is not None:
+            title += f"  —  A_lens = {result.amplitude:.3f} ± {result.amplitude_error:.3f}"
+    axes.set_title(title, fontsize=10)
+    axes.legend(fontsize=8, frameon=False, ncols=2, loc="best")
+    return figure
+
+
+def write_bias_report(result: LensingBandpowers, directory, force: bool = False, provenance: dict | None = None,
+                      stem: str | None = None) -> list[str]:
+    """Write ``<stem>.json`` (bandpowers, covariance, budget, amplitude), ``<stem>.txt`` and ``<stem>.png``.
+
+    Parameters
+    ----------
+    result : LensingBandpowers
+    directory : path
+        Created if needed.
+    force : bool
+        Overwrite existing files (default: refuse, before writing anything).
+    provenance : dict, optional
+        Stored under "provenance" in the JSON.
+    stem : str, optional
+        Default ``bias_budget_<estimator>_<component>``.
+
+    Returns
+    -------
+    list of str
+        The paths written.
+    """
+    import os
+
+    from .io import atomic_path, atomic_write_text, check_outputs_free, write_json
+
+    stem = stem or f"bias_budget_{result.estimator}_{result.component}"
+    paths = [os.path.join(os.fspath(directory), f"{stem}.{ext}") for ext in ("json", "txt", "png")]
+    check_outputs_free(paths, force=force)
+    os.makedirs(directory, exist_ok=True)
+    document = {"bandpowers": result.to_dict(), "budget": bias_budget(result)}
+    if provenance is not None:
+        document["provenance"] = provenance
+    write_json(paths[0], document, force=force)
+    atomic_write_text(paths[1], bias_budget_table(result), force=force)
+    figure = plot_bias_budget(result)
+    with atomic_path(paths[2], force=force, suffix=".png") as tmp:
+        figure.savefig(tmp, format="png")
+    return paths
+

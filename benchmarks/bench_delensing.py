@@ -41,13 +41,22 @@ def _child(method: str, lmax: int, nthreads: int) -> None:
     e_alm = gaussian_alm(spectra.lensed["EE"], lmax, rng)
     phi_alm = gaussian_alm(spectra.phi, lmax, rng)
     rss_inputs = peak_rss_mb()
-    lensing_b_template(e_alm[: lensrec.harmonics.nalm(100)], phi_alm[: lensrec.harmonics.nalm(100)], 100,
-                       method=method, nthreads=nthreads)  # warm-up (imports, plans)
+    lensing_b_template(
+        e_alm[: lensrec.harmonics.nalm(100)],
+        phi_alm[: lensrec.harmonics.nalm(100)],
+        100,
+        method=method,
+        nthreads=nthreads,
+    )  # warm-up (imports, plans)
     start, start_cpu = time.perf_counter(), time.process_time()
     lensing_b_template(e_alm, phi_alm, lmax, method=method, nthreads=nthreads)
     seconds, cpu_seconds = time.perf_counter() - start, time.process_time() - start_cpu
-    print(json.dumps({"seconds": seconds, "cpu_seconds": cpu_seconds, "peak_rss_mb": peak_rss_mb(),
-                      "inputs_rss_mb": rss_inputs}), flush=True)
+    print(
+        json.dumps(
+            {"seconds": seconds, "cpu_seconds": cpu_seconds, "peak_rss_mb": peak_rss_mb(), "inputs_rss_mb": rss_inputs}
+        ),
+        flush=True,
+    )
 
 
 def _reference(nside: int, lmax: int, nthreads: int) -> None:
@@ -87,29 +96,38 @@ def main() -> int:
 
     quick = ["--quick"] if args.quick else []
     before = _run_child("--child", "reference", "--nthreads", args.nthreads, *quick)
-    rows = [{"method": method, **_run_child("--child", method, "--lmax", lmax, "--nthreads", args.nthreads)}
-            for method in METHODS]
+    rows = [
+        {"method": method, **_run_child("--child", method, "--lmax", lmax, "--nthreads", args.nthreads)}
+        for method in METHODS
+    ]
     after = _run_child("--child", "reference", "--nthreads", args.nthreads, *quick)
     unit = min(before["seconds"], after["seconds"])  # machine load drifts: keep the faster reference
     unit_cpu = min(before["cpu_seconds"], after["cpu_seconds"])
     table = []
     for row in rows:
-        table.append({
-            "method": row["method"],
-            "nside_reference": nside,
-            "lmax": lmax,
-            "nthreads": args.nthreads,
-            "template_s": row["seconds"],
-            "template_cpu_s": row["cpu_seconds"],
-            "spin2_synthesis_s": unit,
-            "ratio": row["seconds"] / unit,
-            "spin2_synthesis_cpu_s": unit_cpu,
-            "cpu_ratio": row["cpu_seconds"] / unit_cpu,
-            "peak_rss_mb": row["peak_rss_mb"],
-            "inputs_rss_mb": row["inputs_rss_mb"],
-        })
-    table.append({"method": "first_order / remap", "ratio": table[1]["template_s"] / table[0]["template_s"],
-                  "cpu_ratio": table[1]["template_cpu_s"] / table[0]["template_cpu_s"]})
+        table.append(
+            {
+                "method": row["method"],
+                "nside_reference": nside,
+                "lmax": lmax,
+                "nthreads": args.nthreads,
+                "template_s": row["seconds"],
+                "template_cpu_s": row["cpu_seconds"],
+                "spin2_synthesis_s": unit,
+                "ratio": row["seconds"] / unit,
+                "spin2_synthesis_cpu_s": unit_cpu,
+                "cpu_ratio": row["cpu_seconds"] / unit_cpu,
+                "peak_rss_mb": row["peak_rss_mb"],
+                "inputs_rss_mb": row["inputs_rss_mb"],
+            }
+        )
+    table.append(
+        {
+            "method": "first_order / remap",
+            "ratio": table[1]["template_s"] / table[0]["template_s"],
+            "cpu_ratio": table[1]["template_cpu_s"] / table[0]["template_cpu_s"],
+        }
+    )
     report("delensing_quick" if args.quick else "delensing", table)
     return 0
 

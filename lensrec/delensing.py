@@ -181,7 +181,9 @@ def wiener_filter_phi(phi_alm, n0, phi_spectrum=None) -> np.ndarray:
         )
     if np.any(np.isnan(noise[2:])):
         bad = int(np.argmax(np.isnan(noise[2:]))) + 2
-        raise ValueError(f"n0 is NaN at L = {bad}; NaN is allowed only at L < 2 (use inf where nothing is reconstructed)")
+        raise ValueError(
+            f"n0 is NaN at L = {bad}; NaN is allowed only at L < 2 (use inf where nothing is reconstructed)"
+        )
     if np.any(noise[~np.isnan(noise)] < 0):
         raise ValueError(f"n0 must be non-negative (a noise power); got {np.nanmin(noise):.4g}")
     if phi_spectrum is None:
@@ -251,8 +253,7 @@ def wiener_filter_e(e_alm, experiment, spectra=None, beam_convolved=True) -> np.
     return IsotropicFilter(experiment, spectra, lmax=lmax).filter_alm(fields).wiener("E")
 
 
-def template_inputs(maps, experiment, spectra=None, lmax: int | None = None, mask=None,
-                    nthreads: int | None = None):
+def template_inputs(maps, experiment, spectra=None, lmax: int | None = None, mask=None, nthreads: int | None = None):
     """The Wiener-filtered E and the observed B (sky units) of T, Q, U maps, from the isotropic filter.
 
     Parameters
@@ -303,8 +304,9 @@ def template_inputs(maps, experiment, spectra=None, lmax: int | None = None, mas
 
 
 # ----------------------------------------------------------------------------------------- templates
-def lensing_b_template(e_alm, phi_alm, lmax: int, method: str = "remap", epsilon: float = DEFAULT_EPSILON,
-                       nthreads: int | None = None) -> np.ndarray:
+def lensing_b_template(
+    e_alm, phi_alm, lmax: int, method: str = "remap", epsilon: float = DEFAULT_EPSILON, nthreads: int | None = None
+) -> np.ndarray:
     """Lensing B-mode template: the B modes of E lensed by φ (E and φ normally Wiener-filtered).
 
     Parameters
@@ -413,13 +415,16 @@ def _first_order_template(e_alm, lmax_e, phi_alm, lmax_phi, lmax, nthreads) -> n
         coefficients[0] = alm
         return sht.synthesis_2d(alm=coefficients, lmax=band, spin=spin, **shape)
 
-    deflection = gradient_map(scale_alm(phi_alm, _ell_factor(lmax_phi, lambda ell: ell * (ell + 1.0)), lmax_phi),
-                              lmax_phi, 1)
-    product = gradient_map(scale_alm(e_alm, _ell_factor(lmax_e, lambda ell: (ell - 2.0) * (ell + 3.0)), lmax_e),
-                           lmax_e, 3)
+    deflection = gradient_map(
+        scale_alm(phi_alm, _ell_factor(lmax_phi, lambda ell: ell * (ell + 1.0)), lmax_phi), lmax_phi, 1
+    )
+    product = gradient_map(
+        scale_alm(e_alm, _ell_factor(lmax_e, lambda ell: (ell - 2.0) * (ell + 3.0)), lmax_e), lmax_e, 3
+    )
     _combine(product, deflection, sign=-1.0, nthreads=nthreads)  # −½ d̄ S₃, in place
-    lowered = gradient_map(scale_alm(e_alm, _ell_factor(lmax_e, lambda ell: (ell + 2.0) * (ell - 1.0)), lmax_e),
-                           lmax_e, 1)
+    lowered = gradient_map(
+        scale_alm(e_alm, _ell_factor(lmax_e, lambda ell: (ell + 2.0) * (ell - 1.0)), lmax_e), lmax_e, 1
+    )
     _combine(lowered, deflection, sign=1.0, nthreads=nthreads)  # +½ d S₁, in place
     del deflection
     product += lowered
@@ -497,8 +502,9 @@ def delensing_efficiency(observed_bb, residual_bb, noise_bb=None) -> np.ndarray:
     return out
 
 
-def measured_alens_residual(residual_bb, lensed_bb, noise_bb=None, ell_min: int = 2, ell_max: int | None = None,
-                            iterations: int = 8) -> float:
+def measured_alens_residual(
+    residual_bb, lensed_bb, noise_bb=None, ell_min: int = 2, ell_max: int | None = None, iterations: int = 8
+) -> float:
     """A_lens^res of a measured residual: the Fisher-weighted fit of A · C^lens + N to the delensed BB.
 
     The definition of :func:`lensrec.tensor_forecast.alens_residual` (the amplitude that a fit of
@@ -541,8 +547,9 @@ def measured_alens_residual(residual_bb, lensed_bb, noise_bb=None, ell_min: int 
     iterations = as_int(iterations, "iterations", minimum=1, maximum=100)
     residual = _spectrum(residual_bb, "residual_bb", ell_max)[ell_min:]
     lensed = _spectrum(lensed_bb, "lensed_bb", ell_max)[ell_min:]
-    noise = (np.zeros(ell_max + 1) if noise_bb is None
-             else _spectrum(noise_bb, "noise_bb", ell_max, allow_inf=True))[ell_min:]
+    noise = (np.zeros(ell_max + 1) if noise_bb is None else _spectrum(noise_bb, "noise_bb", ell_max, allow_inf=True))[
+        ell_min:
+    ]
     usable = np.isfinite(noise) & (lensed > 0)
     if not np.any(usable):
         raise ValueError(f"no multipole in [{ell_min}, {ell_max}] has lensing power and finite noise")
@@ -664,8 +671,15 @@ _EFFICIENCY_NOTE = (
 )
 
 
-def delensing_spectra(observed_b_alm, template_alm, noise_bb=None, lensed_bb=None, ell_min: int | None = None,
-                      ell_max: int | None = None, method: str = "remap") -> DelensingResult:
+def delensing_spectra(
+    observed_b_alm,
+    template_alm,
+    noise_bb=None,
+    lensed_bb=None,
+    ell_min: int | None = None,
+    ell_max: int | None = None,
+    method: str = "remap",
+) -> DelensingResult:
     """Residual B modes (observed − template) and the spectra, efficiency and A_lens^res that describe them.
 
     Parameters
@@ -747,9 +761,19 @@ def delensing_spectra(observed_b_alm, template_alm, noise_bb=None, lensed_bb=Non
     )
 
 
-def delens(observed_b_alm, e_alm, phi_alm, lmax: int | None = None, method: str = "remap", noise_bb=None,
-           lensed_bb=None, ell_min: int | None = None, ell_max: int | None = None,
-           epsilon: float = DEFAULT_EPSILON, nthreads: int | None = None) -> DelensingResult:
+def delens(
+    observed_b_alm,
+    e_alm,
+    phi_alm,
+    lmax: int | None = None,
+    method: str = "remap",
+    noise_bb=None,
+    lensed_bb=None,
+    ell_min: int | None = None,
+    ell_max: int | None = None,
+    epsilon: float = DEFAULT_EPSILON,
+    nthreads: int | None = None,
+) -> DelensingResult:
     """Build the lensing B-mode template from E and φ and subtract it from the observed B modes.
 
     Parameters
@@ -802,6 +826,6 @@ def delens(observed_b_alm, e_alm, phi_alm, lmax: int | None = None, method: str 
     observed, lmax_obs = _coefficients(observed_b_alm, "observed_b_alm")
     lmax = min(lmax_e, lmax_obs) if lmax is None else as_int(lmax, "lmax", minimum=2)
     template = lensing_b_template(e_alm, phi_alm, lmax, method=method, epsilon=epsilon, nthreads=nthreads)
-    return delensing_spectra(observed, template, noise_bb=noise_bb, lensed_bb=lensed_bb, ell_min=ell_min,
-                             ell_max=ell_max, method=method)
-
+    return delensing_spectra(
+        observed, template, noise_bb=noise_bb, lensed_bb=lensed_bb, ell_min=ell_min, ell_max=ell_max, method=method
+    )

@@ -20,8 +20,15 @@ LMAX_CMB = 1500  # lensed band limit of the simulation and of the filtered E
 MARGIN = 1500  # the unlensed E and phi of the simulation reach LMAX + MARGIN = 2500
 # A low-noise full-sky survey: the shipped deep patch's noise and beam (1.0 / 1.4 uK-arcmin, 1 arcmin), cut at
 # l = 1500 so that nside 512 resolves it, observing the whole sky.
-DEEP = dict(noise_temperature=1.0, noise_polarization=1.4, beam_fwhm=1.0, ell_min=30,
-            ell_max_temperature=LMAX_CMB, ell_max_polarization=LMAX_CMB, sky_fraction=1.0)
+DEEP = dict(
+    noise_temperature=1.0,
+    noise_polarization=1.4,
+    beam_fwhm=1.0,
+    ell_min=30,
+    ell_max_temperature=LMAX_CMB,
+    ell_max_polarization=LMAX_CMB,
+    sky_fraction=1.0,
+)
 
 
 def band_modes(lo, hi):
@@ -35,7 +42,7 @@ def band_sigma(lo, hi):
 
 def band_mean(cl, lo, hi):
     ell = np.arange(lo, hi + 1)
-    return np.sum((2 * ell + 1) * cl[lo:hi + 1]) / np.sum(2 * ell + 1)
+    return np.sum((2 * ell + 1) * cl[lo : hi + 1]) / np.sum(2 * ell + 1)
 
 
 @pytest.fixture(scope="module")
@@ -46,8 +53,9 @@ def experiment():
 @pytest.fixture(scope="module")
 def sky(experiment):
     """One low-noise full-sky simulation at nside 512: lensed to l = 1500, unlensed E and phi to 2500."""
-    return lensrec.simulate_sky(experiment, nside=512, lmax=LMAX_CMB, lmax_margin=LMAX + MARGIN - LMAX_CMB,
-                                seed=21, nthreads=2)
+    return lensrec.simulate_sky(
+        experiment, nside=512, lmax=LMAX_CMB, lmax_margin=LMAX + MARGIN - LMAX_CMB, seed=21, nthreads=2
+    )
 
 
 @pytest.fixture(scope="module")
@@ -61,8 +69,10 @@ def true_inputs(sky):
 def perfect_templates(true_inputs):
     """Templates of both methods from the true unlensed E and the true phi (the full band of the simulation)."""
     e_alm, phi_alm, _ = true_inputs
-    return {method: delensing.lensing_b_template(e_alm, phi_alm, LMAX, method=method, nthreads=2)
-            for method in delensing.TEMPLATE_METHODS}
+    return {
+        method: delensing.lensing_b_template(e_alm, phi_alm, LMAX, method=method, nthreads=2)
+        for method in delensing.TEMPLATE_METHODS
+    }
 
 
 # ------------------------------------------------------------------------------- perfect knowledge
@@ -107,8 +117,9 @@ def test_first_order_template_power_matches_the_full_sky_first_order_kernel(true
     # Tolerance: 4 sigma of the band power (module docstring) plus 0.3% for the non-Gaussian scatter left.
     e_alm, phi_alm, _ = true_inputs
     template_bb = lensrec.auto_spectrum(perfect_templates["first_order"])
-    kernel = lensrec.first_order_lensed_bb(lensrec.auto_spectrum(e_alm), lensrec.auto_spectrum(phi_alm), LMAX,
-                                           ell_margin=MARGIN)
+    kernel = lensrec.first_order_lensed_bb(
+        lensrec.auto_spectrum(e_alm), lensrec.auto_spectrum(phi_alm), LMAX, ell_margin=MARGIN
+    )
     for lo, hi in BANDS:
         ratio = band_mean(template_bb, lo, hi) / band_mean(kernel, lo, hi)
         assert abs(ratio - 1.0) < 4 * band_sigma(lo, hi) + 0.003, (lo, hi, ratio)
@@ -125,12 +136,13 @@ def test_template_from_band_limited_sources_removes_the_predicted_fraction(true_
     # PRD 71, 103010).
     e_alm, phi_alm, lensed_b = true_inputs
     cut, lmax_in = 1500, LMAX + MARGIN
-    template = delensing.lensing_b_template(truncate_alm(e_alm, cut, lmax_in), truncate_alm(phi_alm, cut, lmax_in),
-                                            LMAX, nthreads=2)
+    template = delensing.lensing_b_template(
+        truncate_alm(e_alm, cut, lmax_in), truncate_alm(phi_alm, cut, lmax_in), LMAX, nthreads=2
+    )
     result = delensing.delensing_spectra(lensed_b, template)
     ee, pp = np.array(fiducial.unlensed["EE"][: lmax_in + 1]), np.array(fiducial.phi[: lmax_in + 1])
     full = lensrec.first_order_lensed_bb(ee, pp, LMAX, ell_margin=MARGIN)
-    ee[cut + 1:], pp[cut + 1:] = 0.0, 0.0
+    ee[cut + 1 :], pp[cut + 1 :] = 0.0, 0.0
     partial = lensrec.first_order_lensed_bb(ee, pp, LMAX, ell_margin=MARGIN)
     for lo, hi in BANDS:
         predicted = band_mean(partial, lo, hi) / band_mean(full, lo, hi)
@@ -165,8 +177,9 @@ def efficiency_sigma(efficiency, lo, hi):
 
 
 @pytest.mark.slow
-def test_reconstructed_phi_delensing_matches_the_forecast(ee_reconstruction, template_fields, true_inputs,
-                                                          experiment, fiducial):
+def test_reconstructed_phi_delensing_matches_the_forecast(
+    ee_reconstruction, template_fields, true_inputs, experiment, fiducial
+):
     # Reference: the forecast residual of lensrec.delensing_forecast (Smith et al. 2012, JCAP 06, 014: residual
     # C^BB - K[W C^EE, rho^2 C^phiphi] at first order, lensed spectra checked against camb elsewhere) from the
     # analytic N0 of the same EE reconstruction, with the same band limits as the simulation (E and phi to 2500,
@@ -183,8 +196,9 @@ def test_reconstructed_phi_delensing_matches_the_forecast(ee_reconstruction, tem
     n0 = np.array(ee_reconstruction.n0["gradient"])
     phi_wiener = delensing.wiener_filter_phi(ee_reconstruction.phi_alm, n0, fiducial.phi)
     forecast = lensrec.delensing_forecast(experiment, fiducial, n0=n0, lmax=LMAX, ell_margin=MARGIN, nthreads=2)
-    expected = {band: 1.0 - band_mean(forecast.residual_bb, *band) / band_mean(forecast.lensed_bb, *band)
-                for band in BANDS}
+    expected = {
+        band: 1.0 - band_mean(forecast.residual_bb, *band) / band_mean(forecast.lensed_bb, *band) for band in BANDS
+    }
     assert 0.05 < min(expected.values())  # a reconstruction that delenses measurably
     measured = {}
     for method in delensing.TEMPLATE_METHODS:
@@ -211,8 +225,7 @@ def test_reconstructed_phi_delensing_matches_the_forecast(ee_reconstruction, tem
 
 
 @pytest.mark.slow
-def test_reusing_the_b_modes_biases_the_measured_residual_low(sky, experiment, template_fields, true_inputs,
-                                                              fiducial):
+def test_reusing_the_b_modes_biases_the_measured_residual_low(sky, experiment, template_fields, true_inputs, fiducial):
     # Delensing bias (Namikawa 2017, PRD 95, 103514; Baleato Lizancos, Challinor & Carron 2021, JCAP 03, 016):
     # with an EB reconstruction (the estimator that dominates MV at this noise) from the same maps, the template
     # correlates with the B-mode noise, so the noise-subtracted efficiency measured on the observed B modes
@@ -365,8 +378,9 @@ def test_template_input_errors(small_fields, change, error, match):
         else:
             kwargs[key] = value
     with pytest.raises(error, match=match):
-        delensing.lensing_b_template(kwargs["e_alm"], kwargs["phi_alm"], kwargs["lmax"], method=kwargs["method"],
-                                     nthreads=1)
+        delensing.lensing_b_template(
+            kwargs["e_alm"], kwargs["phi_alm"], kwargs["lmax"], method=kwargs["method"], nthreads=1
+        )
 
 
 def test_wiener_filter_phi_input_errors(small_fields, fiducial):
@@ -405,8 +419,14 @@ def test_template_inputs_match_healpy_analysis(fiducial):
     # Reference: healpy.map2alm (iter 3, the lensrec filter's analysis) of the same maps, divided by the beam;
     # E Wiener-filtered with C^EE/(C^EE + N^EE) (Smith et al. 2012), B in sky units, both zero outside the
     # polarization cuts. Tolerance: healpy and ducc0 agree to ~1e-10 of the largest coefficient.
-    experiment = lensrec.Experiment(name="small", noise_temperature=3.0, beam_fwhm=30.0, ell_min=4,
-                                    ell_max_temperature=120, ell_max_polarization=100)
+    experiment = lensrec.Experiment(
+        name="small",
+        noise_temperature=3.0,
+        beam_fwhm=30.0,
+        ell_min=4,
+        ell_max_temperature=120,
+        ell_max_polarization=100,
+    )
     sky = lensrec.simulate_sky(experiment, nside=64, lmax=150, lmax_margin=50, seed=4, nthreads=1)
     e_wiener, b_observed, fields = delensing.template_inputs(sky.maps, experiment, fiducial, lmax=120, nthreads=1)
     reference = healpy.map2alm(np.array(sky.maps), lmax=120, iter=3, use_weights=False)

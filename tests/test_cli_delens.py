@@ -1,0 +1,249 @@
+"""``lensrec delens`` end to end (simulate → reconstruct → delens): outputs, overwriting, provenance, bad input."""
+
+import json
+import os
+import shutil
+import warnings
+
+import healpy
+import numpy as np
+import pytest
+
+import lensrec
+from lensrec.cli import main
+from lensrec.io import read_alm, read_json, read_maps
+
+NSIDE, LMAX = 64, 150
+SIMULATE = [
+    "simulate",
+    "--experiment",
+    "deep_highland",
+    "--nside",
+    str(NSIDE),
+    "--lmax",
+    str(LMAX),
+    "--lmax-margin",
+    "100",
+    "--seed",
+    "5",
+    "--nthreads",
+    "2",
+]
+
+
+def reconstruct_args(maps, out, estimator):
+    return [
+        "reconstruct",
+        "--experiment",
+        "deep_highland",
+        "--maps",
+        str(maps),
+        "--estimator",
+        estimator,
+        "--lmax",
+        str(LMAX),
+        "--lmax-L",
+        "120",
+        "--nthreads",
+        "2",
+        "--out",
+        str(out),
+    ]
+
+
+@pytest.fixture(scope="module")
+def inputs(tmp_path_factory):
+    """A small simulated sky and its EE and EB reconstructions, written by the commands themselves."""
+    root = tmp_path_factory.mktemp("delens_inputs")
+    assert main(SIMULATE + ["--out", str(root / "sky")]) == 0
+    for estimator in ("EE", "EB"):
+        assert main(reconstruct_args(root / "sky" / "maps.fits", root / f"rec_{estimator}", estimator)) == 0
+    return root
+
+
+def delens_args(inputs, out, estimator="EE", extra=()):
+    return [
+        "delens",
+        "--experiment",
+        "deep_highland",
+        "--maps",
+        str(inputs / "sky" / "maps.fits"),
+        "--phi",
+        str(inputs / f"rec_{estimator}" / "phi_alm.fits"),
+        "--nthreads",
+        "2",
+        "--out",
+        str(out),
+        *extra,
+    ]
+
+
+def test_delens_writes_template_spectra_and_provenance(inputs, tmp_path, capsys):
+    out = tmp_path / "delensed"
+    assert main(delens_args(inputs, out)) == 0
+    shown = capsys.readouterr().out
+    assert "A_lens^res" in shown and "wrote" in shown and "warning" not in shown  # EE: no B modes reused
+    template = read_alm(out / "b_template_alm.fits")
+    lmax = 3 * NSIDE - 1  # default: min(3 nside - 1, the experiment's polarization l_max 4000)
+    assert template.size == lensrec.harmonics.nalm(lmax)
+    spectra = read_json(out / "spectra.json")
+    for key in (
+        "ell",
+        "observed_bb",
+        "template_bb",
+        "residual_bb",
+        "observed_x_template_bb",
+        "efficiency",
+        "noise_bb",
+        "notes",
+    ):
+        assert key in spectra, key
+        assert len(spectra[key]) == (lmax + 1 if key != "notes" else len(spectra[key]))
+    assert spectra["ell"] == list(range(lmax + 1)) and spectra["estimator"] == "EE"
+    assert isinstance(spectra["alens_residual"], float) and spectra["method"] == "remap"
+    assert any("delensing bias" in note.lower() for note in spectra["notes"])
+
+    # the files hold what the library computes from the same inputs (same thread count: identical)
+    experiment = lensrec.load_experiment("deep_highland")
+    fiducial = lensrec.fiducial_spectra()
+    maps = read_maps(inputs / "sky" / "maps.fits")
+    phi_hat = read_alm(inputs / "rec_EE" / "phi_alm.fits")
+    n0 = np.array(
+        [np.nan if v is None else v for v in read_json(inputs / "rec_EE" / "n0.json")["n0"]["EE"]["gradient"]]
+    )
+    e_wiener, b_observed, _ = lensrec.delensing.template_inputs(maps, experiment, fiducial, lmax=lmax, nthreads=2)
+    expected = lensrec.delens(
+        b_observed,
+        e_wiener,
+        lensrec.wiener_filter_phi(phi_hat, n0, fiducial.phi),
+        lmax,
+        noise_bb=experiment.noise_spectrum("B", lmax),
+        nthreads=2,
+    )
+    assert np.allclose(template, expected.template_alm, rtol=0, atol=1e-12 * np.abs(expected.template_alm).max())
+    # the residual spectrum is observed - 2 cross + template (a bilinear identity; rounding only)
+    observed, cross, auto, residual = (
+        np.array(spectra[key]) for key in ("observed_bb", "observed_x_template_bb", "template_bb", "residual_bb")
+    )
+    assert np.allclose(residual, observed - 2 * cross + auto, rtol=1e-9, atol=1e-14 * observed.max())
+
+    record = read_json(out / "run.json")
+    assert record["command"] == "delens" and record["inputs"]["estimator"] == "EE"
+    assert record["inputs"]["phi_from_these_maps"] is True and record["settings"]["method"] == "remap"
+    assert main(["inspect", str(out)]) == 0
+    shown = capsys.readouterr().out
+    assert "lensrec_version" in shown and "git_commit" in shown and "delens" in shown
+
+
+def test_first_order_method_and_lmax(inputs, tmp_path):
+    out = tmp_path / "first"
+    assert main(delens_args(inputs, out, extra=("--method", "first_order", "--lmax", "120"))) == 0
+    assert read_alm(out / "b_template_alm.fits").size == lensrec.harmonics.nalm(120)
+    assert read_json(out / "spectra.json")["method"] == "first_order"
+
+
+def test_existing_outputs_are_refused_before_any_work_and_force_overwrites(inputs, tmp_path, capsys):
+    out = tmp_path / "delensed"
+    os.makedirs(out)
+    (out / "run.json").write_text("{}")
+    assert main(delens_args(inputs, out)) == 2
+    err = capsys.readouterr().err
+    assert "already exists" in err and "run.json" in err
+    assert not (out / "b_template_alm.fits").exists() and not (out / "spectra.json").exists()  # nothing written
+    assert main(delens_args(inputs, out, extra=("--force",))) == 0
+    assert read_json(out / "run.json")["command"] == "delens"
+    assert main(delens_args(inputs, out)) == 2  # a finished run is refused too
+    assert main(delens_args(inputs, out, extra=("--force", "--method", "first_order"))) == 0
+    assert read_json(out / "spectra.json")["method"] == "first_order"
+
+
+def test_b_mode_reconstruction_warns_of_the_delensing_bias(inputs, tmp_path, capsys):
+    out = tmp_path / "eb"
+    assert main(delens_args(inputs, out, estimator="EB")) == 0
+    shown = capsys.readouterr().out
+    assert "warning: phi was reconstructed with EB" in shown and "delensing bias" in shown
+    notes = read_json(out / "spectra.json")["notes"]
+    assert notes[0].startswith("WARNING: phi was reconstructed with EB") and "these same maps" in notes[0]
+
+
+def _write_nan_copy(source, target, kind):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        if kind == "maps":
+            maps = np.array(read_maps(source))
+            maps[1, 10] = np.nan
+            healpy.write_map(str(target), list(maps), dtype=np.float64, overwrite=True)
+        else:
+            alm = np.array(read_alm(source))
+            alm[5] = np.nan
+            healpy.write_alm(str(target), alm, overwrite=True)
+
+
+def test_bad_input_exits_2_with_one_line(inputs, tmp_path, capsys):
+    rec = inputs / "rec_EE"
+    # phi without its N0 beside it
+    lonely = tmp_path / "lonely"
+    os.makedirs(lonely)
+    shutil.copy(rec / "phi_alm.fits", lonely / "phi_alm.fits")
+    # phi with the N0 of another L range
+    other = tmp_path / "other"
+    shutil.copytree(rec, other)
+    document = json.loads((other / "n0.json").read_text())
+    document["L"] = document["L"][:-10]
+    document["n0"]["EE"]["gradient"] = document["n0"]["EE"]["gradient"][:-10]
+    (other / "n0.json").write_text(json.dumps(document))
+    # a reconstruction from maps of another resolution
+    assert (
+        main(SIMULATE[:3] + ["--nside", "32", "--lmax", "90", "--lmax-margin", "60", "--out", str(tmp_path / "sky32")])
+        == 0
+    )
+    capsys.readouterr()
+    low = [
+        "reconstruct",
+        "--experiment",
+        "deep_highland",
+        "--maps",
+        str(tmp_path / "sky32" / "maps.fits"),
+        "--estimator",
+        "EE",
+        "--lmax",
+        "90",
+        "--lmax-L",
+        "60",
+        "--out",
+        str(tmp_path / "rec32"),
+    ]
+    assert main(low) == 0
+    # NaN in the maps and in phi
+    nan_maps, nan_phi = tmp_path / "nan_maps.fits", tmp_path / "nan_rec"
+    _write_nan_copy(inputs / "sky" / "maps.fits", nan_maps, "maps")
+    shutil.copytree(rec, nan_phi)
+    os.remove(nan_phi / "phi_alm.fits")
+    _write_nan_copy(rec / "phi_alm.fits", nan_phi / "phi_alm.fits", "alm")
+    capsys.readouterr()
+
+    cases = [
+        (["--phi", str(lonely / "phi_alm.fits")], "n0.json' is missing"),
+        (["--phi", str(other / "phi_alm.fits")], "does not match"),
+        (["--phi", str(tmp_path / "rec32" / "phi_alm.fits")], "reconstructed from nside 32 maps"),
+        (["--maps", str(tmp_path / "sky32" / "maps.fits")], "beyond the band limit 3*nside-1 = 95"),
+        (["--lmax", "500"], "--lmax 500 must lie in [2, 3*nside-1 = 191]"),
+        (["--maps", str(nan_maps)], "non-finite"),
+        (["--phi", str(nan_phi / "phi_alm.fits")], "non-finite"),
+        (["--maps", str(tmp_path / "missing.fits")], "does not exist"),
+        (["--experiment", "no_such_survey"], "no experiment file or shipped experiment"),
+    ]
+    for extra, message in cases:
+        argv = delens_args(inputs, tmp_path / "never")
+        for flag, value in zip(extra[::2], extra[1::2], strict=True):
+            if flag in argv:
+                argv[argv.index(flag) + 1] = value
+            else:
+                argv += [flag, value]
+        assert main(argv) == 2, extra
+        err = capsys.readouterr().err.strip()
+        assert message in err and len(err.splitlines()) == 1, (extra, err)
+    assert not (tmp_path / "never").exists()  # refused before writing anything
+
+    assert main(delens_args(inputs, tmp_path / "x", extra=("--method", "third_order"))) == 2  # argparse choices
+    assert "invalid choice: 'third_order'" in capsys.readouterr().err

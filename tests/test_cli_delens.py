@@ -247,3 +247,47 @@ def test_bad_input_exits_2_with_one_line(inputs, tmp_path, capsys):
 
     assert main(delens_args(inputs, tmp_path / "x", extra=("--method", "third_order"))) == 2  # argparse choices
     assert "invalid choice: 'third_order'" in capsys.readouterr().err
+
+
+def test_forecast_delensing_adds_residual_alens_and_sigma_r(tmp_path, capsys):
+    path = tmp_path / "small.toml"
+    lensrec.Experiment(
+        name="Small Deep Survey",
+        noise_temperature=1.0,
+        beam_fwhm=2.0,
+        ell_max_temperature=500,
+        ell_max_polarization=500,
+    ).to_toml(path)
+    out = tmp_path / "n0.json"
+    assert main(["forecast", "--experiment", str(path), "--delensing", "--nthreads", "2", "--out", str(out)]) == 0
+    shown = capsys.readouterr().out
+    assert "A_lens^res" in shown and "sigma(r)" in shown and "delensing bias" in shown
+    document = read_json(out)
+    delensing = document["delensing"]
+    assert delensing["n0_estimator"] == "MV" and document["provenance"]["arguments"]["delensing"] is True
+    # the JSON holds what lensrec.delensing_forecast gives for the MV gradient N0 of the same document
+    n0 = np.array([np.nan if v is None else v for v in document["n0"]["MV"]["gradient"]])
+    expected = lensrec.delensing_forecast(str(path), n0=n0, nthreads=2)
+    assert delensing["alens_residual"] == pytest.approx(expected.alens_residual, rel=1e-12)
+    assert delensing["sigma_r_delensed"] == pytest.approx(expected.sigma_r_delensed, rel=1e-12)
+    assert np.allclose(delensing["residual_bb"], expected.residual_bb, rtol=1e-12, atol=0)
+    assert len(delensing["lensed_bb"]) == len(delensing["residual_bb"]) == 501  # l = 0 ... min(500, 1000)
+    # delensing removes lensing B power and lowers sigma(r) (Knox & Song 2002, PRL 89, 011303)
+    assert 0.0 < delensing["alens_residual"] < 1.0
+    assert delensing["sigma_r_delensed"] < delensing["sigma_r_lensed"]
+    assert any("delensing bias" in note for note in delensing["notes"])
+
+    # without MV among the estimators the flag is refused before any work
+    argv = [
+        "forecast",
+        "--experiment",
+        str(path),
+        "--delensing",
+        "--estimators",
+        "TT,EB",
+        "--out",
+        str(tmp_path / "x.json"),
+    ]
+    assert main(argv) == 2
+    assert "include MV in --estimators" in capsys.readouterr().err
+    assert not (tmp_path / "x.json").exists()

@@ -43,8 +43,9 @@ def suite_rate(settings: dict, executor: str, workers: int, threads: int) -> dic
         if executor == "dask":
             from distributed import Client, LocalCluster
 
-            cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=None,
-                                   silence_logs=50)
+            cluster = LocalCluster(
+                n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=None, silence_logs=50
+            )
             client = Client(cluster)
             target = client
         else:
@@ -60,10 +61,19 @@ def suite_rate(settings: dict, executor: str, workers: int, threads: int) -> dic
             cluster.close()
         shutil.rmtree(folder, ignore_errors=True)
     n = settings["n_sims"]
-    return {"executor": executor, "workers": workers, "threads_per_task": threads, "n_sims": n,
-            "seconds": seconds, "startup_seconds": startup, "sims_per_minute": 60.0 * n / seconds,
-            "simulation_stage_s": stages["simulations"], "pair_stage_s": stages["pairs"],
-            "peak_rss_mb": peak_rss_mb(), "children_peak_rss_mb": children_rss_mb()}
+    return {
+        "executor": executor,
+        "workers": workers,
+        "threads_per_task": threads,
+        "n_sims": n,
+        "seconds": seconds,
+        "startup_seconds": startup,
+        "sims_per_minute": 60.0 * n / seconds,
+        "simulation_stage_s": stages["simulations"],
+        "pair_stage_s": stages["pairs"],
+        "peak_rss_mb": peak_rss_mb(),
+        "children_peak_rss_mb": children_rss_mb(),
+    }
 
 
 def scheduling_overhead(n_tasks: int) -> list[dict]:
@@ -80,16 +90,30 @@ def scheduling_overhead(n_tasks: int) -> list[dict]:
         try:
             start = time.perf_counter()
             if name == "dask":
-                cluster = LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None,
-                                       silence_logs=50)
+                cluster = LocalCluster(
+                    n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None, silence_logs=50
+                )
                 client = Client(cluster)
                 client.submit(sum, [1], pure=False).result()  # workers are up
             startup = time.perf_counter() - start
-            run = run_suite(settings, folder, gaussian_field_task, executor=client if client else "processes",
-                            max_workers=2, progress=False)
+            run = run_suite(
+                settings,
+                folder,
+                gaussian_field_task,
+                executor=client if client else "processes",
+                max_workers=2,
+                progress=False,
+            )
             # the pool's start-up (spawning and importing in 2 workers) happens inside the run
-            rows.append({"executor": name, "tasks": n_tasks, "startup_seconds": startup, "run_seconds": run.seconds,
-                         "ms_per_task": 1e3 * run.seconds / n_tasks})
+            rows.append(
+                {
+                    "executor": name,
+                    "tasks": n_tasks,
+                    "startup_seconds": startup,
+                    "run_seconds": run.seconds,
+                    "ms_per_task": 1e3 * run.seconds / n_tasks,
+                }
+            )
         finally:
             if client is not None:
                 client.close()
@@ -106,19 +130,29 @@ def main() -> None:
     from lensrec.suites import lensing_suite_settings
 
     if args.quick:
-        settings = lensing_suite_settings("deep_highland", nside=64, lmax=128, lmax_L=100, estimators="MV",
-                                          n_sims=4, seed=1, lmax_margin=64)
+        settings = lensing_suite_settings(
+            "deep_highland", nside=64, lmax=128, lmax_L=100, estimators="MV", n_sims=4, seed=1, lmax_margin=64
+        )
         tiny_tasks = 20
     else:
-        settings = lensing_suite_settings("deep_highland", nside=512, lmax=1000, lmax_L=800, estimators="MV",
-                                          n_sims=4, seed=1, lmax_margin=500)
+        settings = lensing_suite_settings(
+            "deep_highland", nside=512, lmax=1000, lmax_L=800, estimators="MV", n_sims=4, seed=1, lmax_margin=500
+        )
         tiny_tasks = 100
+    # warm-up: imports, the fiducial spectra and per-process caches, so the first measured run is not penalised
+    warm = lensing_suite_settings(
+        "deep_highland", nside=32, lmax=64, lmax_L=48, estimators="MV", n_sims=4, seed=1, lmax_margin=32
+    )
+    suite_rate(warm, "serial", 1, 1)
     rows = []
     for executor, workers, threads in (("serial", 1, 1), ("serial", 1, 2), ("processes", 2, 1), ("dask", 2, 1)):
         row = suite_rate(settings, executor, workers, threads)
         rows.append(row)
-        print(f"  {executor} x{workers} ({threads} thread/task): {row['sims_per_minute']:.2f} sims/min "
-              f"({row['seconds']:.1f} s)", flush=True)
+        print(
+            f"  {executor} x{workers} ({threads} thread/task): {row['sims_per_minute']:.2f} sims/min "
+            f"({row['seconds']:.1f} s)",
+            flush=True,
+        )
     base = {r["executor"] + str(r["threads_per_task"]): r["sims_per_minute"] for r in rows}
     for row in rows:
         row["speed_vs_serial_1_thread"] = row["sims_per_minute"] / base["serial1"]
@@ -128,8 +162,10 @@ def main() -> None:
     for row in overhead:
         row["ms_per_task_vs_pool"] = row["ms_per_task"] / pool_ms
     size = f"nside{settings['nside']}_lmax{settings['lmax']}_{'-'.join(settings['estimators'])}"
-    report("suites_quick" if args.quick else "suites",
-           [{"size": size, **row} for row in rows] + [{"size": "overhead_nside16", **row} for row in overhead])
+    report(
+        "suites_quick" if args.quick else "suites",
+        [{"size": size, **row} for row in rows] + [{"size": "overhead_nside16", **row} for row in overhead],
+    )
 
 
 if __name__ == "__main__":

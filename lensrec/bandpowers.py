@@ -68,8 +68,13 @@ __all__ = [
 ]
 
 TERMS = ("mean_field", "rdn0", "mc_n0", "n1", "analytic_n0")
-TERM_LABELS = {"mean_field": "mean-field power", "rdn0": "RDN0", "mc_n0": "MC-N0", "n1": "MC-N1",
-               "analytic_n0": "analytic N0"}
+TERM_LABELS = {
+    "mean_field": "mean-field power",
+    "rdn0": "RDN0",
+    "mc_n0": "MC-N0",
+    "n1": "MC-N1",
+    "analytic_n0": "analytic N0",
+}
 
 
 def _lensing_factor(L: np.ndarray) -> np.ndarray:
@@ -313,8 +318,9 @@ def _frozen(array) -> np.ndarray:
     return array
 
 
-def lensing_bandpowers(suite, estimator: str | None = None, component: str = "gradient",
-                       binning: Binning | None = None) -> LensingBandpowers:
+def lensing_bandpowers(
+    suite, estimator: str | None = None, component: str = "gradient", binning: Binning | None = None
+) -> LensingBandpowers:
     """Debiased bandpowers of the suite's data, the bias budget, the covariance and A_lens.
 
     Parameters
@@ -367,6 +373,7 @@ def lensing_bandpowers(suite, estimator: str | None = None, component: str = "gr
 
     def estimate_power(first, second=None):
         return mask_corrected(cross_spectrum(first, second), moments, auto_order)
+
     matrix = binning.matrix(lmax_L)
 
     def key(kind):
@@ -390,8 +397,14 @@ def lensing_bandpowers(suite, estimator: str | None = None, component: str = "gr
     one, two = half_split_mean_fields(autos)
     raw_data = mask_corrected(mean_field_split_spectrum(data_auto, one, two), moments, auto_order)
     mf_power = mask_corrected(mean_field_power(one, two), moments, auto_order)
-    raw_sims = np.array([mask_corrected(mean_field_split_spectrum(autos[i], *half_split_mean_fields(autos, exclude=i)),
-                                        moments, auto_order) for i in range(n)])
+    raw_sims = np.array(
+        [
+            mask_corrected(
+                mean_field_split_spectrum(autos[i], *half_split_mean_fields(autos, exclude=i)), moments, auto_order
+            )
+            for i in range(n)
+        ]
+    )
     data_sim, sim_sim = np.array(data_sim), np.array(sim_sim)
 
     binned = {}
@@ -415,8 +428,9 @@ def lensing_bandpowers(suite, estimator: str | None = None, component: str = "gr
     has_signal = component == "gradient" and bool(settings.get("lensing", True))
     if has_signal:
         theory_unbinned = np.array(spectra.phi[: lmax_L + 1])
-        cross = np.array([mask_corrected(cross_spectrum(a, p), moments, input_order)
-                          for a, p in zip(autos, inputs, strict=True)])
+        cross = np.array(
+            [mask_corrected(cross_spectrum(a, p), moments, input_order) for a, p in zip(autos, inputs, strict=True)]
+        )
         input_auto = np.array([cross_spectrum(p) for p in inputs])
         correction = normalisation_correction(cross, input_auto, binning=matrix)
         factor, factor_error = correction.value, correction.error
@@ -428,10 +442,20 @@ def lensing_bandpowers(suite, estimator: str | None = None, component: str = "gr
 
     zeros = np.zeros(binning.n_bins)
     n1_value = binned["n1"].value if "n1" in binned else zeros
-    terms = {"mean_field": matrix @ mf_power, "rdn0": rdn0.value, "mc_n0": mcn0.value, "n1": n1_value,
-             "analytic_n0": matrix @ analytic}
-    term_errors = {"mean_field": zeros, "rdn0": rdn0.error, "mc_n0": mcn0.error,
-                   "n1": binned["n1"].error if "n1" in binned else zeros, "analytic_n0": zeros}
+    terms = {
+        "mean_field": matrix @ mf_power,
+        "rdn0": rdn0.value,
+        "mc_n0": mcn0.value,
+        "n1": n1_value,
+        "analytic_n0": matrix @ analytic,
+    }
+    term_errors = {
+        "mean_field": zeros,
+        "rdn0": rdn0.error,
+        "mc_n0": mcn0.error,
+        "n1": binned["n1"].error if "n1" in binned else zeros,
+        "analytic_n0": zeros,
+    }
     raw = matrix @ raw_data
     debiased = factor * (raw - rdn0.value - n1_value)
     simulations = factor * (raw_sims @ matrix.T - mcn0.value - n1_value)
@@ -445,24 +469,47 @@ def lensing_bandpowers(suite, estimator: str | None = None, component: str = "gr
         weights = theory / errors**2
         amplitude = float(fit_amplitude(debiased, theory, errors**2))
         amplitude_sims = fit_amplitude(simulations, theory, errors**2)
-        amplitude_error = float(np.sqrt(np.var(amplitude_sims, ddof=1)
-                                        + np.sum(weights**2 * monte_carlo) / float(weights @ theory) ** 2))
+        amplitude_error = float(
+            np.sqrt(np.var(amplitude_sims, ddof=1) + np.sum(weights**2 * monte_carlo) / float(weights @ theory) ** 2)
+        )
     else:
         amplitude = amplitude_error = amplitude_sims = None
     chi2, dof, pte, method = chi_squared(debiased, theory, covariance, n)
-    info = {"experiment": settings["experiment"]["name"], "nside": settings["nside"], "lmax": settings["lmax"],
-            "lmax_L": lmax_L, "seed": settings["seed"], "data": dict(settings["data"]),
-            "mask_moments": settings["mask_moments"], "directory": suite.directory}
+    info = {
+        "experiment": settings["experiment"]["name"],
+        "nside": settings["nside"],
+        "lmax": settings["lmax"],
+        "lmax_L": lmax_L,
+        "seed": settings["seed"],
+        "data": dict(settings["data"]),
+        "mask_moments": settings["mask_moments"],
+        "directory": suite.directory,
+    }
     return LensingBandpowers(
-        estimator=estimator, component=component, binning=binning, theory=_frozen(theory), raw=_frozen(raw),
+        estimator=estimator,
+        component=component,
+        binning=binning,
+        theory=_frozen(theory),
+        raw=_frozen(raw),
         terms=MappingProxyType({k: _frozen(v) for k, v in terms.items()}),
         term_errors=MappingProxyType({k: _frozen(v) for k, v in term_errors.items()}),
-        normalisation=_frozen(factor), normalisation_error=_frozen(factor_error), debiased=_frozen(debiased),
-        errors=_frozen(errors), covariance=_frozen(covariance), simulations=_frozen(simulations),
-        amplitude=amplitude, amplitude_error=amplitude_error,
+        normalisation=_frozen(factor),
+        normalisation_error=_frozen(factor_error),
+        debiased=_frozen(debiased),
+        errors=_frozen(errors),
+        covariance=_frozen(covariance),
+        simulations=_frozen(simulations),
+        amplitude=amplitude,
+        amplitude_error=amplitude_error,
         amplitude_simulations=None if amplitude_sims is None else _frozen(amplitude_sims),
-        chi2=chi2, dof=dof, pte=pte, chi2_method=method, n_sims=n, n1_computed="n1" in binned,
-        unbinned=MappingProxyType({k: _frozen(v) for k, v in unbinned.items()}), settings=MappingProxyType(info),
+        chi2=chi2,
+        dof=dof,
+        pte=pte,
+        chi2_method=method,
+        n_sims=n,
+        n1_computed="n1" in binned,
+        unbinned=MappingProxyType({k: _frozen(v) for k, v in unbinned.items()}),
+        settings=MappingProxyType(info),
     )
 
 
@@ -480,21 +527,37 @@ def bias_budget(result: LensingBandpowers) -> dict:
     rows = []
     for b in range(result.binning.n_bins):
         lo, hi = int(result.binning.edges[b]), int(result.binning.edges[b + 1] - 1)
-        row = {"L_min": lo, "L_max": hi, "L_eff": float(result.L_eff[b]), "signal": float(result.theory[b]),
-               "raw": float(result.raw[b]), "debiased": float(result.debiased[b]), "error": float(result.errors[b]),
-               "normalisation_correction": float(result.normalisation[b]),
-               "normalisation_correction_error": float(result.normalisation_error[b])}
+        row = {
+            "L_min": lo,
+            "L_max": hi,
+            "L_eff": float(result.L_eff[b]),
+            "signal": float(result.theory[b]),
+            "raw": float(result.raw[b]),
+            "debiased": float(result.debiased[b]),
+            "error": float(result.errors[b]),
+            "normalisation_correction": float(result.normalisation[b]),
+            "normalisation_correction_error": float(result.normalisation_error[b]),
+        }
         for name in TERMS:
             row[name] = float(result.terms[name][b])
             row[f"{name}_error"] = float(result.term_errors[name][b])
             row[f"{name}_over_signal"] = float(result.terms[name][b] / reference[b]) if reference[b] else None
         rows.append(row)
     return {
-        "estimator": result.estimator, "component": result.component,
-        "units": "[L(L+1)]^2 C_L / 2pi", "reference_for_ratios": "signal" if has_signal else "analytic_n0",
-        "bandpowers": rows, "amplitude": result.amplitude, "amplitude_error": result.amplitude_error,
-        "chi2": result.chi2, "dof": result.dof, "pte": result.pte, "chi2_method": result.chi2_method,
-        "n_sims": result.n_sims, "n1_computed": result.n1_computed, "settings": dict(result.settings),
+        "estimator": result.estimator,
+        "component": result.component,
+        "units": "[L(L+1)]^2 C_L / 2pi",
+        "reference_for_ratios": "signal" if has_signal else "analytic_n0",
+        "bandpowers": rows,
+        "amplitude": result.amplitude,
+        "amplitude_error": result.amplitude_error,
+        "chi2": result.chi2,
+        "dof": result.dof,
+        "pte": result.pte,
+        "chi2_method": result.chi2_method,
+        "n_sims": result.n_sims,
+        "n1_computed": result.n1_computed,
+        "settings": dict(result.settings),
     }
 
 
@@ -502,12 +565,17 @@ def bias_budget_table(result: LensingBandpowers) -> str:
     """A text table of the bias budget: each term per bandpower and as a fraction of the signal."""
     budget = bias_budget(result)
     ratio_name = "S" if result.amplitude is not None else "N0"
-    header = (f"{'L range':>11} {'L_eff':>7} {'signal':>10} {'raw':>10} {'RDN0':>10} {'MC-N0':>10} {'N1':>10} "
-              f"{'MF':>10} {'1/rho^2':>8} {'debiased':>10} {'sigma':>9} "
-              f"{'RDN0/' + ratio_name:>8} {'N1/' + ratio_name:>8} {'MF/' + ratio_name:>8}")
-    lines = [f"bias budget: estimator {result.estimator}, {result.component}; units [L(L+1)]^2 C_L/2pi; "
-             f"{result.n_sims} simulations" + ("" if result.n1_computed else "; N1 not computed"), header,
-             "-" * len(header)]
+    header = (
+        f"{'L range':>11} {'L_eff':>7} {'signal':>10} {'raw':>10} {'RDN0':>10} {'MC-N0':>10} {'N1':>10} "
+        f"{'MF':>10} {'1/rho^2':>8} {'debiased':>10} {'sigma':>9} "
+        f"{'RDN0/' + ratio_name:>8} {'N1/' + ratio_name:>8} {'MF/' + ratio_name:>8}"
+    )
+    lines = [
+        f"bias budget: estimator {result.estimator}, {result.component}; units [L(L+1)]^2 C_L/2pi; "
+        f"{result.n_sims} simulations" + ("" if result.n1_computed else "; N1 not computed"),
+        header,
+        "-" * len(header),
+    ]
 
     def ratio(value):
         return "n/a" if value is None else f"{value:.3g}"
@@ -518,18 +586,30 @@ def bias_budget_table(result: LensingBandpowers) -> str:
             f"{row['rdn0']:>10.3e} {row['mc_n0']:>10.3e} {row['n1']:>10.3e} {row['mean_field']:>10.3e} "
             f"{row['normalisation_correction']:>8.4f} {row['debiased']:>10.3e} {row['error']:>9.2e} "
             f"{ratio(row['rdn0_over_signal']):>8} {ratio(row['n1_over_signal']):>8} "
-            f"{ratio(row['mean_field_over_signal']):>8}")
+            f"{ratio(row['mean_field_over_signal']):>8}"
+        )
     if result.amplitude is not None:
-        lines.append(f"A_lens = {result.amplitude:.4f} +- {result.amplitude_error:.4f} "
-                     f"(scatter of {result.n_sims} simulations)")
+        lines.append(
+            f"A_lens = {result.amplitude:.4f} +- {result.amplitude_error:.4f} (scatter of {result.n_sims} simulations)"
+        )
     target = "fiducial model" if result.amplitude is not None else "zero (null test)"
-    lines.append(f"chi2 to the {target} = {result.chi2:.2f} for {result.dof} bandpowers (PTE {result.pte:.3f}; "
-                 f"{result.chi2_method})")
+    lines.append(
+        f"chi2 to the {target} = {result.chi2:.2f} for {result.dof} bandpowers (PTE {result.pte:.3f}; "
+        f"{result.chi2_method})"
+    )
     return "\n".join(lines) + "\n"
 
 
-_STYLE = {"theory": "#1b3a5c", "data": "#c0392b", "rdn0": "#2e86ab", "mc_n0": "#7fb3d5", "n1": "#e67e22",
-          "mean_field": "#8e44ad", "analytic_n0": "#7f8c8d", "normalisation": "#27ae60"}
+_STYLE = {
+    "theory": "#1b3a5c",
+    "data": "#c0392b",
+    "rdn0": "#2e86ab",
+    "mc_n0": "#7fb3d5",
+    "n1": "#e67e22",
+    "mean_field": "#8e44ad",
+    "analytic_n0": "#7f8c8d",
+    "normalisation": "#27ae60",
+}
 
 
 def plot_bias_budget(result: LensingBandpowers, title: str | None = None):
@@ -549,28 +629,64 @@ def plot_bias_budget(result: LensingBandpowers, title: str | None = None):
     factor = _lensing_factor(L_all)
     L_eff = result.L_eff
     if result.amplitude is not None:
-        axes.plot(L_all[keep], (factor * result.unbinned["theory"])[keep], color=_STYLE["theory"], lw=2.0,
-                  label=r"fiducial $C_L^{\phi\phi}$")
-    axes.plot(L_all[keep], (factor * result.unbinned["analytic_n0"])[keep], color=_STYLE["analytic_n0"], lw=1.2,
-              ls="--", label="analytic N0")
+        axes.plot(
+            L_all[keep],
+            (factor * result.unbinned["theory"])[keep],
+            color=_STYLE["theory"],
+            lw=2.0,
+            label=r"fiducial $C_L^{\phi\phi}$",
+        )
+    axes.plot(
+        L_all[keep],
+        (factor * result.unbinned["analytic_n0"])[keep],
+        color=_STYLE["analytic_n0"],
+        lw=1.2,
+        ls="--",
+        label="analytic N0",
+    )
     for name, marker in (("rdn0", "s"), ("mc_n0", "D"), ("n1", "o"), ("mean_field", "v")):
         if name == "n1" and not result.n1_computed:
             continue
         values = result.terms[name]
         positive = values > 0
         # a line only joins terms that are positive in every bin; mixed signs are shown as markers alone
-        axes.plot(L_eff[positive], values[positive], marker=marker, ls="-" if positive.all() else "none", lw=0.8,
-                  color=_STYLE[name], ms=6, label=TERM_LABELS[name])
+        axes.plot(
+            L_eff[positive],
+            values[positive],
+            marker=marker,
+            ls="-" if positive.all() else "none",
+            lw=0.8,
+            color=_STYLE[name],
+            ms=6,
+            label=TERM_LABELS[name],
+        )
         if np.any(~positive):
-            axes.plot(L_eff[~positive], -values[~positive], marker=marker, ls="none", ms=6, mfc="white",
-                      color=_STYLE[name], label=f"−{TERM_LABELS[name]} (negative)")
+            axes.plot(
+                L_eff[~positive],
+                -values[~positive],
+                marker=marker,
+                ls="none",
+                ms=6,
+                mfc="white",
+                color=_STYLE[name],
+                label=f"−{TERM_LABELS[name]} (negative)",
+            )
     if result.amplitude is not None:
         shift = np.abs(result.normalisation - 1.0) * result.theory
-        axes.plot(L_eff, shift, marker="^", ls=":", color=_STYLE["normalisation"], ms=6,
-                  label=r"|1/ρ² − 1| × signal")
+        axes.plot(L_eff, shift, marker="^", ls=":", color=_STYLE["normalisation"], ms=6, label=r"|1/ρ² − 1| × signal")
     visible = result.debiased > 0
-    axes.errorbar(L_eff[visible], result.debiased[visible], yerr=result.errors[visible], fmt="o", ms=5,
-                  color=_STYLE["data"], ecolor=_STYLE["data"], capsize=3, label="debiased data", zorder=5)
+    axes.errorbar(
+        L_eff[visible],
+        result.debiased[visible],
+        yerr=result.errors[visible],
+        fmt="o",
+        ms=5,
+        color=_STYLE["data"],
+        ecolor=_STYLE["data"],
+        capsize=3,
+        label="debiased data",
+        zorder=5,
+    )
     axes.set_xscale("log")
     axes.set_yscale("log")
     axes.set_xlabel("lensing multipole $L$")
@@ -589,8 +705,9 @@ def plot_bias_budget(result: LensingBandpowers, title: str | None = None):
     return figure
 
 
-def write_bias_report(result: LensingBandpowers, directory, force: bool = False, provenance: dict | None = None,
-                      stem: str | None = None) -> list[str]:
+def write_bias_report(
+    result: LensingBandpowers, directory, force: bool = False, provenance: dict | None = None, stem: str | None = None
+) -> list[str]:
     """Write ``<stem>.json`` (bandpowers, covariance, budget, amplitude), ``<stem>.txt`` and ``<stem>.png``.
 
     Parameters
@@ -627,4 +744,3 @@ def write_bias_report(result: LensingBandpowers, directory, force: bool = False,
     with atomic_path(paths[2], force=force, suffix=".png") as tmp:
         figure.savefig(tmp, format="png")
     return paths
-

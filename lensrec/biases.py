@@ -147,8 +147,9 @@ def half_split_mean_fields(estimates, exclude=None) -> tuple[np.ndarray, np.ndar
         exclude = as_int(exclude, "exclude", minimum=0, maximum=stack.shape[0] - 1)
         rows.remove(exclude)
     if len(rows) < 2:
-        raise ValueError(f"a half-split mean-field needs at least two simulations besides the excluded one, "
-                         f"got {len(rows)}")
+        raise ValueError(
+            f"a half-split mean-field needs at least two simulations besides the excluded one, got {len(rows)}"
+        )
     first, second = rows[0::2], rows[1::2]
     return stack[first].mean(axis=0), stack[second].mean(axis=0)
 
@@ -266,8 +267,10 @@ def monte_carlo_n1(shared_phi, independent_phi) -> BiasEstimate:
     shared = _spectra_stack(shared_phi, "shared_phi", 2)
     independent = _spectra_stack(independent_phi, "independent_phi", 2)
     if shared.shape != independent.shape:
-        raise ValueError(f"shared_phi and independent_phi must have the same shape (one row per simulation), "
-                         f"got {shared.shape} and {independent.shape}")
+        raise ValueError(
+            f"shared_phi and independent_phi must have the same shape (one row per simulation), "
+            f"got {shared.shape} and {independent.shape}"
+        )
     difference = 2.0 * (shared - independent)
     return BiasEstimate(difference.mean(axis=0), _standard_error(difference), int(shared.shape[0]), "MC-N1")
 

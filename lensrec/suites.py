@@ -138,12 +138,25 @@ def _parse_estimators(estimators) -> list[str]:
     return labels
 
 
-def lensing_suite_settings(experiment="deep_highland", nside: int = 512, lmax: int | None = None,
-                           lmax_L: int | None = None, estimators=("MV",), n_sims: int = 16, seed: int = 0,
-                           n1: bool = False, n1_sims: int | None = None, mask=None, noise: bool = True,
-                           lensing: bool = True,
-                           lmax_margin: int = DEFAULT_LMAX_MARGIN, threads_per_task: int = 1,
-                           data_seed: int | None = None, data_maps=None, epsilon: float = 1e-7) -> dict:
+def lensing_suite_settings(
+    experiment="deep_highland",
+    nside: int = 512,
+    lmax: int | None = None,
+    lmax_L: int | None = None,
+    estimators=("MV",),
+    n_sims: int = 16,
+    seed: int = 0,
+    n1: bool = False,
+    n1_sims: int | None = None,
+    mask=None,
+    noise: bool = True,
+    lensing: bool = True,
+    lmax_margin: int = DEFAULT_LMAX_MARGIN,
+    threads_per_task: int = 1,
+    data_seed: int | None = None,
+    data_maps=None,
+    epsilon: float = 1e-7,
+) -> dict:
     """Validated, plain-JSON settings of a lensing suite (the input of :func:`run_lensing_suite`).
 
     Parameters
@@ -222,13 +235,17 @@ def lensing_suite_settings(experiment="deep_highland", nside: int = 512, lmax: i
         raise ValueError(f"lmax={lmax} leaves no multipole above the experiment's ell_min={experiment.ell_min}")
     lmax_L = cmb_lmax if lmax_L is None else as_int(lmax_L, "lmax_L", minimum=2)
     if lmax_L > cmb_lmax:
-        raise ValueError(f"lmax_L={lmax_L} exceeds the CMB band limit {cmb_lmax} of the filtered maps "
-                         f"(min(lmax, experiment ell_max)); choose lmax_L <= {cmb_lmax}")
+        raise ValueError(
+            f"lmax_L={lmax_L} exceeds the CMB band limit {cmb_lmax} of the filtered maps "
+            f"(min(lmax, experiment ell_max)); choose lmax_L <= {cmb_lmax}"
+        )
     seed = as_int(seed, "seed", minimum=0)
     data_seed = seed + 1 if data_seed is None else as_int(data_seed, "data_seed", minimum=0)
     if data_seed == seed:
-        raise ValueError(f"data_seed must differ from seed (got {seed} for both): the data must be independent of "
-                         "the simulations that debias it")
+        raise ValueError(
+            f"data_seed must differ from seed (got {seed} for both): the data must be independent of "
+            "the simulations that debias it"
+        )
     for name, value in (("n1", n1), ("noise", noise), ("lensing", lensing)):
         if not isinstance(value, (bool, np.bool_)):
             raise TypeError(f"{name} must be True or False, got {value!r}")
@@ -237,13 +254,17 @@ def lensing_suite_settings(experiment="deep_highland", nside: int = 512, lmax: i
             raise ValueError(f"n1_sims={n1_sims!r} was given without n1=True")
         n1_sims = as_int(n1_sims, "n1_sims", minimum=2, maximum=as_int(n_sims, "n_sims"))
     if n1 and not lensing:
-        raise ValueError("n1=True needs lensed simulations (lensing=True): N1 comes from the lensing four-point "
-                         "function, which Gaussian skies do not have")
+        raise ValueError(
+            "n1=True needs lensed simulations (lensing=True): N1 comes from the lensing four-point "
+            "function, which Gaussian skies do not have"
+        )
     spectra = fiducial_spectra()
     lmax_margin = as_int(lmax_margin, "lmax_margin", minimum=0, maximum=20000)
     if lmax + lmax_margin > spectra.lmax:
-        raise ValueError(f"lmax + lmax_margin = {lmax + lmax_margin} exceeds the fiducial spectra's reach "
-                         f"(l <= {spectra.lmax}); lower lmax_margin")
+        raise ValueError(
+            f"lmax + lmax_margin = {lmax + lmax_margin} exceeds the fiducial spectra's reach "
+            f"(l <= {spectra.lmax}); lower lmax_margin"
+        )
     settings = {
         "kind": SUITE_KIND,
         "format": SUITE_FORMAT,
@@ -275,8 +296,9 @@ def lensing_suite_settings(experiment="deep_highland", nside: int = 512, lmax: i
         settings["_mask_path"] = os.path.abspath(os.fspath(mask))
     if data_maps is not None:
         if not isinstance(data_maps, (str, os.PathLike)):
-            raise TypeError(f"data_maps must be the path of a HEALPix FITS file of T, Q, U, got "
-                            f"{type(data_maps).__name__}")
+            raise TypeError(
+                f"data_maps must be the path of a HEALPix FITS file of T, Q, U, got {type(data_maps).__name__}"
+            )
         maps = _read_data_maps(os.fspath(data_maps), nside)
         settings["data"] = {"source": "maps", "sha256": _array_digest(maps)}
         settings["_data_maps_path"] = os.path.abspath(os.fspath(data_maps))
@@ -288,8 +310,10 @@ def _read_data_maps(path: str, nside: int) -> np.ndarray:
 
     maps = np.atleast_2d(read_maps(path))
     if maps.shape != (3, 12 * nside * nside):
-        raise ValueError(f"data maps {path!r} must hold T, Q, U at nside {nside} (shape (3, {12 * nside * nside})), "
-                         f"got shape {maps.shape}")
+        raise ValueError(
+            f"data maps {path!r} must hold T, Q, U at nside {nside} (shape (3, {12 * nside * nside})), "
+            f"got shape {maps.shape}"
+        )
     return maps
 
 
@@ -297,8 +321,10 @@ def _check_settings(settings) -> dict:
     if not isinstance(settings, dict):
         raise TypeError(f"settings must be the dict of lensing_suite_settings(...), got {type(settings).__name__}")
     if settings.get("kind") != SUITE_KIND or settings.get("format") != SUITE_FORMAT:
-        raise ValueError(f"settings are not lensing-suite settings of format {SUITE_FORMAT} (kind={settings.get('kind')!r}, "
-                         f"format={settings.get('format')!r}); build them with lensing_suite_settings(...)")
+        raise ValueError(
+            f"settings are not lensing-suite settings of format {SUITE_FORMAT} (kind={settings.get('kind')!r}, "
+            f"format={settings.get('format')!r}); build them with lensing_suite_settings(...)"
+        )
     return settings
 
 
@@ -342,8 +368,10 @@ def _context(settings: dict) -> _Context:
             return _CONTEXTS[key]
     spectra = fiducial_spectra()
     if _jsonable(dict(spectra.metadata)) != settings["spectra"]:
-        raise ValueError("this suite was made with other spectra than lensrec's fiducial ones; it cannot be "
-                         "continued with this version")
+        raise ValueError(
+            "this suite was made with other spectra than lensrec's fiducial ones; it cannot be "
+            "continued with this version"
+        )
     experiment = Experiment.from_dict(dict(settings["experiment"]))
     nthreads = int(settings["threads_per_task"])
     mask = None
@@ -353,11 +381,14 @@ def _context(settings: dict) -> _Context:
             raise ValueError("the suite uses a mask but its file location (_mask_path) is missing")
         mask = load_mask(path, settings["nside"])
         if _array_digest(mask) != settings["mask_sha256"]:
-            raise ValueError(f"mask file {path!r} changed since the suite was set up (its SHA-256 differs); restore it "
-                             "or start a new suite")
+            raise ValueError(
+                f"mask file {path!r} changed since the suite was set up (its SHA-256 differs); restore it "
+                "or start a new suite"
+            )
     field_filter = IsotropicFilter(experiment, spectra, lmax=settings["lmax"], mask=mask, nthreads=nthreads)
-    noise = reconstruction_noise(field_filter.experiment, spectra, estimators=ESTIMATORS,
-                                 lmax_L=settings["lmax_L"], nthreads=nthreads)
+    noise = reconstruction_noise(
+        field_filter.experiment, spectra, estimators=ESTIMATORS, lmax_L=settings["lmax_L"], nthreads=nthreads
+    )
     context = _Context(experiment, field_filter, noise, spectra, mask, nthreads)
     with _CONTEXT_LOCK:
         if len(_CONTEXTS) >= 4:  # a long-lived worker may see several suites; keep the memory bounded
@@ -377,9 +408,16 @@ def _jsonable(value):
 def _reconstruct(first, second, estimator: str, context: _Context, settings: dict):
     from .reconstruction import reconstruct_filtered
 
-    result = reconstruct_filtered(first, context.filter.experiment, second=second, spectra=context.spectra,
-                                  estimator=estimator, lmax_L=settings["lmax_L"], noise=context.noise,
-                                  nthreads=context.nthreads)
+    result = reconstruct_filtered(
+        first,
+        context.filter.experiment,
+        second=second,
+        spectra=context.spectra,
+        estimator=estimator,
+        lmax_L=settings["lmax_L"],
+        noise=context.noise,
+        nthreads=context.nthreads,
+    )
     return {"gradient": np.array(result.phi_alm), "curl": np.array(result.curl_alm)}
 
 
@@ -421,8 +459,13 @@ def _simulation_spectra(settings: dict, spectra):
 
     if settings["lensing"]:
         return spectra
-    return Spectra(unlensed=spectra.lensed, lensed=spectra.lensed, phi=np.zeros_like(spectra.phi),
-                   tensor=spectra.tensor, metadata=dict(spectra.metadata))
+    return Spectra(
+        unlensed=spectra.lensed,
+        lensed=spectra.lensed,
+        phi=np.zeros_like(spectra.phi),
+        tensor=spectra.tensor,
+        metadata=dict(spectra.metadata),
+    )
 
 
 def _simulate(settings: dict, context: _Context, seed: int, index: int, noise: bool | None = None):
@@ -430,10 +473,18 @@ def _simulate(settings: dict, context: _Context, seed: int, index: int, noise: b
 
     # the mask is applied once, by the filter (simulate_sky would multiply the maps by it too)
     noise = settings["noise"] if noise is None else noise
-    return simulate_sky(context.experiment, _simulation_spectra(settings, context.spectra), nside=settings["nside"],
-                        lmax=settings["lmax"],
-                        seed=seed, index=index, lmax_margin=settings["lmax_margin"], noise=noise,
-                        epsilon=settings["epsilon"], nthreads=context.nthreads)
+    return simulate_sky(
+        context.experiment,
+        _simulation_spectra(settings, context.spectra),
+        nside=settings["nside"],
+        lmax=settings["lmax"],
+        seed=seed,
+        index=index,
+        lmax_margin=settings["lmax_margin"],
+        noise=noise,
+        epsilon=settings["epsilon"],
+        nthreads=context.nthreads,
+    )
 
 
 # ----------------------------------------------------------------------------------------------- tasks
@@ -465,8 +516,10 @@ def lensing_simulation_task(settings: dict, index: int) -> dict[str, np.ndarray]
     if role == "data" and settings["data"]["source"] == "maps":
         maps = _read_data_maps(settings["_data_maps_path"], settings["nside"])
         if _array_digest(maps) != settings["data"]["sha256"]:
-            raise ValueError(f"data maps {settings['_data_maps_path']!r} changed since the suite was set up "
-                             "(SHA-256 differs); restore them or start a new suite")
+            raise ValueError(
+                f"data maps {settings['_data_maps_path']!r} changed since the suite was set up "
+                "(SHA-256 differs); restore them or start a new suite"
+            )
     else:
         seed = settings["data"]["seed"] if role == "data" else settings["seed"]
         sky = _simulate(settings, context, seed, int(index))
@@ -525,8 +578,9 @@ def n1_pair_estimates(settings: dict, index: int, sky=None) -> dict[str, np.ndar
     other_phi = gaussian_alm(context.spectra.phi, lmax_unlensed, rng_for(settings["seed"], index + 1, "phi"), nthreads)
     legs = {}
     for name, phi in (("shared", sky.phi_alm), ("independent", other_phi)):
-        lensed = lens_tqu_alm(second_cmb, phi, lmax, lmax_in=lmax_unlensed, epsilon=settings["epsilon"],
-                              nthreads=nthreads)
+        lensed = lens_tqu_alm(
+            second_cmb, phi, lmax, lmax_in=lmax_unlensed, epsilon=settings["epsilon"], nthreads=nthreads
+        )
         legs[name] = _noise_free_fields(lensed, context, settings)
     first_leg = _noise_free_fields(np.array(sky.lensed_alm), context, settings)
     out = {}
@@ -663,17 +717,28 @@ def _verify_inputs(settings: dict) -> None:
     if settings["mask_sha256"] is not None:
         path = settings.get("_mask_path")
         if not path or _array_digest(load_mask(path, settings["nside"])) != settings["mask_sha256"]:
-            raise ValueError(f"mask file {path!r} changed since the suite was set up (its SHA-256 differs) or is "
-                             "missing; restore it or start a new suite")
+            raise ValueError(
+                f"mask file {path!r} changed since the suite was set up (its SHA-256 differs) or is "
+                "missing; restore it or start a new suite"
+            )
     if settings["data"]["source"] == "maps":
         path = settings.get("_data_maps_path")
         if not path or _array_digest(_read_data_maps(path, settings["nside"])) != settings["data"]["sha256"]:
-            raise ValueError(f"data maps {path!r} changed since the suite was set up (SHA-256 differs) or are "
-                             "missing; restore them or start a new suite")
+            raise ValueError(
+                f"data maps {path!r} changed since the suite was set up (SHA-256 differs) or are "
+                "missing; restore them or start a new suite"
+            )
 
 
-def run_lensing_suite(settings: dict, directory, executor="serial", max_workers: int | None = None,
-                      progress=True, cancel: threading.Event | None = None, force: bool = False) -> LensingSuite:
+def run_lensing_suite(
+    settings: dict,
+    directory,
+    executor="serial",
+    max_workers: int | None = None,
+    progress=True,
+    cancel: threading.Event | None = None,
+    force: bool = False,
+) -> LensingSuite:
     """Compute (or finish) a lensing suite in ``directory``: the data, the simulations, the pair estimates.
 
     Parameters
@@ -714,19 +779,37 @@ def run_lensing_suite(settings: dict, directory, executor="serial", max_workers:
         old = read_json(suite_path).get("settings", {})
         keys = _differing(old, _jsonable(settings))
         if keys and not force:
-            raise ValueError(f"suite folder {directory!r} holds a suite made with other settings (differing: "
-                             f"{', '.join(keys)}); use a new folder, or force to delete the old results")
+            raise ValueError(
+                f"suite folder {directory!r} holds a suite made with other settings (differing: "
+                f"{', '.join(keys)}); use a new folder, or force to delete the old results"
+            )
         if keys:
             _clear(directory)
     elif force:
         _clear(directory)
-    write_json(suite_path, {"kind": SUITE_KIND, "format": SUITE_FORMAT, "settings": settings,
-                            "fingerprint": settings_fingerprint(settings)}, force=True)
+    write_json(
+        suite_path,
+        {
+            "kind": SUITE_KIND,
+            "format": SUITE_FORMAT,
+            "settings": settings,
+            "fingerprint": settings_fingerprint(settings),
+        },
+        force=True,
+    )
     suite = LensingSuite(directory, dict(settings))
     for stage in STAGES:
         stage_settings = _stage_settings(settings, stage, directory)
-        run: SuiteRun = run_suite(stage_settings, os.path.join(directory, stage), _TASKS[stage], executor=executor,
-                                  max_workers=max_workers, progress=progress, cancel=cancel, label=stage)
+        run: SuiteRun = run_suite(
+            stage_settings,
+            os.path.join(directory, stage),
+            _TASKS[stage],
+            executor=executor,
+            max_workers=max_workers,
+            progress=progress,
+            cancel=cancel,
+            label=stage,
+        )
         suite.runs[stage] = run
         if run.cancelled:
             suite.cancelled = True
@@ -751,4 +834,3 @@ def open_lensing_suite(directory) -> LensingSuite:
     if document.get("kind") != SUITE_KIND or not isinstance(settings, dict):
         raise ValueError(f"{path!r} is not a lensing-suite file")
     return LensingSuite(directory, _check_settings(settings))
-

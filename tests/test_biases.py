@@ -48,10 +48,15 @@ def _grid():
 
     ntheta = (2 * LMAX_FIELD + LMAX_Q) // 2 + 2
     nphi = 2 * LMAX_FIELD + LMAX_Q + 2
-    synth = lambda alm: ducc0.sht.synthesis_2d(alm=alm[None], lmax=LMAX_FIELD, spin=0, geometry="GL",  # noqa: E731
-                                               ntheta=ntheta, nphi=nphi, nthreads=1)[0]
-    analyse = lambda m: ducc0.sht.analysis_2d(map=m[None], lmax=LMAX_Q, spin=0, geometry="GL",  # noqa: E731
-                                              nthreads=1)[0]
+
+    def synth(alm):
+        return ducc0.sht.synthesis_2d(
+            alm=alm[None], lmax=LMAX_FIELD, spin=0, geometry="GL", ntheta=ntheta, nphi=nphi, nthreads=1
+        )[0]
+
+    def analyse(values):
+        return ducc0.sht.analysis_2d(map=values[None], lmax=LMAX_Q, spin=0, geometry="GL", nthreads=1)[0]
+
     return synth, analyse
 
 
@@ -188,8 +193,7 @@ def test_mc_n1_recovers_the_cross_contraction_of_a_shared_component(rng, cmb_lik
         x, y = _gaussian(rng, cmb_like, LMAX_FIELD, 2 * n).reshape(2, n, -1)
         u, u_other = _gaussian(rng, cl_u, LMAX_FIELD, 2 * n).reshape(2, n, -1)
         shared = [cross_spectrum(_product(synth, analyse, x[i] + u[i], y[i] + u[i])) for i in range(n)]
-        independent = [cross_spectrum(_product(synth, analyse, x[i] + u[i], y[i] + u_other[i]))
-                       for i in range(n)]
+        independent = [cross_spectrum(_product(synth, analyse, x[i] + u[i], y[i] + u_other[i])) for i in range(n)]
         values.append(monte_carlo_n1(shared, independent).value)
     ratio, sigma = _pooled_ratio(np.array(values), expected, ells)
     assert abs(ratio - 1.0) < 4 * sigma  # 4 sigma of the pooled Monte-Carlo mean

@@ -9,8 +9,28 @@ import pytest
 
 from lensrec.cli import main
 
-RUN = ["suite", "run", "--experiment", "deep_highland", "--nside", "32", "--lmax", "64", "--lmax-L", "48",
-       "--estimators", "EB", "--n-sims", "4", "--seed", "3", "--lmax-margin", "32", "--n1", "--quiet"]
+RUN = [
+    "suite",
+    "run",
+    "--experiment",
+    "deep_highland",
+    "--nside",
+    "32",
+    "--lmax",
+    "64",
+    "--lmax-L",
+    "48",
+    "--estimators",
+    "EB",
+    "--n-sims",
+    "4",
+    "--seed",
+    "3",
+    "--lmax-margin",
+    "32",
+    "--n1",
+    "--quiet",
+]
 
 
 @pytest.fixture(scope="module")

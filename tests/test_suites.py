@@ -28,15 +28,24 @@ from lensrec.suites import (
 
 PHYSICS = dict(experiment="deep_highland", nside=256, lmax=512, lmax_L=400, threads_per_task=1)
 POOL = dict(executor="processes", max_workers=2, progress=False)  # 2 workers of 1 thread: fastest on 2 cores
-TINY = dict(experiment="deep_highland", nside=32, lmax=64, lmax_L=48, estimators="TT,EB", n_sims=4, seed=5,
-            lmax_margin=32, n1=True, threads_per_task=1)
+TINY = dict(
+    experiment="deep_highland",
+    nside=32,
+    lmax=64,
+    lmax_L=48,
+    estimators="TT,EB",
+    n_sims=4,
+    seed=5,
+    lmax_margin=32,
+    n1=True,
+    threads_per_task=1,
+)
 
 
 @pytest.fixture(scope="module")
 def gaussian_suite(tmp_path_factory):
     # Gaussian skies: the lensed spectra as Gaussian fields (no remapping, so no margin is needed)
-    settings = lensing_suite_settings(**PHYSICS, estimators="TT,EB", n_sims=6, seed=11, lensing=False,
-                                      lmax_margin=0)
+    settings = lensing_suite_settings(**PHYSICS, estimators="TT,EB", n_sims=6, seed=11, lensing=False, lmax_margin=0)
     return run_lensing_suite(settings, tmp_path_factory.mktemp("gaussian"), **POOL)
 
 
@@ -45,8 +54,7 @@ def lensed_suite(tmp_path_factory):
     # N1 pairs on 4 of the 8 simulations: their paired construction has a small Monte-Carlo error. A margin of
     # 600 leaves lensed BB ~10% low near lmax (lensrec.simulate_sky); data and simulations share it, and every
     # bias here is measured on the simulations themselves.
-    settings = lensing_suite_settings(**PHYSICS, estimators="EB", n_sims=8, seed=3, n1=True, n1_sims=4,
-                                      lmax_margin=600)
+    settings = lensing_suite_settings(**PHYSICS, estimators="EB", n_sims=8, seed=3, n1=True, n1_sims=4, lmax_margin=600)
     return run_lensing_suite(settings, tmp_path_factory.mktemp("lensed"), **POOL)
 
 
@@ -164,8 +172,9 @@ def test_mean_field_of_a_full_isotropic_sky_is_only_noise(lensed_suite):
     # one estimate (Gaussian statistics of independent means; common practice). Within 4 sigma.
     result = lensing_bandpowers(lensed_suite)
     L = np.arange(401)
-    modes = np.array([np.sum(2 * L[lo:hi] + 1) for lo, hi in zip(result.binning.edges[:-1], result.binning.edges[1:],
-                                                                  strict=True)])
+    modes = np.array(
+        [np.sum(2 * L[lo:hi] + 1) for lo, hi in zip(result.binning.edges[:-1], result.binning.edges[1:], strict=True)]
+    )
     sigma = result.raw / np.sqrt(4 * 4 * modes)
     assert np.all(np.abs(result.terms["mean_field"]) < 4 * sigma)
 
@@ -197,8 +206,18 @@ def test_n1_at_high_L_for_a_low_noise_polarization_survey():
     # approaches the band limit. With lmax 1000 here: 1%-60% for L = 300-700, larger still above. Two
     # simulations suffice: the low-variance pairing (the same second CMB lensed by a shared or an independent
     # phi) leaves a Monte-Carlo error below 1% of the signal.
-    settings = lensing_suite_settings("deep_highland", nside=512, lmax=1000, lmax_L=1000, estimators="EB",
-                                      n_sims=4, seed=21, n1=True, lmax_margin=500, threads_per_task=2)
+    settings = lensing_suite_settings(
+        "deep_highland",
+        nside=512,
+        lmax=1000,
+        lmax_L=1000,
+        estimators="EB",
+        n_sims=4,
+        seed=21,
+        n1=True,
+        lmax_margin=500,
+        threads_per_task=2,
+    )
     binning = Binning([300, 500, 700, 1001])
     shared, independent = [], []
     for index in range(2):
@@ -224,8 +243,12 @@ def test_serial_processes_and_dask_suites_are_bit_identical(tiny_serial, tmp_pat
     pool = run_lensing_suite(settings, tmp_path / "pool", executor="processes", max_workers=2, progress=False)
     _assert_identical(_stored(tiny_serial), _stored(pool))
     distributed = pytest.importorskip("distributed")
-    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None,
-                                  silence_logs=50) as cluster, distributed.Client(cluster) as client:
+    with (
+        distributed.LocalCluster(
+            n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None, silence_logs=50
+        ) as cluster,
+        distributed.Client(cluster) as client,
+    ):
         dask_suite = run_lensing_suite(settings, tmp_path / "dask", executor=client, progress=False)
     _assert_identical(_stored(tiny_serial), _stored(dask_suite))
 
@@ -277,8 +300,9 @@ def test_other_settings_are_refused_and_more_simulations_are_added(tiny_serial, 
         run_lensing_suite(lensing_suite_settings(**dict(TINY, seed=6)), tmp_path / "suite", progress=False)
     grown = run_lensing_suite(lensing_suite_settings(**dict(TINY, n_sims=5)), tmp_path / "suite", progress=False)
     assert grown.runs["simulations"].computed == [4] and grown.runs["pairs"].computed == [4]
-    fresh = run_lensing_suite(lensing_suite_settings(**dict(TINY, seed=6)), tmp_path / "suite", progress=False,
-                              force=True)
+    fresh = run_lensing_suite(
+        lensing_suite_settings(**dict(TINY, seed=6)), tmp_path / "suite", progress=False, force=True
+    )
     assert fresh.runs["simulations"].computed == [0, 1, 2, 3]
     assert json.loads((tmp_path / "suite" / "suite.json").read_text())["settings"]["seed"] == 6
 
@@ -292,8 +316,9 @@ def test_the_stored_arrays_are_what_the_bias_estimators_need(tiny_serial):
         for component in ("gradient", "curl"):
             for estimator in ("TT", "EB"):
                 assert sim[estimate_key(kind, component, estimator)].shape == (nalm_L,)
-    assert sorted(tiny_serial.pairs(0)) == sorted(estimate_key("data_sim", c, e) for c in ("gradient", "curl")
-                                                  for e in ("TT", "EB"))
+    assert sorted(tiny_serial.pairs(0)) == sorted(
+        estimate_key("data_sim", c, e) for c in ("gradient", "curl") for e in ("TT", "EB")
+    )
     assert estimate_key("sim_sim", "gradient", "EB") in tiny_serial.pairs(1)
     # the data is not one of the simulations
     assert not np.array_equal(tiny_serial.data()["phi_input"], tiny_serial.simulation(0)["phi_input"])
@@ -346,8 +371,9 @@ def test_a_masked_suite_with_user_maps_as_data(tmp_path):
     write_maps(tmp_path / "mask.fits", mask)
     sky = lensrec.simulate_sky("deep_highland", nside=32, lmax=64, lmax_margin=32, seed=99, nthreads=1)
     write_maps(tmp_path / "data.fits", sky.maps)
-    settings = lensing_suite_settings(**dict(TINY, n1=False, estimators="EB"), mask=str(tmp_path / "mask.fits"),
-                                      data_maps=str(tmp_path / "data.fits"))
+    settings = lensing_suite_settings(
+        **dict(TINY, n1=False, estimators="EB"), mask=str(tmp_path / "mask.fits"), data_maps=str(tmp_path / "data.fits")
+    )
     assert settings["data"]["source"] == "maps" and settings["mask_moments"]["fsky"] < 0.5
     suite = run_lensing_suite(settings, tmp_path / "suite", progress=False)
     assert "phi_input" not in suite.data() and suite.complete

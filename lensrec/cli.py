@@ -97,6 +97,12 @@ def main(argv=None) -> int:
         return 2
     try:
         return int(args._run(args) or 0)
+    except BrokenPipeError:  # output piped into e.g. `head`, which closed early: not an error of ours
+        import os
+
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 0
     except KeyboardInterrupt:
         print("lensrec: interrupted; finished outputs are complete, unfinished ones were not written", file=sys.stderr)
         return 130

@@ -590,7 +590,8 @@ def bias_budget_table(result: LensingBandpowers) -> str:
         )
     if result.amplitude is not None:
         lines.append(
-            f"A_lens = {result.amplitude:.4f} +- {result.amplitude_error:.4f} (scatter of {result.n_sims} simulations)"
+            f"A_lens = {result.amplitude:.4f} +- {result.amplitude_error:.4f} (scatter of {result.n_sims} simulations and the "
+            "Monte-Carlo error of RDN0 and N1)"
         )
     target = "fiducial model" if result.amplitude is not None else "zero (null test)"
     lines.append(

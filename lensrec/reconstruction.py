@@ -34,7 +34,8 @@ lensing kernels have sL = ±1 and v(L) = √(L(L+1)). Three facts make this chea
 The products are evaluated on a Gauss–Legendre grid with ⌊(2ℓ_max + L_max)/2⌋ + 1 rings and
 ≥ 2ℓ_max + L_max + 1 pixels per ring (:func:`lensrec.harmonics.gl_grid_for_band_limits`): H is
 band-limited at 2ℓ_max, so the analysis to L_max is exact quadrature (no aliasing). The grid is processed
-in blocks of ring pairs (north and south together) to bound memory.
+in blocks of ring pairs (north and south together) to bound memory (``workspace_mb``); within a block, the
+legs of one spin are one batched ducc0 synthesis and the estimators' H fields one batched spin-1 analysis.
 
 Transform counts (full-sky equivalents, ``Reconstruction.settings["transforms"]``) for one input (a = b):
 TT 2 syntheses (spin 0 T̄, spin 1 √(ℓ(ℓ+1)) C^TT T̄) + 1 spin-1 analysis; EE 3 + 1 (Ē at spin 2, C^EE Ē
@@ -66,7 +67,7 @@ from types import MappingProxyType
 
 import numpy as np
 
-from ._checks import as_int, resolve_nthreads
+from ._checks import as_float, as_int, resolve_nthreads
 from .estimator_noise import ReconstructionNoise, reconstruction_noise
 from .estimator_weights import COMPONENTS, ESTIMATOR_FIELDS, FactorTable, quadratic_estimator
 from .experiment import Experiment, load_experiment
@@ -89,7 +90,7 @@ ESTIMATORS = ("TT", "TE", "EE", "TB", "EB", "MV")
 BASE_ESTIMATORS = ("TT", "TE", "EE", "TB", "EB")
 _FIELD_INDEX = {"T": 0, "E": 1, "B": 2}
 # Work space for one block of rings (legs and products); bounds the peak memory at any size.
-_WORKSPACE_BYTES = 768 * 2**20
+_WORKSPACE_BYTES = 1024 * 2**20
 # Points per product block: a few arrays of this many complex values stay in cache.
 _PRODUCT_BLOCK = 1 << 15
 # ducc0 0.42 measured: the "STANDARD" spin-1 and spin-2 syntheses (with a zero curl) are faster than
@@ -293,44 +294,92 @@ def _ring_blocks(ntheta: int, rings_per_block: int) -> list[np.ndarray]:
     return blocks
 
 
+def _spin_groups(legs) -> list[tuple[int, int, int]]:
+    """(spin, first row, count) of the runs of equal |spin| in the sorted leg list (one ducc0 call each)."""
+    groups = []
+    for row, leg in enumerate(legs):
+        if groups and groups[-1][0] == leg[3]:
+            spin, first, count = groups[-1]
+            groups[-1] = (spin, first, count + 1)
+        else:
+            groups.append((leg[3], row, 1))
+    return groups
+
+
 def _leg_coefficients(legs, fields, factors: FactorTable, lmax: int) -> np.ndarray:
-    """−u(ℓ) X̄_ℓm for every leg (rows), plus one zero row last (the curl of the spin-s syntheses)."""
+    """−u(ℓ) X̄_ℓm for every leg (rows, legs sorted by spin), then zero rows for the curl parts of the
+    batched "STANDARD" spin-s syntheses (as many as the largest such batch)."""
     ell = ell_of_alm(lmax)
-    out = np.zeros((len(legs) + 1, nalm(lmax)), dtype=np.complex128)
+    zeros = max([count for spin, _, count in _spin_groups(legs) if spin and _SYNTHESIS_MODE[spin] == "STANDARD"],
+                default=0)
+    out = np.zeros((len(legs) + zeros, nalm(lmax)), dtype=np.complex128)
     for row, (side, name, weights, _spin) in enumerate(legs):
         u = factors.product(weights, lmax)
         np.multiply(fields[side].alm[_FIELD_INDEX[name]], -u[ell], out=out[row])
     return out
 
 
-def _synthesise_legs(legs, coefficients, lmax, geometry, npix, nthreads):
-    """Leg maps on the rings of ``geometry``: real for spin 0, complex Σ u X̄ ₛY for spin s > 0."""
-    import ducc0
+class _Workspace:
+    """Buffers for one block of rings, allocated once and reused for every block (no page faults per block).
 
+    Complex maps are stored as interleaved float pairs so that ducc0 can write and read their real and
+    imaginary parts in place through strided (k, 2, npix) views.
+    """
+
+    def __init__(self, legs, n_labels: int, max_npix: int, lmax_L: int):
+        self.groups = _spin_groups(legs)
+        self.leg_buffers = {}
+        for spin, _first, count in self.groups:
+            shape = (count, 1, max_npix) if spin == 0 else (count, max_npix, 2)
+            self.leg_buffers[spin] = np.empty(shape)
+        self.products = np.empty((n_labels, max_npix, 2))
+        self.analysis = np.empty((n_labels, 2, nalm(lmax_L)), dtype=np.complex128)
+
+    def leg_maps(self, npix: int) -> list[np.ndarray]:
+        """Per leg (in leg order): a real (npix,) view for spin 0, a complex (npix,) view otherwise."""
+        maps = []
+        for spin, _first, count in self.groups:
+            buffer = self.leg_buffers[spin]
+            for k in range(count):
+                maps.append(buffer[k, 0, :npix] if spin == 0 else buffer[k, :npix].view(np.complex128)[:, 0])
+        return maps
+
+    def leg_output(self, spin: int, npix: int) -> np.ndarray:
+        """The (count, ncomp, npix) float view ducc0 writes the legs of one spin into."""
+        buffer = self.leg_buffers[spin]
+        return buffer[:, :, :npix] if spin == 0 else buffer[:, :npix, :].transpose(0, 2, 1)
+
+    def product_maps(self, npix: int) -> np.ndarray:
+        return self.products[:, :npix, :].view(np.complex128)[..., 0]
+
+    def product_output(self, npix: int) -> np.ndarray:
+        return self.products[:, :npix, :].transpose(0, 2, 1)
+
+
+def _synthesise_legs(legs, coefficients, lmax, geometry, npix, nthreads, workspace: _Workspace) -> None:
+    """Leg maps on the rings of ``geometry`` into the workspace: Σ u X̄ ₛY (real for spin 0).
+
+    Legs of one spin are synthesised in one batched ducc0 call (one set-up of the recursions per call).
+    """
+    import ducc0
     from numpy.lib.stride_tricks import as_strided
 
-    row_bytes = coefficients.strides[0]
-    zero_row = coefficients.shape[0] - 1
-    maps = []
-    for row, (_side, _name, _weights, spin) in enumerate(legs):
+    row_bytes, item_bytes = coefficients.strides
+    zero_row = len(legs)
+    for spin, first, count in workspace.groups:
+        rows = coefficients[first:first + count]
+        out = workspace.leg_output(spin, npix)
         if spin == 0:
-            values = np.empty((1, npix))
-            ducc0.sht.synthesis(alm=coefficients[row:row + 1], lmax=lmax, spin=0, nthreads=nthreads, map=values,
-                                **geometry)
-            values = values[0]
-            values *= -1.0  # the stored coefficients are −u X̄
-        else:
-            values = np.empty(npix, dtype=np.complex128)
-            view = values.view(np.float64).reshape(npix, 2).T
-            mode = _SYNTHESIS_MODE[spin]
-            if mode == "GRAD_ONLY":
-                alm = coefficients[row:row + 1]
-            else:  # gradient row and the shared zero row as one (2, nalm) array, without a copy
-                alm = as_strided(coefficients[row], shape=(2, coefficients.shape[1]),
-                                 strides=((zero_row - row) * row_bytes, coefficients.strides[1]))
-            ducc0.sht.synthesis(alm=alm, lmax=lmax, spin=spin, nthreads=nthreads, map=view, mode=mode, **geometry)
-        maps.append(values)
-    return maps
+            ducc0.sht.synthesis(alm=rows[:, None, :], lmax=lmax, spin=0, nthreads=nthreads, map=out, **geometry)
+            out *= -1.0  # the stored coefficients are −u X̄
+            continue
+        mode = _SYNTHESIS_MODE[spin]
+        if mode == "GRAD_ONLY":
+            alm = rows[:, None, :]
+        else:  # each gradient row with its own zero row as curl, as one (count, 2, nalm) array without a copy
+            alm = as_strided(coefficients[first], shape=(count, 2, coefficients.shape[1]),
+                             strides=(row_bytes, (zero_row - first) * row_bytes, item_bytes))
+        ducc0.sht.synthesis(alm=alm, lmax=lmax, spin=spin, nthreads=nthreads, map=out, mode=mode, **geometry)
 
 
 def _multiply_block(block, legs_maps, products, out, scratch):
@@ -365,7 +414,8 @@ def _multiply_block(block, legs_maps, products, out, scratch):
 
 def quadratic_estimates(first: FilteredFields, second: FilteredFields | None = None,
                         estimators=BASE_ESTIMATORS, lmax_L: int | None = None, spectra: Spectra | None = None,
-                        lensed_weights: bool = True, nthreads: int | None = None) -> QuadraticEstimates:
+                        lensed_weights: bool = True, nthreads: int | None = None,
+                        workspace_mb: int | None = None) -> QuadraticEstimates:
     """Unnormalised quadratic estimates ḡ^XY_LM[a, b] in position space (gradient and curl weights).
 
     Parameters
@@ -384,6 +434,10 @@ def quadratic_estimates(first: FilteredFields, second: FilteredFields | None = N
     lensed_weights : bool
         Lensed (default, common practice) or unlensed spectra in the weights.
     nthreads : int, optional
+    workspace_mb : float, optional
+        Memory for one block of rings (the legs and products of those rings), in MB; default 1024. The grid
+        is processed in as many blocks of north/south ring pairs as this requires; fewer, larger blocks
+        save per-call set-up in the transforms.
 
     Returns
     -------
@@ -437,7 +491,8 @@ def quadratic_estimates(first: FilteredFields, second: FilteredFields | None = N
     plan = _plan(labels, factors, shared)
     fields = (first, second)
 
-    legs = sorted({leg for products, _ in plan.values() for key in products for leg, _ in key})
+    legs = sorted({leg for products, _ in plan.values() for key in products for leg, _ in key},
+                  key=lambda leg: (leg[3], leg))  # by |spin|: each spin is one batched synthesis
     index = {leg: i for i, leg in enumerate(legs)}
     products = []
     for label in labels:
@@ -452,12 +507,27 @@ def quadratic_estimates(first: FilteredFields, second: FilteredFields | None = N
     grid = gl_grid_for_band_limits(lmax_L, 2 * lmax)
     theta = ducc0.misc.GL_thetas(grid.ntheta)
     ring_weights = ducc0.sht.get_gridweights("GL", grid.ntheta) / grid.nphi
+    if workspace_mb is None:
+        workspace_bytes = _WORKSPACE_BYTES
+    else:
+        workspace_bytes = int(as_float(workspace_mb, "workspace_mb", minimum=0.0, strict_minimum=True) * 2**20)
     n_complex = sum(1 for leg in legs if leg[3] > 0) + len(labels)
-    ring_bytes = grid.nphi * (16 * n_complex + 8 * (len(legs) - n_complex + len(labels)))
-    blocks = _ring_blocks(grid.ntheta, max(2, _WORKSPACE_BYTES // max(ring_bytes, 1)))
+    ring_bytes = grid.nphi * (16 * n_complex + 8 * (len(legs) + len(labels) - n_complex))
+    blocks = _ring_blocks(grid.ntheta, max(2, workspace_bytes // max(ring_bytes, 1)))
     coefficients = _leg_coefficients(legs, fields, factors, lmax)
+    workspace = _Workspace(legs, len(labels), max(rings.size for rings in blocks) * grid.nphi, lmax_L)
     result = np.zeros((len(labels), 2, nalm(lmax_L)), dtype=np.complex128)
     pool = concurrent.futures.ThreadPoolExecutor(nthreads) if nthreads > 1 else None
+    scratches: dict = {}
+
+    def multiply(piece, leg_maps, h):
+        import threading
+
+        key = threading.get_ident()
+        if key not in scratches:
+            scratches[key] = np.empty(_PRODUCT_BLOCK, dtype=np.complex128)
+        _multiply_block(piece, leg_maps, products, h, scratches[key])
+
     seconds = {"legs": 0.0, "products": 0.0, "analysis": 0.0}
     try:
         for rings in blocks:
@@ -465,38 +535,27 @@ def quadratic_estimates(first: FilteredFields, second: FilteredFields | None = N
             npix = rings.size * grid.nphi
             geometry = {"theta": np.ascontiguousarray(theta[rings]), "nphi": np.full(rings.size, grid.nphi, np.uintp),
                         "phi0": np.zeros(rings.size), "ringstart": (np.arange(rings.size) * grid.nphi).astype(np.uintp)}
-            leg_maps = _synthesise_legs(legs, coefficients, lmax, geometry, npix, nthreads)
+            _synthesise_legs(legs, coefficients, lmax, geometry, npix, nthreads, workspace)
             seconds["legs"] += time.perf_counter() - clock
             clock = time.perf_counter()
-            h = np.empty((len(labels), npix), dtype=np.complex128)
+            leg_maps, h = workspace.leg_maps(npix), workspace.product_maps(npix)
             pieces = [slice(start, min(start + _PRODUCT_BLOCK, npix)) for start in range(0, npix, _PRODUCT_BLOCK)]
             if pool is None:
-                scratch = np.empty(_PRODUCT_BLOCK, dtype=np.complex128)
                 for piece in pieces:
-                    _multiply_block(piece, leg_maps, products, h, scratch)
+                    multiply(piece, leg_maps, h)
             else:
-                scratches = {}
-
-                def work(piece):
-                    import threading
-
-                    key = threading.get_ident()
-                    if key not in scratches:
-                        scratches[key] = np.empty(_PRODUCT_BLOCK, dtype=np.complex128)
-                    _multiply_block(piece, leg_maps, products, h, scratches[key])
-
-                list(pool.map(work, pieces))
-            del leg_maps
+                list(pool.map(lambda piece: multiply(piece, leg_maps, h), pieces))
             seconds["products"] += time.perf_counter() - clock
             clock = time.perf_counter()
-            view = h.view(np.float64).reshape(len(labels), npix, 2).transpose(0, 2, 1)
-            result += ducc0.sht.adjoint_synthesis(map=view, lmax=lmax_L, spin=1, nthreads=nthreads,
-                                                  ringfactor=np.ascontiguousarray(ring_weights[rings]), **geometry)
-            del h, view
+            ducc0.sht.adjoint_synthesis(map=workspace.product_output(npix), lmax=lmax_L, spin=1, nthreads=nthreads,
+                                        ringfactor=np.ascontiguousarray(ring_weights[rings]),
+                                        alm=workspace.analysis, **geometry)
+            result += workspace.analysis
             seconds["analysis"] += time.perf_counter() - clock
     finally:
         if pool is not None:
             pool.shutdown()
+    del workspace, coefficients
 
     ell = ell_of_alm(lmax_L).astype(np.float64)
     root = np.sqrt(ell * (ell + 1.0))

@@ -181,6 +181,14 @@ def test_position_space_estimates_equal_brute_force_3j_sums(tiny_inputs, mixed):
             # sums of ~1e3 terms and ducc0 transforms in double precision: 1e-8 of the largest value is rounding
             assert np.abs(want).max() > 0
             assert np.allclose(mine, want, rtol=0, atol=1e-8 * np.abs(want).max()), (label, component)
+    # processing the grid in many small blocks of ring pairs (here 2 rings each) changes only rounding
+    blocked = quadratic_estimates(first_fields, second_fields, lmax_L=lmax_L, spectra=spectra, nthreads=2,
+                                  workspace_mb=0.001)
+    assert blocked.settings["ring_blocks"] > 5
+    for label in LABELS:
+        assert np.allclose(blocked.gradient[label], got.gradient[label], rtol=0,
+                           atol=1e-12 * np.abs(got.gradient[label]).max())
+        assert np.allclose(blocked.curl[label], got.curl[label], rtol=0, atol=1e-12 * np.abs(got.curl[label]).max())
 
 
 def test_symmetric_estimators_do_not_depend_on_the_leg_order(tiny_inputs):

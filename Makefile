@@ -29,7 +29,7 @@ test-fast: install
 	$(BIN)/python -m pytest -q -m "not slow and not browser"
 
 bench: install
-	$(BIN)/python benchmarks/run_all.py
+	$(BIN)/python benchmarks/run_all.py $(if $(QUICK),--quick,)
 
 lint: install
 	$(BIN)/ruff check lensrec widgets tests benchmarks

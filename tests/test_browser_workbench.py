@@ -316,3 +316,16 @@ def test_reconstruct_the_small_sky(workbench_page, artifacts_dir):
     assert "Reconstructed MV" in page.locator(".lensrec-status-reconstruction").inner_text()
     assert not page.locator("button.lensrec-reconstruct").is_disabled()
     _screenshot(page, artifacts_dir, "workbench-reconstruction.png")
+
+
+@pytest.mark.skipif(not hasattr(lensrec, "reconstruct"), reason="this lensrec has no reconstruct()")
+def test_build_a_template_from_the_reconstruction(workbench_page, artifacts_dir):
+    page = workbench_page
+    _open_tab(page, "Reconstruction")
+    if page.locator(".lensrec-note-reconstruction-maps").is_visible():
+        test_reconstruct_the_small_sky(page, artifacts_dir)
+    _open_tab(page, "Delensing")
+    page.locator("button.lensrec-build-template").click()
+    page.wait_for_selector("img.lensrec-plot-delensing-template[src^='blob:']", state="visible", timeout=120_000)
+    assert "A_lens^res (measured)" in page.locator(".lensrec-template-summary").inner_text()
+    _screenshot(page, artifacts_dir, "workbench-delensing-template.png")

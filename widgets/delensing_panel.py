@@ -16,7 +16,7 @@ import numpy as np
 import lensrec
 from lensrec import delensing
 
-from .plotting import COLORS, PAIR, FigureView, d_ell, finite_or_nan, style_axes
+from .plotting import COLORS, PAIR, FigureView, d_ell, finite_or_nan, set_log_range, style_axes
 from .section import Section, heading, labelled
 from .work import LongTask
 
@@ -238,7 +238,7 @@ class DelensingSection(Section):
             self.template_lines[key].set_data(ell[used], d_ell(values)[used])
         self.template_lines["efficiency"].set_data(ell[used], result.efficiency[used])
         for ax in (self.ax_tbb, self.ax_teff):
-            ax.set_xlim(max(2, result.ell_min), result.ell_max)
+            set_log_range(ax, max(2, result.ell_min), result.ell_max)
         values = np.concatenate([d_ell(result.lensed_bb)[used], d_ell(result.template_bb)[used]])
         values = values[np.isfinite(values) & (values > 0)]
         top = values.max() * 30.0
@@ -299,7 +299,7 @@ class DelensingSection(Section):
         efficiency = 1.0 - forecast.residual_bb[used] / forecast.lensed_bb[used]
         self.lines["efficiency"].set_data(ell[used], efficiency)
         for ax in (self.ax_bb, self.ax_eff):
-            ax.set_xlim(max(2, forecast.ell_min), forecast.ell_max)
+            set_log_range(ax, max(2, forecast.ell_min), forecast.ell_max)
         values = np.concatenate([d_ell(forecast.lensed_bb)[used], d_ell(forecast.residual_bb)[used]])
         values = values[np.isfinite(values) & (values > 0)]
         self.ax_bb.set_ylim(values.min() / 3.0, values.max() * 5.0)

@@ -27,6 +27,7 @@ __all__ = [
     "phi_plot_units",
     "finite_or_nan",
     "symmetric_limit",
+    "set_log_range",
 ]
 
 DPI = 96
@@ -117,6 +118,15 @@ def style_axes(ax, grid: bool = True) -> None:
     for axis, scale in ((ax.xaxis, ax.get_xscale()), (ax.yaxis, ax.get_yscale())):
         if scale == "log":
             axis.set_minor_formatter(NullFormatter())  # narrow log ranges would otherwise label minor ticks
+
+
+def set_log_range(ax, low: float, high: float, axis: str = "x") -> None:
+    """Set a log axis range; within less than a decade also label the minor ticks (else none would show)."""
+    from matplotlib.ticker import FormatStrFormatter, NullFormatter
+
+    (ax.set_xlim if axis == "x" else ax.set_ylim)(low, high)
+    target = ax.xaxis if axis == "x" else ax.yaxis
+    target.set_minor_formatter(FormatStrFormatter("%g") if high < 10.0 * low else NullFormatter())
 
 
 class FigureView:

@@ -18,7 +18,16 @@ import numpy as np
 import lensrec
 from lensrec import harmonics, power
 
-from .plotting import COLORS, ESTIMATOR_COLORS, MAP_CMAP, FigureView, phi_plot_units, style_axes, symmetric_limit
+from .plotting import (
+    COLORS,
+    ESTIMATOR_COLORS,
+    MAP_CMAP,
+    FigureView,
+    phi_plot_units,
+    set_log_range,
+    style_axes,
+    symmetric_limit,
+)
 from .section import Section, labelled
 from .work import LongTask
 
@@ -255,7 +264,7 @@ class ReconstructionSection(Section):
         weight = (centres * (centres + 1.0)) ** 2 / (2.0 * np.pi)
         self.auto_band.set_data(centres, np.where(means > 0, weight * means, np.nan))
         self.auto_band_negative.set_data(centres, np.where(means < 0, -weight * means, np.nan))
-        self.ax_auto.set_xlim(2, result.lmax_L)
+        set_log_range(self.ax_auto, 2, result.lmax_L)
         top = np.nanmax(phi_plot_units(products["theory"], units)[shown])
         self.ax_auto.set_ylim(top / 300.0, top * 30.0)
         masked = products["mask"] is not None

@@ -17,7 +17,7 @@ import numpy as np
 import lensrec
 from lensrec import bandpowers
 
-from .plotting import COLORS, PAIR, FigureView, phi_plot_units, style_axes
+from .plotting import COLORS, PAIR, FigureView, phi_plot_units, set_log_range, style_axes
 from .section import Section, heading, labelled
 from .work import Cancelled, LongTask
 
@@ -218,7 +218,7 @@ class ValidationSection(Section):
         self.ax_bias.legend(handles=[h for h in [self.signal_line, self.raw_line, *self.term_lines.values()]
                                      if h.get_visible()], fontsize=7.5, frameon=False, ncol=2)  # fmt: skip
         edges = result.binning.edges
-        self.ax_bias.set_xlim(edges[0], edges[-1])
+        set_log_range(self.ax_bias, edges[0], edges[-1])
         self.ax_bias.relim()
         self.ax_bias.autoscale_view(scalex=False)
 
@@ -235,7 +235,7 @@ class ValidationSection(Section):
         else:
             self.theory_line.set_data([], [])
             self.fit_line.set_data([], [])
-        self.ax_bands.set_xlim(edges[0], edges[-1])
+        set_log_range(self.ax_bands, edges[0], edges[-1])
         self.ax_bands.relim()
         self.ax_bands.autoscale_view(scalex=False)
         self.ax_bands.legend(fontsize=7.5, frameon=False)

@@ -32,6 +32,7 @@ __all__ = [
     "write_alm",
     "read_alm",
     "check_outputs_free",
+    "file_sha256",
     "provenance",
 ]
 
@@ -125,6 +126,17 @@ def read_json(path) -> dict:
             return json.load(handle)
     except (json.JSONDecodeError, UnicodeDecodeError) as exc:
         raise ValueError(f"JSON file {path!r} is corrupted or truncated: {exc}") from None
+
+
+def file_sha256(path) -> str:
+    """SHA-256 hex digest of a file's bytes (read in 1 MiB blocks)."""
+    import hashlib
+
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        for block in iter(lambda: handle.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()
 
 
 def _healpy():

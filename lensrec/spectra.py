@@ -153,15 +153,20 @@ def load_spectra_file(path: str) -> Spectra:
     if ell is None or not np.array_equal(ell, np.arange(ell.size)):
         raise ValueError(f"spectra file {path!r} must have an 'ell' column running 0, 1, 2, ... without gaps")
     try:
-        return Spectra(
-            unlensed={k: data[f"unlensed_{k}"] for k in CMB_KEYS},
-            lensed={k: data[f"lensed_{k}"] for k in CMB_KEYS},
-            phi=data["phi_phi"],
-            tensor={k: data[f"tensor_{k}"] for k in TENSOR_KEYS},
-            metadata=metadata,
-        )
+        return _from_columns(data, metadata)
     except KeyError as exc:
         raise ValueError(f"spectra file {path!r} lacks the column {exc.args[0]!r}") from None
+
+
+def _from_columns(data: dict, metadata: dict) -> Spectra:
+    """A :class:`Spectra` from the named columns of the lensrec table layout."""
+    return Spectra(
+        unlensed={k: data[f"unlensed_{k}"] for k in CMB_KEYS},
+        lensed={k: data[f"lensed_{k}"] for k in CMB_KEYS},
+        phi=data["phi_phi"],
+        tensor={k: data[f"tensor_{k}"] for k in TENSOR_KEYS},
+        metadata=metadata,
+    )
 
 
 _FIDUCIAL_CACHE: dict[str, Spectra] = {}
@@ -199,11 +204,4 @@ def spectra_from_camb(lmax: int = 6000, **parameters) -> Spectra:
     merged = dict(FIDUCIAL_PARAMETERS)
     merged.update(parameters)
     table, metadata = compute_columns(merged, lmax=lmax, lmax_tensor=min(lmax, 3000))
-    data = dict(zip(COLUMNS, table.T))
-    return Spectra(
-        unlensed={k: data[f"unlensed_{k}"] for k in CMB_KEYS},
-        lensed={k: data[f"lensed_{k}"] for k in CMB_KEYS},
-        phi=data["phi_phi"],
-        tensor={k: data[f"tensor_{k}"] for k in TENSOR_KEYS},
-        metadata=metadata,
-    )
+    return _from_columns(dict(zip(COLUMNS, table.T)), metadata)

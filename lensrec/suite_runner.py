@@ -35,7 +35,7 @@ from typing import Callable
 import numpy as np
 
 from ._checks import as_int
-from .io import atomic_path, read_json, write_json
+from .io import atomic_path, file_sha256, read_json, write_json
 
 __all__ = ["SuiteCache", "SuiteRun", "run_suite", "settings_fingerprint"]
 
@@ -65,13 +65,6 @@ def _plain(value):
         return list(value)
     raise TypeError(f"suite settings must be plain JSON values, got {type(value).__name__}")
 
-
-def _sha256(path: str) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as handle:
-        for block in iter(lambda: handle.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
 
 
 def _task_name(task: Callable) -> str:
@@ -106,7 +99,7 @@ def execute_one(task_name: str, settings: dict, index: int, directory: str) -> t
     with atomic_path(path, force=True, suffix=".npz") as tmp:
         with open(tmp, "wb") as handle:
             np.savez(handle, **clean)
-    return index, name, _sha256(path)
+    return index, name, file_sha256(path)
 
 
 @dataclass
@@ -151,7 +144,7 @@ class SuiteCache:
         if entry is None:
             return False
         path = os.path.join(self.directory, "sims", entry["file"])
-        return os.path.isfile(path) and _sha256(path) == entry["sha256"]
+        return os.path.isfile(path) and file_sha256(path) == entry["sha256"]
 
     def record(self, index: int, name: str, checksum: str, task_name: str) -> None:
         self.entries[index] = {"file": name, "sha256": checksum}

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import hashlib
 import os
 import time
 
@@ -48,13 +47,6 @@ def add_arguments(parser) -> None:
         help="band limit of E, B and the template (default: min(3*nside-1, the experiment's polarization l_max))",
     )
 
-
-def _sha256(path: str) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as handle:
-        for block in iter(lambda: handle.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
 
 
 def read_phi_noise(phi_path: str, lmax_phi: int) -> tuple:
@@ -132,7 +124,7 @@ def run(args) -> int:
     from lensrec import delensing, harmonics
 
     from ..cli import InputError
-    from ..io import check_outputs_free, provenance, read_alm, read_maps, write_alm, write_json
+    from ..io import check_outputs_free, file_sha256, provenance, read_alm, read_maps, write_alm, write_json
 
     paths = {name: os.path.join(args.out, name) for name in OUTPUTS}
     if os.path.exists(args.out) and not os.path.isdir(args.out):
@@ -160,7 +152,7 @@ def run(args) -> int:
             f"--phi {args.phi!r} was reconstructed from nside {source['nside']} maps, but --maps {args.maps!r} "
             f"has nside {nside}; delens the maps the reconstruction belongs to"
         )
-    maps_digest = _sha256(args.maps)
+    maps_digest = file_sha256(args.maps)
     same_maps = source.get("maps_sha256") == maps_digest if source.get("maps_sha256") else None
     lmax = min(3 * nside - 1, experiment.ell_max_polarization) if args.lmax is None else args.lmax
     if lmax < 2 or lmax > 3 * nside - 1:
@@ -232,7 +224,7 @@ def run(args) -> int:
                 "maps": os.path.abspath(args.maps),
                 "maps_sha256": maps_digest,
                 "phi": os.path.abspath(args.phi),
-                "phi_sha256": _sha256(args.phi),
+                "phi_sha256": file_sha256(args.phi),
                 "estimator": estimator,
                 "nside": nside,
                 "lmax_phi": lmax_phi,

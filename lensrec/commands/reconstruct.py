@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import hashlib
 import os
 import time
 
@@ -38,13 +37,6 @@ def add_arguments(parser) -> None:
                         help="use unlensed CMB spectra in the weights and response (default: lensed)")
 
 
-def _sha256(path: str) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as handle:
-        for block in iter(lambda: handle.read(1 << 22), b""):
-            digest.update(block)
-    return digest.hexdigest()
-
 
 def _column_count(path: str) -> int:
     """Number of map columns in the first table extension of a HEALPix FITS file (0 if there is none)."""
@@ -77,7 +69,7 @@ def n0_document(result) -> dict:
 def run(args) -> int:
     import lensrec
 
-    from ..io import check_outputs_free, provenance, read_maps, write_alm, write_json
+    from ..io import check_outputs_free, file_sha256, provenance, read_maps, write_alm, write_json
     from ..reconstruction import _check_label
 
     paths = {name: os.path.join(args.out, name) for name in OUTPUTS}
@@ -95,9 +87,9 @@ def run(args) -> int:
     maps = read_maps(args.maps)
     nside = lensrec.harmonics.npix_to_nside(maps.shape[1], f"maps in {args.maps!r}")
     mask = lensrec.load_mask(args.mask, nside) if args.mask else None
-    inputs = {"maps": os.path.abspath(args.maps), "maps_sha256": _sha256(args.maps), "nside": nside,
+    inputs = {"maps": os.path.abspath(args.maps), "maps_sha256": file_sha256(args.maps), "nside": nside,
               "mask": os.path.abspath(args.mask) if args.mask else None,
-              "mask_sha256": _sha256(args.mask) if args.mask else None}
+              "mask_sha256": file_sha256(args.mask) if args.mask else None}
     timings["inputs"] = time.perf_counter() - start
 
     start = time.perf_counter()

@@ -35,7 +35,7 @@ The products are evaluated on a Gauss–Legendre grid with ⌊(2ℓ_max + L_max)
 ≥ 2ℓ_max + L_max + 1 pixels per ring (:func:`lensrec.harmonics.gl_grid_for_band_limits`): H is
 band-limited at 2ℓ_max, so the analysis to L_max is exact quadrature (no aliasing). The grid is processed
 in blocks of ring pairs (north and south together) to bound memory (``workspace_mb``); within a block, the
-legs of one spin are one batched ducc0 synthesis and the estimators' H fields one batched spin-1 analysis.
+legs of one spin are one batched ducc0 synthesis, followed by one spin-1 analysis per estimator.
 
 Transform counts (full-sky equivalents, ``Reconstruction.settings["transforms"]``) for one input (a = b):
 TT 2 syntheses (spin 0 T̄, spin 1 √(ℓ(ℓ+1)) C^TT T̄) + 1 spin-1 analysis; EE 3 + 1 (Ē at spin 2, C^EE Ē
@@ -104,7 +104,7 @@ def _check_label(estimator, allowed=ESTIMATORS) -> str:
         raise TypeError(f"estimator must be a string from {allowed}, got {estimator!r}")
     if estimator not in allowed:
         close = difflib.get_close_matches(estimator.upper(), allowed, n=1, cutoff=0.4)
-        hint = f"; did you mean {close[0]!r}?" if close else ""
+        hint = f"; did you mean {close[0]!r}?" if close else "."
         raise ValueError(f"unknown estimator {estimator!r}{hint} Allowed: {', '.join(allowed)}")
     return estimator
 
@@ -333,7 +333,7 @@ class _Workspace:
             shape = (count, 1, max_npix) if spin == 0 else (count, max_npix, 2)
             self.leg_buffers[spin] = np.empty(shape)
         self.products = np.empty((n_labels, max_npix, 2))
-        self.analysis = np.empty((n_labels, 2, nalm(lmax_L)), dtype=np.complex128)
+        self.analysis = np.empty((2, nalm(lmax_L)), dtype=np.complex128)  # one estimator at a time
 
     def leg_maps(self, npix: int) -> list[np.ndarray]:
         """Per leg (in leg order): a real (npix,) view for spin 0, a complex (npix,) view otherwise."""
@@ -547,10 +547,11 @@ def quadratic_estimates(first: FilteredFields, second: FilteredFields | None = N
                 list(pool.map(lambda piece: multiply(piece, leg_maps, h), pieces))
             seconds["products"] += time.perf_counter() - clock
             clock = time.perf_counter()
-            ducc0.sht.adjoint_synthesis(map=workspace.product_output(npix), lmax=lmax_L, spin=1, nthreads=nthreads,
-                                        ringfactor=np.ascontiguousarray(ring_weights[rings]),
-                                        alm=workspace.analysis, **geometry)
-            result += workspace.analysis
+            weights = np.ascontiguousarray(ring_weights[rings])
+            for k, h_map in enumerate(workspace.product_output(npix)):
+                ducc0.sht.adjoint_synthesis(map=h_map, lmax=lmax_L, spin=1, nthreads=nthreads, ringfactor=weights,
+                                            alm=workspace.analysis, **geometry)
+                result[k] += workspace.analysis
             seconds["analysis"] += time.perf_counter() - clock
     finally:
         if pool is not None:

@@ -58,17 +58,27 @@ def main() -> int:
     lmax = 1000 if args.quick else 3000
     lmax_direct = 60 if args.quick else 200
     spectra = lensrec.fiducial_spectra()
-    experiment = lensrec.Experiment(name="bench", noise_temperature=1.0, beam_fwhm=1.0,
-                                    ell_max_temperature=lmax, ell_max_polarization=lmax)
+    experiment = lensrec.Experiment(
+        name="bench", noise_temperature=1.0, beam_fwhm=1.0, ell_max_temperature=lmax, ell_max_polarization=lmax
+    )
     rows = []
 
     def timed(label, repeat=3, **kwargs):
         reconstruction_noise(experiment, spectra, nthreads=args.nthreads, **kwargs)  # warm caches (GL nodes)
         seconds = best_time(lambda: reconstruction_noise(experiment, spectra, nthreads=args.nthreads, **kwargs), repeat)
         result = reconstruction_noise(experiment, spectra, nthreads=args.nthreads, **kwargs)
-        rows.append({"case": label, "lmax": lmax, "lmax_L": lmax, "nthreads": args.nthreads, "seconds": seconds,
-                     "wigner_series": result.settings["wigner_series"],
-                     "projections": result.settings["projections"], "peak_rss_mb": peak_rss_mb()})
+        rows.append(
+            {
+                "case": label,
+                "lmax": lmax,
+                "lmax_L": lmax,
+                "nthreads": args.nthreads,
+                "seconds": seconds,
+                "wigner_series": result.settings["wigner_series"],
+                "projections": result.settings["projections"],
+                "peak_rss_mb": peak_rss_mb(),
+            }
+        )
         return seconds
 
     t_all = timed("TT,TE,EE,TB,EB,MV gradient+curl with covariance")
@@ -77,8 +87,13 @@ def main() -> int:
     t_tt = timed("TT gradient+curl", estimators=("TT",))
 
     # side by side at a small size: fast path (all L) against the direct 3j sum (sampled L, scaled)
-    small = lensrec.Experiment(name="bench-direct", noise_temperature=1.0, beam_fwhm=5.0,
-                               ell_max_temperature=lmax_direct, ell_max_polarization=lmax_direct)
+    small = lensrec.Experiment(
+        name="bench-direct",
+        noise_temperature=1.0,
+        beam_fwhm=5.0,
+        ell_max_temperature=lmax_direct,
+        ell_max_polarization=lmax_direct,
+    )
     fast_kwargs = {"estimators": ("TT",), "components": ("gradient",), "lmax_L": lmax_direct, "nthreads": args.nthreads}
     reconstruction_noise(small, spectra, **fast_kwargs)
     t_fast = best_time(lambda: reconstruction_noise(small, spectra, **fast_kwargs), 5)
@@ -93,17 +108,36 @@ def main() -> int:
         _, n0 = direct_tt_sum(L, C, inverse, lmax_direct)
         worst = max(worst, abs(fast.n0["TT"]["gradient"][L] / n0 - 1))
     t_direct = (time.perf_counter() - start) / len(sampled) * (lmax_direct - 1)
-    rows.append({"case": "TT gradient, direct 3j sum (sampled L, scaled to all L)", "lmax": lmax_direct,
-                 "lmax_L": lmax_direct, "seconds": t_direct, "sampled_L": len(sampled),
-                 "peak_rss_mb": peak_rss_mb()})
-    rows.append({"case": "TT gradient, fast path (all L)", "lmax": lmax_direct, "lmax_L": lmax_direct,
-                 "seconds": t_fast, "speedup_over_direct": t_direct / t_fast,
-                 "max_rel_difference_n0": worst, "peak_rss_mb": peak_rss_mb()})
+    rows.append(
+        {
+            "case": "TT gradient, direct 3j sum (sampled L, scaled to all L)",
+            "lmax": lmax_direct,
+            "lmax_L": lmax_direct,
+            "seconds": t_direct,
+            "sampled_L": len(sampled),
+            "peak_rss_mb": peak_rss_mb(),
+        }
+    )
+    rows.append(
+        {
+            "case": "TT gradient, fast path (all L)",
+            "lmax": lmax_direct,
+            "lmax_L": lmax_direct,
+            "seconds": t_fast,
+            "speedup_over_direct": t_direct / t_fast,
+            "max_rel_difference_n0": worst,
+            "peak_rss_mb": peak_rss_mb(),
+        }
+    )
     report("estimator_noise", rows)
-    print(f"\nall estimators + MV + curl at lmax {lmax}: {t_all:.3f} s; EB alone {t_eb:.3f} s "
-          f"(gradient only {t_eb_grad:.3f} s); TT alone {t_tt:.3f} s; nthreads={args.nthreads}")
-    print(f"direct 3j sum at lmax {lmax_direct}: {t_direct:.1f} s vs fast {t_fast * 1e3:.1f} ms "
-          f"-> speed-up {t_direct / t_fast:.0f}x (max N0 difference {worst:.1e}); peak RSS {peak_rss_mb():.0f} MB")
+    print(
+        f"\nall estimators + MV + curl at lmax {lmax}: {t_all:.3f} s; EB alone {t_eb:.3f} s "
+        f"(gradient only {t_eb_grad:.3f} s); TT alone {t_tt:.3f} s; nthreads={args.nthreads}"
+    )
+    print(
+        f"direct 3j sum at lmax {lmax_direct}: {t_direct:.1f} s vs fast {t_fast * 1e3:.1f} ms "
+        f"-> speed-up {t_direct / t_fast:.0f}x (max N0 difference {worst:.1e}); peak RSS {peak_rss_mb():.0f} MB"
+    )
     return 0
 
 

@@ -17,7 +17,14 @@ from .io import OutputExistsError
 from .lensed_spectra import delensed_spectra, first_order_lensed_bb, lensed_cmb_spectra
 from .masks import apodize_binary_mask, cap_mask, latitude_mask, load_mask, sky_fraction_moments
 from .power import auto_spectrum, bin_spectrum, binned_cross_spectrum, cross_spectrum, mask_corrected
-from .reconstruction import MeanField, Reconstruction, mean_field, quadratic_estimates, reconstruct, reconstruct_filtered
+from .reconstruction import (
+    MeanField,
+    Reconstruction,
+    mean_field,
+    quadratic_estimates,
+    reconstruct,
+    reconstruct_filtered,
+)
 from .sky import SimulatedSky, deflection_maps, lens_alm, lens_tqu_alm, simulate_sky
 from .spectra import Spectra, fiducial_spectra, spectra_from_camb
 from .suites import LensingSuite, lensing_suite_settings, open_lensing_suite, run_lensing_suite

@@ -37,8 +37,9 @@ def as_int(value, name: str, minimum: int | None = None, maximum: int | None = N
     return result
 
 
-def as_float(value, name: str, minimum: float | None = None, maximum: float | None = None,
-             strict_minimum: bool = False) -> float:
+def as_float(
+    value, name: str, minimum: float | None = None, maximum: float | None = None, strict_minimum: bool = False
+) -> float:
     """Return ``value`` as a finite Python float within the given bounds."""
     if isinstance(value, (bool, np.bool_)) or not isinstance(value, numbers.Real):
         raise TypeError(f"{name} must be a real number, got {value!r} of type {type(value).__name__}")
@@ -75,8 +76,9 @@ def check_lmax_for_nside(lmax, nside: int, name: str = "lmax", allow_high_lmax: 
     return lmax
 
 
-def as_finite_array(values, name: str, ndim: int | tuple[int, ...] | None = None,
-                    shape: tuple | None = None, dtype=np.float64) -> np.ndarray:
+def as_finite_array(
+    values, name: str, ndim: int | tuple[int, ...] | None = None, shape: tuple | None = None, dtype=np.float64
+) -> np.ndarray:
     """Convert to a numpy array of ``dtype`` and check dimensionality, shape and finiteness."""
     if isinstance(values, (str, bytes)) or values is None:
         raise TypeError(f"{name} must be a numeric array, got {type(values).__name__}")

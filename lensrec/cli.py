@@ -41,15 +41,17 @@ class InputError(ValueError):
 def add_common(parser: argparse.ArgumentParser, experiment=True, out=True, seed=False) -> None:
     """The options every command spells the same way."""
     if experiment:
-        parser.add_argument("--experiment", default="deep_highland",
-                            help="experiment TOML file or shipped name (default: %(default)s)")
+        parser.add_argument(
+            "--experiment", default="deep_highland", help="experiment TOML file or shipped name (default: %(default)s)"
+        )
     if out:
         parser.add_argument("--out", required=True, help="output file or folder")
         parser.add_argument("--force", action="store_true", help="overwrite existing outputs")
     if seed:
         parser.add_argument("--seed", type=int, default=0, help="random seed (default: %(default)s)")
-    parser.add_argument("--nthreads", type=int, default=None,
-                        help="threads for transforms (default: LENSREC_NTHREADS or all cores)")
+    parser.add_argument(
+        "--nthreads", type=int, default=None, help="threads for transforms (default: LENSREC_NTHREADS or all cores)"
+    )
 
 
 def _load_command(name: str):
@@ -74,9 +76,13 @@ def build_parser(available=None) -> argparse.ArgumentParser:
             if exc.name == f"lensrec.commands.{COMMANDS[name]}":
                 continue  # not built yet
             raise
-        command = sub.add_parser(name, help=module.HELP, description=module.HELP,
-                                 epilog=getattr(module, "EXAMPLES", None),
-                                 formatter_class=argparse.RawDescriptionHelpFormatter)
+        command = sub.add_parser(
+            name,
+            help=module.HELP,
+            description=module.HELP,
+            epilog=getattr(module, "EXAMPLES", None),
+            formatter_class=argparse.RawDescriptionHelpFormatter,
+        )
         module.add_arguments(command)
         command.set_defaults(_run=module.run)
     return parser

@@ -20,11 +20,21 @@ from .io import check_outputs_free, provenance, write_json
 
 __all__ = ["run_demo", "DEMO_OUTPUTS"]
 
-DEMO_OUTPUTS = ("index.html", "summary.json", "noise_forecast.png", "sky_maps.png", "convergence.png",
-                "reconstruction_spectra.png", "delensing_spectra.png", "tensor_forecast.png")
-CAUTION = ("These results describe one simulation of an idealised survey (full sky, isotropic white noise, no "
-           "foregrounds, Gaussian unlensed CMB). They are a demonstration of the method, not a forecast or "
-           "measurement for any real survey.")
+DEMO_OUTPUTS = (
+    "index.html",
+    "summary.json",
+    "noise_forecast.png",
+    "sky_maps.png",
+    "convergence.png",
+    "reconstruction_spectra.png",
+    "delensing_spectra.png",
+    "tensor_forecast.png",
+)
+CAUTION = (
+    "These results describe one simulation of an idealised survey (full sky, isotropic white noise, no "
+    "foregrounds, Gaussian unlensed CMB). They are a demonstration of the method, not a forecast or "
+    "measurement for any real survey."
+)
 FORECAST_L = (30, 100, 300, 1000)
 
 
@@ -44,9 +54,17 @@ def _binned(values, edges):
     return np.array(centres), np.array(means)
 
 
-def run_demo(out, experiment="deep_highland", nside: int = 512, lmax: int | None = None,
-             lmax_L: int | None = None, seed: int = 0, force: bool = False, nthreads: int | None = None,
-             log=print) -> dict:
+def run_demo(
+    out,
+    experiment="deep_highland",
+    nside: int = 512,
+    lmax: int | None = None,
+    lmax_L: int | None = None,
+    seed: int = 0,
+    force: bool = False,
+    nthreads: int | None = None,
+    log=print,
+) -> dict:
     """Run forecast → simulate → reconstruct (MV) → validate → delens → σ(r) and write the report.
 
     Parameters
@@ -115,13 +133,28 @@ def run_demo(out, experiment="deep_highland", nside: int = 512, lmax: int | None
     scale = (L_f * (L_f + 1.0)) ** 2 / (2 * np.pi)
     for ax, component in zip(axes[0], ("gradient", "curl")):
         if component == "gradient":
-            ax.plot(L_f[2:], (scale * spectra.phi[: L_f.size])[2:], color=report.PALETTE["signal"], lw=3,
-                    label="signal $C_L^{\\phi\\phi}$")
+            ax.plot(
+                L_f[2:],
+                (scale * spectra.phi[: L_f.size])[2:],
+                color=report.PALETTE["signal"],
+                lw=3,
+                label="signal $C_L^{\\phi\\phi}$",
+            )
         for label in forecast.n0:
-            ax.plot(L_f[2:], (scale * forecast.n0[label][component])[2:], color=report.ESTIMATOR_COLOURS[label],
-                    lw=2.2 if label == "MV" else 1.3, label=f"N0 {label}")
-        ax.set(xscale="log", yscale="log", xlabel="lensing multipole $L$",
-               ylabel="$[L(L+1)]^2 C_L / 2\\pi$", title=f"N0, {component} – {experiment.name}")
+            ax.plot(
+                L_f[2:],
+                (scale * forecast.n0[label][component])[2:],
+                color=report.ESTIMATOR_COLOURS[label],
+                lw=2.2 if label == "MV" else 1.3,
+                label=f"N0 {label}",
+            )
+        ax.set(
+            xscale="log",
+            yscale="log",
+            xlabel="lensing multipole $L$",
+            ylabel="$[L(L+1)]^2 C_L / 2\\pi$",
+            title=f"N0, {component} – {experiment.name}",
+        )
         ax.set_ylim(1e-9, 1e-5)
         ax.legend(fontsize=8, ncol=2, frameon=False)
     report.save_figure(fig, paths["noise_forecast.png"], force=force)
@@ -133,8 +166,11 @@ def run_demo(out, experiment="deep_highland", nside: int = 512, lmax: int | None
     timings["simulate"] = time.perf_counter() - start
     rms_deflection = deflection.rms_arcmin
     fig, axes = report.new_figure(2, 2, width=5.2, height=3.0)
-    for ax, values, title in zip(axes.flat, (sky.maps[0], sky.maps[1], sky.maps[2], deflection.magnitude_arcmin),
-                                 ("observed T [µK]", "observed Q [µK]", "observed U [µK]", "|deflection| [arcmin]")):
+    for ax, values, title in zip(
+        axes.flat,
+        (sky.maps[0], sky.maps[1], sky.maps[2], deflection.magnitude_arcmin),
+        ("observed T [µK]", "observed Q [µK]", "observed U [µK]", "|deflection| [arcmin]"),
+    ):
         image = report.mollweide_array(values, xsize=600)
         limit = np.nanpercentile(np.abs(image), 99)
         cmap, vmin = ("RdBu_r", -limit) if "deflection" not in title else ("magma", 0.0)
@@ -183,12 +219,23 @@ def run_demo(out, experiment="deep_highland", nside: int = 512, lmax: int | None
     ax = axes[0, 1]
     Lr = np.arange(lmax_L + 1)
     sc = (Lr * (Lr + 1.0)) ** 2 / (2 * np.pi)
-    ax.plot(Lr[2:], (sc * spectra.phi[: lmax_L + 1])[2:], color=report.PALETTE["signal"], lw=3, label="theory $C_L^{\\phi\\phi}$")
+    ax.plot(
+        Lr[2:],
+        (sc * spectra.phi[: lmax_L + 1])[2:],
+        color=report.PALETTE["signal"],
+        lw=3,
+        label="theory $C_L^{\\phi\\phi}$",
+    )
     ax.plot(Lr[2:], (sc * n0)[2:], color=report.ESTIMATOR_COLOURS["MV"], lw=1.2, ls=":", label="analytic N0 (MV)")
     scb = (L_b * (L_b + 1.0)) ** 2 / (2 * np.pi)
     ax.plot(L_b, scb * debiased_b, "o", color=report.PALETTE["output"], label="auto − N0 (this sim)")
-    ax.set(xscale="log", yscale="log", xlabel="lensing multipole $L$", ylabel="$[L(L+1)]^2 C_L / 2\\pi$",
-           title="reconstructed lensing power")
+    ax.set(
+        xscale="log",
+        yscale="log",
+        xlabel="lensing multipole $L$",
+        ylabel="$[L(L+1)]^2 C_L / 2\\pi$",
+        title="reconstructed lensing power",
+    )
     ax.set_ylim(1e-9, 1e-6)
     ax.legend(frameon=False, fontsize=9)
     report.save_figure(fig, paths["reconstruction_spectra.png"], force=force)
@@ -202,9 +249,12 @@ def run_demo(out, experiment="deep_highland", nside: int = 512, lmax: int | None
     kappa_wf = alm2map(scale_alm(phi_wiener, kappa_factor, lmax_L), nside, lmax_L, nthreads=nthreads)
     fig, axes = report.new_figure(2, 1, width=5.4, height=3.3)
     limit = float(np.percentile(np.abs(kappa_in), 99.5))
-    for ax, values, title in zip(axes[0], (kappa_in, kappa_wf), (f"input κ, L ≤ {L_show}", f"reconstructed κ (Wiener-filtered MV), L ≤ {L_show}")):
-        im = ax.imshow(report.mollweide_array(values, xsize=600), origin="lower", cmap="RdBu_r", vmin=-limit,
-                       vmax=limit)
+    for ax, values, title in zip(
+        axes[0], (kappa_in, kappa_wf), (f"input κ, L ≤ {L_show}", f"reconstructed κ (Wiener-filtered MV), L ≤ {L_show}")
+    ):
+        im = ax.imshow(
+            report.mollweide_array(values, xsize=600), origin="lower", cmap="RdBu_r", vmin=-limit, vmax=limit
+        )
         ax.set_axis_off()
         ax.set_title(title)
     fig.colorbar(im, ax=list(axes[0]), orientation="horizontal", fraction=0.05, pad=0.02, label="κ (shared scale)")
@@ -214,8 +264,16 @@ def run_demo(out, experiment="deep_highland", nside: int = 512, lmax: int | None
     start = step(5, "build the lensing B-mode template and delens")
     e_wiener, b_observed, _ = template_inputs(sky.maps, experiment, spectra, lmax=lmax, nthreads=nthreads)
     noise_bb = experiment.noise_spectrum("B", lmax)
-    delensed = delens(b_observed, e_wiener, phi_wiener, lmax, method="remap", noise_bb=noise_bb,
-                      lensed_bb=spectra.lensed["BB"], nthreads=nthreads)
+    delensed = delens(
+        b_observed,
+        e_wiener,
+        phi_wiener,
+        lmax,
+        method="remap",
+        noise_bb=noise_bb,
+        lensed_bb=spectra.lensed["BB"],
+        nthreads=nthreads,
+    )
     timings["delens"] = time.perf_counter() - start
 
     # 6. sigma(r) ---------------------------------------------------------------------------------------
@@ -225,8 +283,10 @@ def run_demo(out, experiment="deep_highland", nside: int = 512, lmax: int | None
     # compare with the A_lens^res measured on it
     n0_sim = np.full(spectra.lmax + 1, np.inf)
     n0_sim[: lmax_L + 1] = n0
-    sim_experiment = experiment.replace(ell_max_temperature=min(experiment.ell_max_temperature, lmax),
-                                        ell_max_polarization=min(experiment.ell_max_polarization, lmax))
+    sim_experiment = experiment.replace(
+        ell_max_temperature=min(experiment.ell_max_temperature, lmax),
+        ell_max_polarization=min(experiment.ell_max_polarization, lmax),
+    )
     tensor_sim = delensing_forecast(sim_experiment, spectra, n0=n0_sim, lmax=min(lmax, 1000), nthreads=nthreads)
     timings["tensor_forecast"] = time.perf_counter() - start
 
@@ -235,15 +295,22 @@ def run_demo(out, experiment="deep_highland", nside: int = 512, lmax: int | None
     fig, axes = report.new_figure(2, 1, width=5.6)
     ax = axes[0, 0]
     finite_noise = np.where(np.isfinite(noise_bb), noise_bb, np.nan)
-    for values, label, colour, width in ((delensed.observed_bb - np.nan_to_num(finite_noise), "observed − noise", report.PALETTE["ink"], 1.2),
-                                          (delensed.template_bb, "template", report.PALETTE["input"], 1.2),
-                                          (delensed.residual_bb - np.nan_to_num(finite_noise), "residual − noise", report.PALETTE["output"], 1.2),
-                                          (spectra.lensed["BB"][: ell.size], "lensing BB (theory)", report.PALETTE["signal"], 3),
-                                          (finite_noise, "noise", report.PALETTE["accent"], 1.2)):
+    for values, label, colour, width in (
+        (delensed.observed_bb - np.nan_to_num(finite_noise), "observed − noise", report.PALETTE["ink"], 1.2),
+        (delensed.template_bb, "template", report.PALETTE["input"], 1.2),
+        (delensed.residual_bb - np.nan_to_num(finite_noise), "residual − noise", report.PALETTE["output"], 1.2),
+        (spectra.lensed["BB"][: ell.size], "lensing BB (theory)", report.PALETTE["signal"], 3),
+        (finite_noise, "noise", report.PALETTE["accent"], 1.2),
+    ):
         e_c, v_c = _binned(dl * values, np.unique(np.round(np.geomspace(20, lmax + 1, 30)).astype(int)))
         ax.plot(e_c, v_c, color=colour, lw=width, label=label)
-    ax.set(xscale="log", yscale="log", xlabel="multipole $\\ell$", ylabel="$D_\\ell^{BB}$ [µK²]",
-           title="B modes before and after delensing (this sim)")
+    ax.set(
+        xscale="log",
+        yscale="log",
+        xlabel="multipole $\\ell$",
+        ylabel="$D_\\ell^{BB}$ [µK²]",
+        title="B modes before and after delensing (this sim)",
+    )
     report.tidy_log_axis(ax)
     ax.legend(frameon=False, fontsize=8)
     ax = axes[0, 1]
@@ -251,12 +318,26 @@ def run_demo(out, experiment="deep_highland", nside: int = 512, lmax: int | None
     dlt = lt * (lt + 1.0) / (2 * np.pi)
     ax.plot(lt[2:], (dlt * tensor.lensed_bb)[2:], color=report.PALETTE["signal"], lw=3, label="lensing BB")
     ax.plot(lt[2:], (dlt * tensor.residual_bb)[2:], color=report.PALETTE["output"], label="forecast residual")
-    ax.plot(lt[2:], (dlt * np.where(np.isfinite(tensor.noise_bb), tensor.noise_bb, np.nan))[2:],
-            color=report.PALETTE["accent"], label="noise")
-    ax.plot(lt[2:], (dlt * 0.01 * tensor.tensor_bb_r1)[2:], color=report.PALETTE["input"], ls="--",
-            label="primordial, r = 0.01")
-    ax.set(xscale="log", yscale="log", xlabel="multipole $\\ell$", ylabel="$D_\\ell^{BB}$ [µK²]",
-           title=f"σ(r): {tensor.sigma_r_lensed:.2g} → {tensor.sigma_r_delensed:.2g} delensed")
+    ax.plot(
+        lt[2:],
+        (dlt * np.where(np.isfinite(tensor.noise_bb), tensor.noise_bb, np.nan))[2:],
+        color=report.PALETTE["accent"],
+        label="noise",
+    )
+    ax.plot(
+        lt[2:],
+        (dlt * 0.01 * tensor.tensor_bb_r1)[2:],
+        color=report.PALETTE["input"],
+        ls="--",
+        label="primordial, r = 0.01",
+    )
+    ax.set(
+        xscale="log",
+        yscale="log",
+        xlabel="multipole $\\ell$",
+        ylabel="$D_\\ell^{BB}$ [µK²]",
+        title=f"σ(r): {tensor.sigma_r_lensed:.2g} → {tensor.sigma_r_delensed:.2g} delensed",
+    )
     ax.legend(frameon=False, fontsize=8)
     report.save_figure(fig, paths["tensor_forecast.png"], force=force)
     # the tensor figure doubles as the delensing-spectra figure name for the page order
@@ -264,20 +345,31 @@ def run_demo(out, experiment="deep_highland", nside: int = 512, lmax: int | None
     ax = axes[0, 0]
     e_c, eff = _binned(delensed.efficiency, np.unique(np.round(np.geomspace(30, lmax + 1, 25)).astype(int)))
     ax.plot(e_c, 100 * eff, "o-", color=report.PALETTE["good"])
-    ax.set(xscale="log", xlabel="multipole $\\ell$", ylabel="lensing B power removed [%]",
-           title="delensing efficiency (this sim, noise power subtracted)")
+    ax.set(
+        xscale="log",
+        xlabel="multipole $\\ell$",
+        ylabel="lensing B power removed [%]",
+        title="delensing efficiency (this sim, noise power subtracted)",
+    )
     report.tidy_log_axis(ax)
     report.save_figure(fig, paths["delensing_spectra.png"], force=force)
 
     bands = [(lo, hi) for lo, hi in ((30, 100), (100, 300), (300, 1000), (1000, 2000)) if hi <= lmax]
     summary = {
         "experiment": experiment.to_dict(),
-        "simulation": {"nside": nside, "lmax": lmax, "lmax_L": lmax_L, "seed": seed,
-                       "rms_deflection_arcmin": rms_deflection},
+        "simulation": {
+            "nside": nside,
+            "lmax": lmax,
+            "lmax_L": lmax_L,
+            "seed": seed,
+            "rms_deflection_arcmin": rms_deflection,
+        },
         "forecast": {
             "lmax_L": lmax_forecast,
-            "n0_gradient": {label: {str(L): float(forecast.n0[label]["gradient"][L]) for L in FORECAST_L
-                                    if L <= lmax_forecast} for label in forecast.n0},
+            "n0_gradient": {
+                label: {str(L): float(forecast.n0[label]["gradient"][L]) for L in FORECAST_L if L <= lmax_forecast}
+                for label in forecast.n0
+            },
             "lensing_snr": {label: float(value) for label, value in snr.items()},
         },
         "reconstruction": {
@@ -302,9 +394,13 @@ def run_demo(out, experiment="deep_highland", nside: int = 512, lmax: int | None
         },
         "caution": CAUTION,
     }
-    summary["provenance"] = provenance("demo", arguments={"nside": nside, "lmax": lmax, "lmax_L": lmax_L,
-                                                          "seed": seed, "experiment": experiment.name},
-                                       experiment=experiment, seed=seed, timings=timings)
+    summary["provenance"] = provenance(
+        "demo",
+        arguments={"nside": nside, "lmax": lmax, "lmax_L": lmax_L, "seed": seed, "experiment": experiment.name},
+        experiment=experiment,
+        seed=seed,
+        timings=timings,
+    )
     _write_page(paths, summary, experiment, force)
     write_json(paths["summary.json"], summary, force=force)
     _print_table(summary, log)
@@ -320,41 +416,72 @@ def _write_page(paths, summary, experiment, force):
     t = summary["tensor_forecast"]
     s = summary["simulation"]
     labels = list(f["lensing_snr"])
-    n0_rows = [[label] + [f["n0_gradient"][label].get(str(L), float("nan")) for L in FORECAST_L]
-               + [f["lensing_snr"][label]] for label in labels]
-    sections = [
-        ("1. Reconstruction noise forecast",
-         [f"Full-sky Gaussian N0 of each quadratic estimator for {experiment.name} (noise "
-          f"{experiment.noise_temperature:g}/{experiment.noise_polarization:g} µK-arcmin in T/P, beam "
-          f"{experiment.beam_fwhm:g} arcmin, ℓ = {experiment.ell_min}–{experiment.ell_max_temperature}/"
-          f"{experiment.ell_max_polarization}), and the lensing S/N with f_sky = {experiment.sky_fraction:g}."],
-         [paths["noise_forecast.png"]],
-         [(["estimator"] + [f"N0 at L={L}" for L in FORECAST_L] + ["lensing S/N"], n0_rows)]),
-        ("2. Simulated sky",
-         [f"One lensed, beamed, noisy full-sky simulation at nside {s['nside']}, ℓ_max {s['lmax']}, seed "
-          f"{s['seed']}; rms deflection {s['rms_deflection_arcmin']:.2f} arcmin (about 2.5 arcmin is typical)."],
-         [paths["sky_maps.png"]], []),
-        ("3–4. Reconstruction and validation",
-         [f"MV reconstruction to L = {s['lmax_L']}. Mode-weighted cross/input over L = "
-          f"{r['cross_over_input_L_range'][0]}–{r['cross_over_input_L_range'][1]}: {r['cross_over_input']:.3f} "
-          "(1 means unit response). The curl auto-spectrum over its N0 is a null test (1 expected)."],
-         [paths["convergence.png"], paths["reconstruction_spectra.png"]], []),
-        ("5. Delensing",
-         ["The lensing B-mode template is the B part of the Wiener-filtered E remapped by the Wiener-filtered MV "
-          f"reconstruction. Measured A_lens^res = {d['alens_residual_measured']:.3f}; the forecast for this "
-          f"simulation's band limit and N0 is {d['alens_residual_forecast_for_this_simulation']:.3f}, and for the "
-          f"full experiment (ℓ to {experiment.ell_max_polarization}) {d['alens_residual_forecast_full_experiment']:.3f}."]
-         + list(d["notes"]),
-         [paths["delensing_spectra.png"]],
-         [(["ℓ range", "lensing B power removed"], [[band, value] for band, value in d["efficiency_by_band"].items()])]),
-        ("6. Tensor-to-scalar ratio",
-         [f"Fisher σ(r) from BB alone over ℓ = {t['ell_range'][0]}–{t['ell_range'][1]} with f_sky = "
-          f"{t['sky_fraction']:g}: {t['sigma_r_lensed']:.3g} without delensing, {t['sigma_r_delensed']:.3g} "
-          "with forecast delensing (MV N0)."],
-         [paths["tensor_forecast.png"]], []),
+    n0_rows = [
+        [label] + [f["n0_gradient"][label].get(str(L), float("nan")) for L in FORECAST_L] + [f["lensing_snr"][label]]
+        for label in labels
     ]
-    report.write_html_report(paths["index.html"], f"lensrec demo report – {experiment.name}", sections, CAUTION,
-                             force=force)
+    sections = [
+        (
+            "1. Reconstruction noise forecast",
+            [
+                f"Full-sky Gaussian N0 of each quadratic estimator for {experiment.name} (noise "
+                f"{experiment.noise_temperature:g}/{experiment.noise_polarization:g} µK-arcmin in T/P, beam "
+                f"{experiment.beam_fwhm:g} arcmin, ℓ = {experiment.ell_min}–{experiment.ell_max_temperature}/"
+                f"{experiment.ell_max_polarization}), and the lensing S/N with f_sky = {experiment.sky_fraction:g}."
+            ],
+            [paths["noise_forecast.png"]],
+            [(["estimator"] + [f"N0 at L={L}" for L in FORECAST_L] + ["lensing S/N"], n0_rows)],
+        ),
+        (
+            "2. Simulated sky",
+            [
+                f"One lensed, beamed, noisy full-sky simulation at nside {s['nside']}, ℓ_max {s['lmax']}, seed "
+                f"{s['seed']}; rms deflection {s['rms_deflection_arcmin']:.2f} arcmin (about 2.5 arcmin is typical)."
+            ],
+            [paths["sky_maps.png"]],
+            [],
+        ),
+        (
+            "3–4. Reconstruction and validation",
+            [
+                f"MV reconstruction to L = {s['lmax_L']}. Mode-weighted cross/input over L = "
+                f"{r['cross_over_input_L_range'][0]}–{r['cross_over_input_L_range'][1]}: {r['cross_over_input']:.3f} "
+                "(1 means unit response). The curl auto-spectrum over its N0 is a null test (1 expected)."
+            ],
+            [paths["convergence.png"], paths["reconstruction_spectra.png"]],
+            [],
+        ),
+        (
+            "5. Delensing",
+            [
+                "The lensing B-mode template is the B part of the Wiener-filtered E remapped by the Wiener-filtered MV "
+                f"reconstruction. Measured A_lens^res = {d['alens_residual_measured']:.3f}; the forecast for this "
+                f"simulation's band limit and N0 is {d['alens_residual_forecast_for_this_simulation']:.3f}, and for the "
+                f"full experiment (ℓ to {experiment.ell_max_polarization}) {d['alens_residual_forecast_full_experiment']:.3f}."
+            ]
+            + list(d["notes"]),
+            [paths["delensing_spectra.png"]],
+            [
+                (
+                    ["ℓ range", "lensing B power removed"],
+                    [[band, value] for band, value in d["efficiency_by_band"].items()],
+                )
+            ],
+        ),
+        (
+            "6. Tensor-to-scalar ratio",
+            [
+                f"Fisher σ(r) from BB alone over ℓ = {t['ell_range'][0]}–{t['ell_range'][1]} with f_sky = "
+                f"{t['sky_fraction']:g}: {t['sigma_r_lensed']:.3g} without delensing, {t['sigma_r_delensed']:.3g} "
+                "with forecast delensing (MV N0)."
+            ],
+            [paths["tensor_forecast.png"]],
+            [],
+        ),
+    ]
+    report.write_html_report(
+        paths["index.html"], f"lensrec demo report – {experiment.name}", sections, CAUTION, force=force
+    )
 
 
 def _print_table(summary, log):
@@ -367,9 +494,13 @@ def _print_table(summary, log):
     r = summary["reconstruction"]
     d = summary["delensing"]
     t = summary["tensor_forecast"]
-    log(f"reconstruction cross/input (L {r['cross_over_input_L_range'][0]}-{r['cross_over_input_L_range'][1]}): "
-        f"{r['cross_over_input']:.3f}")
-    log(f"A_lens^res measured {d['alens_residual_measured']:.3f}, forecast for this sim "
+    log(
+        f"reconstruction cross/input (L {r['cross_over_input_L_range'][0]}-{r['cross_over_input_L_range'][1]}): "
+        f"{r['cross_over_input']:.3f}"
+    )
+    log(
+        f"A_lens^res measured {d['alens_residual_measured']:.3f}, forecast for this sim "
         f"{d['alens_residual_forecast_for_this_simulation']:.3f} (full experiment "
-        f"{d['alens_residual_forecast_full_experiment']:.3f})")
+        f"{d['alens_residual_forecast_full_experiment']:.3f})"
+    )
     log(f"sigma(r): {t['sigma_r_lensed']:.3g} without delensing, {t['sigma_r_delensed']:.3g} with")

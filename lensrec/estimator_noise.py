@@ -54,9 +54,15 @@ _IMAGINARY_TOLERANCE = 1e-9
 
 
 # ---------------------------------------------------------------------------------------- factors
-def standard_factors(experiment: Experiment, spectra: Spectra, lmax: int, lensed_weights: bool = True,
-                     total_prefix: str = "total", filter_prefix: str = "inverse",
-                     spectra_prefix: str = "cmb") -> FactorTable:
+def standard_factors(
+    experiment: Experiment,
+    spectra: Spectra,
+    lmax: int,
+    lensed_weights: bool = True,
+    total_prefix: str = "total",
+    filter_prefix: str = "inverse",
+    spectra_prefix: str = "cmb",
+) -> FactorTable:
     """The factor table lensrec's estimators use.
 
     ``"cmb:XY"``: CMB spectra in the weights and response (lensed unless ``lensed_weights=False``);
@@ -96,10 +102,20 @@ def _register_noise(sums: KernelSums, a: QuadraticEstimator, b: QuadraticEstimat
     x, y = a.fields
     z, v = b.fields
     scale = 1.0 / (a.symmetry * b.symmetry)
-    first = sums.add(a.weight, b.weight.conjugate(), first=(spectrum_name(total, x, z),),
-                     second=(spectrum_name(total, y, v),), scale=scale)
-    second = sums.add(a.weight, b.weight.swapped().conjugate(), first=(spectrum_name(total, x, v),),
-                      second=(spectrum_name(total, y, z),), scale=scale)
+    first = sums.add(
+        a.weight,
+        b.weight.conjugate(),
+        first=(spectrum_name(total, x, z),),
+        second=(spectrum_name(total, y, v),),
+        scale=scale,
+    )
+    second = sums.add(
+        a.weight,
+        b.weight.swapped().conjugate(),
+        first=(spectrum_name(total, x, v),),
+        second=(spectrum_name(total, y, z),),
+        scale=scale,
+    )
     return first, second
 
 
@@ -310,11 +326,15 @@ class ReconstructionNoise:
             "experiment": self.experiment.to_dict(),
         }
         if self.mv_weights:
-            document["mv_weights"] = {"labels": list(self.covariance_labels),
-                                      **{c: v.tolist() for c, v in self.mv_weights.items()}}
+            document["mv_weights"] = {
+                "labels": list(self.covariance_labels),
+                **{c: v.tolist() for c, v in self.mv_weights.items()},
+            }
         if include_covariance:
-            document["covariance"] = {"labels": list(self.covariance_labels),
-                                      **{c: v.tolist() for c, v in self.covariance.items()}}
+            document["covariance"] = {
+                "labels": list(self.covariance_labels),
+                **{c: v.tolist() for c, v in self.covariance.items()},
+            }
         return document
 
 
@@ -352,8 +372,15 @@ def _parse_components(components) -> tuple[str, ...]:
 
 
 # --------------------------------------------------------------------------------------- main entry
-def reconstruction_noise(experiment, spectra=None, estimators=ESTIMATORS, lmax_L=None, lensed_weights=True,
-                         nthreads=None, components=COMPONENTS) -> ReconstructionNoise:
+def reconstruction_noise(
+    experiment,
+    spectra=None,
+    estimators=ESTIMATORS,
+    lmax_L=None,
+    lensed_weights=True,
+    nthreads=None,
+    components=COMPONENTS,
+) -> ReconstructionNoise:
     """Exact full-sky responses and Gaussian N0 of the quadratic estimators, their covariance and the MV.
 
     Parameters
@@ -410,12 +437,15 @@ def reconstruction_noise(experiment, spectra=None, estimators=ESTIMATORS, lmax_L
     components = _parse_components(components)
     lmax = max(experiment.ell_max_temperature, experiment.ell_max_polarization)
     if spectra.lmax < lmax:
-        raise ValueError(f"spectra reach only l = {spectra.lmax} but the experiment uses l up to {lmax}; "
-                         "lower the experiment's ell_max or pass spectra computed to higher l")
+        raise ValueError(
+            f"spectra reach only l = {spectra.lmax} but the experiment uses l up to {lmax}; "
+            "lower the experiment's ell_max or pass spectra computed to higher l"
+        )
     lmax_L = lmax if lmax_L is None else as_int(lmax_L, "lmax_L", minimum=2)
     if lmax_L > lmax:
-        raise ValueError(f"lmax_L={lmax_L} exceeds the CMB l_max={lmax} of experiment {experiment.name!r}; "
-                         f"choose lmax_L <= {lmax}")
+        raise ValueError(
+            f"lmax_L={lmax_L} exceeds the CMB l_max={lmax} of experiment {experiment.name!r}; choose lmax_L <= {lmax}"
+        )
     for key in ("TT", "EE", "BB", "TE"):
         for which in (spectra.lensed, spectra.unlensed):
             as_finite_array(which[key][: lmax + 1], f"spectra {key}")
@@ -427,9 +457,11 @@ def reconstruction_noise(experiment, spectra=None, estimators=ESTIMATORS, lmax_L
         if not cut:
             usable.append(label)
         elif label in labels:  # named explicitly: its N0 is undefined, say so
-            raise ValueError(f"estimator {label} has no usable multipole of {cut[0]}: every l of {cut[0]} is cut "
-                             f"(ell_min={experiment.ell_min}, ell_max={experiment.ell_max(cut[0])}, "
-                             f"spectra to l={spectra.lmax}); drop {label} from estimators")
+            raise ValueError(
+                f"estimator {label} has no usable multipole of {cut[0]}: every l of {cut[0]} is cut "
+                f"(ell_min={experiment.ell_min}, ell_max={experiment.ell_max(cut[0])}, "
+                f"spectra to l={spectra.lmax}); drop {label} from estimators"
+            )
     base = tuple(usable)  # MV combines the estimators that are defined
     if not base:
         raise ValueError("no estimator has usable multipoles: every field is cut")
@@ -438,10 +470,14 @@ def reconstruction_noise(experiment, spectra=None, estimators=ESTIMATORS, lmax_L
     registry = {}
     for component in components:
         est = [quadratic_estimator(label, component) for label in base]
-        registry[component, "response"] = [sums.add(e.weight, response_kernel(e.fields, component),
-                                                    scale=1.0 / e.symmetry) for e in est]
-        registry[component, "noise"] = {(i, j): _register_noise(sums, est[i], est[j], "total")
-                                        for i in range(len(base)) for j in range(i, len(base))}
+        registry[component, "response"] = [
+            sums.add(e.weight, response_kernel(e.fields, component), scale=1.0 / e.symmetry) for e in est
+        ]
+        registry[component, "noise"] = {
+            (i, j): _register_noise(sums, est[i], est[j], "total")
+            for i in range(len(base))
+            for j in range(i, len(base))
+        }
     values = sums.evaluate()
 
     L = np.arange(lmax_L + 1)
@@ -477,16 +513,25 @@ def reconstruction_noise(experiment, spectra=None, estimators=ESTIMATORS, lmax_L
             mv_weights[component] = _frozen_array(weights)
     ordered = {label: MappingProxyType(n0[label]) for label in labels}
     settings = {
-        "lmax": lmax, "lmax_L": lmax_L, "lensed_weights": bool(lensed_weights), "estimators": list(labels),
-        "components": list(components), "quadrature_points": sums.last_counts["npoints"],
-        "wigner_series": sums.last_counts["series"], "projections": sums.last_counts["projections"],
+        "lmax": lmax,
+        "lmax_L": lmax_L,
+        "lensed_weights": bool(lensed_weights),
+        "estimators": list(labels),
+        "components": list(components),
+        "quadrature_points": sums.last_counts["npoints"],
+        "wigner_series": sums.last_counts["series"],
+        "projections": sums.last_counts["projections"],
     }
     return ReconstructionNoise(
-        L=_frozen_array(L), n0=MappingProxyType(ordered),
+        L=_frozen_array(L),
+        n0=MappingProxyType(ordered),
         response=MappingProxyType({label: MappingProxyType(response[label]) for label in labels}),
-        covariance=MappingProxyType(covariance), covariance_labels=tuple(base),
-        mv_weights=MappingProxyType(mv_weights), experiment=experiment,
-        phi_spectrum=_frozen_array(spectra.phi[: lmax_L + 1]), settings=MappingProxyType(settings),
+        covariance=MappingProxyType(covariance),
+        covariance_labels=tuple(base),
+        mv_weights=MappingProxyType(mv_weights),
+        experiment=experiment,
+        phi_spectrum=_frozen_array(spectra.phi[: lmax_L + 1]),
+        settings=MappingProxyType(settings),
     )
 
 
@@ -496,5 +541,7 @@ def _check_real(values: np.ndarray, scale: np.ndarray, what: str) -> None:
         bad = np.abs(values.imag) > _IMAGINARY_TOLERANCE * np.maximum(scale, np.finfo(float).tiny)
     bad &= np.abs(values.imag) > 1e-300
     if np.any(bad[..., 2:]):
-        raise RuntimeError(f"internal error: the {what} has a non-negligible imaginary part "
-                           f"(max {np.max(np.abs(values.imag)):.3g}); please report it")
+        raise RuntimeError(
+            f"internal error: the {what} has a non-negligible imaginary part "
+            f"(max {np.max(np.abs(values.imag)):.3g}); please report it"
+        )

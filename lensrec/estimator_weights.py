@@ -166,8 +166,13 @@ class SeparableTerm:
 
     def times(self, factor: complex = 1.0, first=(), lensing=(), second=()) -> SeparableTerm:
         """This term times a constant and extra named factors."""
-        return SeparableTerm(self.coefficient * factor, self.spins, self.first + tuple(first),
-                             self.lensing + tuple(lensing), self.second + tuple(second))
+        return SeparableTerm(
+            self.coefficient * factor,
+            self.spins,
+            self.first + tuple(first),
+            self.lensing + tuple(lensing),
+            self.second + tuple(second),
+        )
 
 
 @dataclass(frozen=True)
@@ -194,8 +199,9 @@ class PairKernel:
 
     def __add__(self, other: PairKernel) -> PairKernel:
         if not isinstance(other, PairKernel) or other.fields != self.fields:
-            raise ValueError(f"can only add kernels on the same field pair, got {self.fields} and "
-                             f"{getattr(other, 'fields', other)}")
+            raise ValueError(
+                f"can only add kernels on the same field pair, got {self.fields} and {getattr(other, 'fields', other)}"
+            )
         return PairKernel(self.fields, self.terms + other.terms)
 
 
@@ -273,8 +279,11 @@ def _spin_kernel(spin: int, component: str, weight: complex) -> list[SeparableTe
     for sigma in (1, -1):
         kappa = 1.0 if component == "gradient" else -1j * sigma
         coefficient = weight * kappa * (-((-1) ** spin) / 2.0)
-        terms.append(SeparableTerm(complex(coefficient), (spin, sigma, -spin - sigma),
-                                   (), ("ladder(0)",), (f"ladder({sigma * spin})",)))
+        terms.append(
+            SeparableTerm(
+                complex(coefficient), (spin, sigma, -spin - sigma), (), ("ladder(0)",), (f"ladder({sigma * spin})",)
+            )
+        )
     return terms
 
 
@@ -358,8 +367,9 @@ class QuadraticEstimator:
         return self.weight.fields
 
 
-def quadratic_estimator(label: str, component: str = "gradient", spectra: str = "cmb",
-                        filters: str = "inverse") -> QuadraticEstimator:
+def quadratic_estimator(
+    label: str, component: str = "gradient", spectra: str = "cmb", filters: str = "inverse"
+) -> QuadraticEstimator:
     """lensrec's estimator for a pair: weight [f^XY]* × filter(X)(ℓ1) × filter(Y)(ℓ2).
 
     Parameters
@@ -374,8 +384,11 @@ def quadratic_estimator(label: str, component: str = "gradient", spectra: str = 
     if label not in ESTIMATOR_FIELDS:
         raise ValueError(f"estimator must be one of {tuple(ESTIMATOR_FIELDS)}, got {label!r}")
     x, y = ESTIMATOR_FIELDS[label]
-    weight = response_kernel((x, y), component, spectra).conjugate().times(
-        first=(f"{filters}:{x}",), second=(f"{filters}:{y}",))
+    weight = (
+        response_kernel((x, y), component, spectra)
+        .conjugate()
+        .times(first=(f"{filters}:{x}",), second=(f"{filters}:{y}",))
+    )
     return QuadraticEstimator(label, component, weight, 2 if x == y else 1)
 
 
@@ -476,7 +489,7 @@ class KernelSums:
                     products[(i1, i2)] = products.get((i1, i2), 0.0) + c * sign1 * sign2 * sign_l
             plans.append(plan)
         requests = []
-        for (names, a, b, lmax) in series_keys:
+        for names, a, b, lmax in series_keys:
             ell = np.arange(lmax + 1, dtype=np.float64)
             requests.append(((2.0 * ell + 1.0) * self.factors.product(names, lmax), a, b))
         series = _series_many(requests, theta, self.nthreads)

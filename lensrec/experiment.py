@@ -172,7 +172,7 @@ class Experiment:
                     noise *= np.exp(ell * (ell + 1) * self.beam_sigma**2)
         if cut:
             noise[: self.ell_min] = np.inf
-            noise[self.ell_max(key) + 1:] = np.inf
+            noise[self.ell_max(key) + 1 :] = np.inf
         return noise
 
     def total_spectra(self, spectra, lmax: int, lensed: bool = True) -> dict[str, np.ndarray]:
@@ -190,7 +190,7 @@ class Experiment:
         total["TE"] = te
         return total
 
-    def replace(self, **changes) -> "Experiment":
+    def replace(self, **changes) -> Experiment:
         """A validated copy with some fields changed (``noise_polarization=None`` re-derives √2 Δ_T)."""
         unknown = [key for key in changes if key not in _field_names()]
         if unknown:
@@ -203,7 +203,7 @@ class Experiment:
         return {name: getattr(self, name) for name in _field_names()}
 
     @classmethod
-    def from_dict(cls, values: dict, source: str = "experiment") -> "Experiment":
+    def from_dict(cls, values: dict, source: str = "experiment") -> Experiment:
         """Build from a mapping of field names, refusing unknown keys with a suggestion."""
         if not isinstance(values, dict):
             raise TypeError(f"{source} must be a table of experiment keys, got {type(values).__name__}")
@@ -213,11 +213,13 @@ class Experiment:
         return cls(**values)
 
     @classmethod
-    def from_toml(cls, path) -> "Experiment":
+    def from_toml(cls, path) -> Experiment:
         """Read an ``[experiment]`` table from a TOML file."""
         path = os.fspath(path)
         if not os.path.isfile(path):
-            raise ValueError(f"experiment file {path!r} does not exist (or name a shipped one: {available_experiments()})")
+            raise ValueError(
+                f"experiment file {path!r} does not exist (or name a shipped one: {available_experiments()})"
+            )
         try:
             with open(path, "rb") as handle:
                 document = tomllib.load(handle)
@@ -273,4 +275,6 @@ def load_experiment(name_or_path) -> Experiment:
         return Experiment.from_toml(os.path.join(EXPERIMENTS_DIR, text + ".toml"))
     suggestion = difflib.get_close_matches(text, available_experiments(), n=1)
     hint = f"; did you mean {suggestion[0]!r}?" if suggestion else "."
-    raise ValueError(f"no experiment file or shipped experiment named {text!r}{hint} Shipped: {available_experiments()}")
+    raise ValueError(
+        f"no experiment file or shipped experiment named {text!r}{hint} Shipped: {available_experiments()}"
+    )

@@ -154,8 +154,14 @@ def write_maps(path, maps, force: bool = False, column_names=("T", "Q", "U")) ->
     with atomic_path(path, force=force, suffix=".fits") as tmp:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            _healpy().write_map(tmp, maps if maps.ndim == 1 else list(maps2), column_names=names,
-                                column_units="uK", dtype=np.float64, overwrite=True)
+            _healpy().write_map(
+                tmp,
+                maps if maps.ndim == 1 else list(maps2),
+                column_names=names,
+                column_units="uK",
+                dtype=np.float64,
+                overwrite=True,
+            )
 
 
 def _nside_of(npix: int, name: str) -> int:
@@ -180,7 +186,9 @@ def _check_fits_readable(path: str, what: str) -> None:
                     if hdu.data is None or len(hdu.data) == 0:
                         raise ValueError("empty extension")
     except Exception as exc:
-        raise ValueError(f"{what} {path!r} is unreadable, truncated or corrupted ({type(exc).__name__}: {exc})") from None
+        raise ValueError(
+            f"{what} {path!r} is unreadable, truncated or corrupted ({type(exc).__name__}: {exc})"
+        ) from None
 
 
 def read_maps(path, fields=(0, 1, 2)) -> np.ndarray:
@@ -194,11 +202,15 @@ def read_maps(path, fields=(0, 1, 2)) -> np.ndarray:
             warnings.simplefilter("ignore")
             maps = _healpy().read_map(path, field=fields, dtype=np.float64)
     except Exception as exc:  # astropy raises many kinds for truncated or corrupted files
-        raise ValueError(f"map file {path!r} is unreadable, truncated or corrupted ({type(exc).__name__}: {exc})") from None
+        raise ValueError(
+            f"map file {path!r} is unreadable, truncated or corrupted ({type(exc).__name__}: {exc})"
+        ) from None
     maps = np.asarray(maps, dtype=np.float64)
     bad_pixels = np.isclose(maps, _healpy().UNSEEN)
     if np.any(bad_pixels):
-        raise ValueError(f"map file {path!r} has {int(bad_pixels.sum())} UNSEEN pixels; fill them (lensrec applies masks explicitly)")
+        raise ValueError(
+            f"map file {path!r} has {int(bad_pixels.sum())} UNSEEN pixels; fill them (lensrec applies masks explicitly)"
+        )
     nside = _nside_of(np.atleast_2d(maps).shape[1], f"map file {path!r}")
     check_nside(nside, f"nside of {path!r}")
     return as_finite_array(maps, f"maps in {path!r}")
@@ -228,7 +240,9 @@ def read_alm(path, hdu=1) -> np.ndarray:
             warnings.simplefilter("ignore")
             alm = _healpy().read_alm(path, hdu=hdu)
     except Exception as exc:
-        raise ValueError(f"alm file {path!r} is unreadable, truncated or corrupted ({type(exc).__name__}: {exc})") from None
+        raise ValueError(
+            f"alm file {path!r} is unreadable, truncated or corrupted ({type(exc).__name__}: {exc})"
+        ) from None
     alm = np.asarray(alm, dtype=np.complex128)
     if not np.all(np.isfinite(alm)):
         raise ValueError(f"alm file {path!r} contains non-finite coefficients")
@@ -256,8 +270,14 @@ def _library_versions() -> dict[str, str]:
     return versions
 
 
-def provenance(command: str, arguments: dict | None = None, experiment=None, seed=None,
-               timings: dict | None = None, extra: dict | None = None) -> dict:
+def provenance(
+    command: str,
+    arguments: dict | None = None,
+    experiment=None,
+    seed=None,
+    timings: dict | None = None,
+    extra: dict | None = None,
+) -> dict:
     """The provenance record stored in every output: versions, commit, inputs, seeds and timings."""
     from . import __version__
 
@@ -272,7 +292,7 @@ def provenance(command: str, arguments: dict | None = None, experiment=None, see
         "libraries": _library_versions(),
         "python": sys.version.split()[0],
         "platform": platform.platform(),
-        "created_utc": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        "created_utc": _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"),
     }
     if extra:
         record.update(extra)

@@ -228,17 +228,19 @@ def _pack(requests, key_of):
         if spin == 0:
             both = minus + plus
             for start in range(0, len(both), 2):
-                calls.append((a, 0, lmax, [], both[start:start + 2]))
+                calls.append((a, 0, lmax, [], both[start : start + 2]))
         else:
             for start in range(0, max(len(minus), len(plus)), 2):
-                calls.append((a, spin, lmax, minus[start:start + 2], plus[start:start + 2]))
+                calls.append((a, spin, lmax, minus[start : start + 2], plus[start : start + 2]))
     return calls
 
 
 def _scatter(finished, prepared, live, results) -> None:
     """Put each packed call's outputs back in request order, times the canonicalisation sign."""
     for (_, spin, _, minus, plus), out in finished:
-        slots = list(enumerate(plus)) if spin == 0 else list(enumerate(minus)) + [(2 + k, i) for k, i in enumerate(plus)]
+        slots = (
+            list(enumerate(plus)) if spin == 0 else list(enumerate(minus)) + [(2 + k, i) for k, i in enumerate(plus)]
+        )
         for slot, i in slots:
             results[live[i]] = prepared[live[i]][3] * out[slot]
 
@@ -269,8 +271,9 @@ def _series_many(requests, theta: np.ndarray, nthreads: int) -> list[np.ndarray]
 
     def job(call):
         a, spin, lmax, minus, plus = call
-        out = _ducc_forward(a, spin, lmax, theta, [prepared[live[i]][0] for i in minus],
-                            [prepared[live[i]][0] for i in plus])
+        out = _ducc_forward(
+            a, spin, lmax, theta, [prepared[live[i]][0] for i in minus], [prepared[live[i]][0] for i in plus]
+        )
         return call, out
 
     _scatter(_run([functools.partial(job, call) for call in calls], nthreads), prepared, live, results)
@@ -294,8 +297,9 @@ def _project_many(requests, theta: np.ndarray, weights: np.ndarray, nthreads: in
 
     def job(call):
         a, spin, lmax, minus, plus = call
-        out = _ducc_adjoint(a, spin, lmax, theta, [prepared[live[i]][0] for i in minus],
-                            [prepared[live[i]][0] for i in plus])
+        out = _ducc_adjoint(
+            a, spin, lmax, theta, [prepared[live[i]][0] for i in minus], [prepared[live[i]][0] for i in plus]
+        )
         return call, out
 
     _scatter(_run([functools.partial(job, call) for call in calls], nthreads), prepared, live, results)

@@ -13,7 +13,15 @@ import numpy as np
 
 from .io import atomic_path, atomic_write_text
 
-__all__ = ["PALETTE", "ESTIMATOR_COLOURS", "new_figure", "save_figure", "tidy_log_axis", "write_html_report", "mollweide_array"]
+__all__ = [
+    "PALETTE",
+    "ESTIMATOR_COLOURS",
+    "new_figure",
+    "save_figure",
+    "tidy_log_axis",
+    "write_html_report",
+    "mollweide_array",
+]
 
 # lensrec's own palette: ink, slate, and a warm/cool pair for comparisons
 PALETTE = {
@@ -47,8 +55,7 @@ def _pyplot():
 def new_figure(ncols: int = 1, nrows: int = 1, width: float = 6.4, height: float = 4.2):
     """A figure with lensrec's style: light grid, no top/right spines."""
     plt = _pyplot()
-    fig, axes = plt.subplots(nrows, ncols, figsize=(width * ncols, height * nrows), squeeze=False,
-                             layout="constrained")
+    fig, axes = plt.subplots(nrows, ncols, figsize=(width * ncols, height * nrows), squeeze=False, layout="constrained")
     for ax in axes.flat:
         ax.grid(True, color=PALETTE["grid"], linewidth=0.6)
         for side in ("top", "right"):

@@ -8,9 +8,9 @@ from __future__ import annotations
 import gzip
 import json
 import os
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from types import MappingProxyType
-from typing import Mapping
 
 import numpy as np
 
@@ -63,19 +63,26 @@ class Spectra:
 
     def __post_init__(self):
         lengths = set()
-        for label, group, keys in (("unlensed", self.unlensed, CMB_KEYS), ("lensed", self.lensed, CMB_KEYS),
-                                   ("tensor", self.tensor, TENSOR_KEYS)):
+        for label, group, keys in (
+            ("unlensed", self.unlensed, CMB_KEYS),
+            ("lensed", self.lensed, CMB_KEYS),
+            ("tensor", self.tensor, TENSOR_KEYS),
+        ):
             if not isinstance(group, Mapping):
                 raise TypeError(f"{label} must be a mapping of spectrum name to array, got {type(group).__name__}")
             missing = [k for k in keys if k not in group]
             extra = [k for k in group if k not in keys]
             if missing or extra:
-                raise ValueError(f"{label} spectra must have exactly the keys {keys}; missing {missing}, unexpected {extra}")
+                raise ValueError(
+                    f"{label} spectra must have exactly the keys {keys}; missing {missing}, unexpected {extra}"
+                )
             checked = {}
             for key in keys:
                 array = as_finite_array(group[key], f"{label}[{key!r}]", ndim=1)
                 if key != "TE" and np.any(array < 0):
-                    raise ValueError(f"{label}[{key!r}] must be non-negative (an auto-spectrum); found {array.min():.3g}")
+                    raise ValueError(
+                        f"{label}[{key!r}] must be non-negative (an auto-spectrum); found {array.min():.3g}"
+                    )
                 lengths.add(array.size)
                 checked[key] = _frozen(array)
             object.__setattr__(self, label, MappingProxyType(checked))
@@ -105,7 +112,7 @@ class Spectra:
                 out[key] = out[key] + r * self.tensor[key]
         return out
 
-    def truncated(self, lmax: int) -> "Spectra":
+    def truncated(self, lmax: int) -> Spectra:
         """A copy restricted to ℓ ≤ ``lmax``."""
         lmax = as_int(lmax, "lmax", minimum=2, maximum=self.lmax)
         cut = slice(0, lmax + 1)
@@ -117,10 +124,11 @@ class Spectra:
             metadata=dict(self.metadata),
         )
 
-    def with_phi(self, phi) -> "Spectra":
+    def with_phi(self, phi) -> Spectra:
         """A copy with another C_L^φφ (the lensed columns are left as they are)."""
-        return Spectra(unlensed=self.unlensed, lensed=self.lensed, phi=phi, tensor=self.tensor,
-                       metadata=dict(self.metadata))
+        return Spectra(
+            unlensed=self.unlensed, lensed=self.lensed, phi=phi, tensor=self.tensor, metadata=dict(self.metadata)
+        )
 
 
 def load_spectra_file(path: str) -> Spectra:
@@ -139,7 +147,7 @@ def load_spectra_file(path: str) -> Spectra:
                 if not line.startswith("#"):
                     break
                 if line.startswith("# parameters:"):
-                    metadata = json.loads(line[len("# parameters:"):])
+                    metadata = json.loads(line[len("# parameters:") :])
         table = np.loadtxt(path, comments="#", ndmin=2)
     except (OSError, EOFError, ValueError, json.JSONDecodeError) as exc:
         raise ValueError(f"spectra file {path!r} is unreadable or corrupted: {exc}") from None

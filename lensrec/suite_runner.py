@@ -29,8 +29,8 @@ import json
 import os
 import threading
 import time
+from collections.abc import Callable
 from dataclasses import dataclass, field
-from typing import Callable
 
 import numpy as np
 
@@ -64,7 +64,6 @@ def _plain(value):
     if isinstance(value, tuple):
         return list(value)
     raise TypeError(f"suite settings must be plain JSON values, got {type(value).__name__}")
-
 
 
 def _task_name(task: Callable) -> str:
@@ -115,7 +114,7 @@ class SuiteCache:
         return os.path.join(self.directory, MANIFEST)
 
     @classmethod
-    def open(cls, directory: str, settings: dict, task_name: str) -> "SuiteCache":
+    def open(cls, directory: str, settings: dict, task_name: str) -> SuiteCache:
         """Open (or create) the cache in ``directory``, refusing one made with other settings."""
         directory = os.fspath(directory)
         os.makedirs(os.path.join(directory, "sims"), exist_ok=True)
@@ -124,8 +123,11 @@ class SuiteCache:
             manifest = read_json(cache.manifest_path)
             if manifest.get("fingerprint") != settings_fingerprint(settings) or manifest.get("task") != task_name:
                 old = manifest.get("settings", {})
-                keys = sorted(k for k in set(old) | set(settings)
-                              if _fingerprinted(k) and old.get(k) != _jsonable(settings.get(k)))
+                keys = sorted(
+                    k
+                    for k in set(old) | set(settings)
+                    if _fingerprinted(k) and old.get(k) != _jsonable(settings.get(k))
+                )
                 if manifest.get("task") != task_name:
                     keys.append(f"task ({manifest.get('task')} vs {task_name})")
                 raise ValueError(
@@ -159,18 +161,24 @@ class SuiteCache:
             self.write_manifest(task_name)
 
     def write_manifest(self, task_name: str) -> None:
-        write_json(self.manifest_path, {
-            "format_version": FORMAT_VERSION,
-            "task": task_name,
-            "fingerprint": settings_fingerprint(self.settings),
-            "settings": _jsonable(self.settings),
-            "entries": {str(k): self.entries[k] for k in sorted(self.entries)},
-        }, force=True)
+        write_json(
+            self.manifest_path,
+            {
+                "format_version": FORMAT_VERSION,
+                "task": task_name,
+                "fingerprint": settings_fingerprint(self.settings),
+                "settings": _jsonable(self.settings),
+                "entries": {str(k): self.entries[k] for k in sorted(self.entries)},
+            },
+            force=True,
+        )
 
     def load(self, index: int) -> dict[str, np.ndarray]:
         """The stored arrays of simulation ``index`` (checksum verified first)."""
         if not self.verify(index):
-            raise ValueError(f"simulation {index} of suite {self.directory!r} is missing or fails its checksum; rerun the suite")
+            raise ValueError(
+                f"simulation {index} of suite {self.directory!r} is missing or fails its checksum; rerun the suite"
+            )
         with np.load(self.path_of(index), allow_pickle=False) as data:
             return {key: data[key] for key in data.files}
 
@@ -194,9 +202,17 @@ class SuiteRun:
     seconds: float
 
 
-def run_suite(settings: dict, directory, task: Callable, executor="serial", max_workers: int | None = None,
-              progress=True, cancel: threading.Event | None = None, indices=None,
-              label: str = "simulations") -> SuiteRun:
+def run_suite(
+    settings: dict,
+    directory,
+    task: Callable,
+    executor="serial",
+    max_workers: int | None = None,
+    progress=True,
+    cancel: threading.Event | None = None,
+    indices=None,
+    label: str = "simulations",
+) -> SuiteRun:
     """Run ``task`` for every simulation index of the suite, reusing verified cached results.
 
     Parameters
@@ -242,8 +258,11 @@ def run_suite(settings: dict, directory, task: Callable, executor="serial", max_
             corrupt.append(index)
             import warnings
 
-            warnings.warn(f"suite {cache.directory!r}: simulation {index} failed its checksum; recomputing it",
-                          RuntimeWarning, stacklevel=2)
+            warnings.warn(
+                f"suite {cache.directory!r}: simulation {index} failed its checksum; recomputing it",
+                RuntimeWarning,
+                stacklevel=2,
+            )
             cache.forget(index, task_name)
         todo.append(index)
     if cache.entries == {} and not os.path.exists(cache.manifest_path):
@@ -275,8 +294,14 @@ def run_suite(settings: dict, directory, task: Callable, executor="serial", max_
     finally:
         if bar is not None:
             bar.close()
-    return SuiteRun(cache=cache, computed=sorted(computed), reused=reused, recomputed_corrupt=corrupt,
-                    cancelled=cancelled, seconds=time.perf_counter() - start)
+    return SuiteRun(
+        cache=cache,
+        computed=sorted(computed),
+        reused=reused,
+        recomputed_corrupt=corrupt,
+        cancelled=cancelled,
+        seconds=time.perf_counter() - start,
+    )
 
 
 def _progress(progress, total: int, initial: int, label: str = "simulations"):
@@ -358,8 +383,9 @@ def gaussian_field_task(settings: dict, index: int) -> dict[str, np.ndarray]:
     alm *= 1.0 / (ell + 1.0)
     base = ducc0.healpix.Healpix_Base(nside, "RING")
     geometry = base.sht_info()
-    field_map = ducc0.sht.synthesis(alm=alm[None, :], lmax=lmax, spin=0,
-                                    nthreads=int(settings.get("threads_per_task", 1)), **geometry)[0]
+    field_map = ducc0.sht.synthesis(
+        alm=alm[None, :], lmax=lmax, spin=0, nthreads=int(settings.get("threads_per_task", 1)), **geometry
+    )[0]
     weight = np.where(np.arange(nalm) <= lmax, 1.0, 2.0)  # the first lmax+1 entries are m = 0
     power = np.bincount(ell, weights=weight * np.abs(alm) ** 2, minlength=lmax + 1) / (2 * np.arange(lmax + 1) + 1)
     return {"alm": alm, "map": field_map, "power": power}

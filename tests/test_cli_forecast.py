@@ -10,15 +10,31 @@ from lensrec.cli import main
 
 def small_experiment(tmp_path):
     path = tmp_path / "small.toml"
-    lensrec.Experiment(name="Small Test Survey", noise_temperature=2.0, beam_fwhm=2.0,
-                       ell_max_temperature=400, ell_max_polarization=500).to_toml(path)
+    lensrec.Experiment(
+        name="Small Test Survey",
+        noise_temperature=2.0,
+        beam_fwhm=2.0,
+        ell_max_temperature=400,
+        ell_max_polarization=500,
+    ).to_toml(path)
     return str(path)
 
 
 def test_forecast_writes_the_documented_json(tmp_path, capsys):
     out = tmp_path / "n0.json"
-    code = main(["forecast", "--experiment", small_experiment(tmp_path), "--lmax-L", "300", "--out", str(out),
-                 "--nthreads", "2"])
+    code = main(
+        [
+            "forecast",
+            "--experiment",
+            small_experiment(tmp_path),
+            "--lmax-L",
+            "300",
+            "--out",
+            str(out),
+            "--nthreads",
+            "2",
+        ]
+    )
     assert code == 0
     document = json.loads(out.read_text())
     assert set(document) == {"L", "n0", "snr", "provenance"}
@@ -42,8 +58,22 @@ def test_forecast_writes_the_documented_json(tmp_path, capsys):
 
 def test_forecast_subset_of_estimators(tmp_path):
     out = tmp_path / "n0.json"
-    assert main(["forecast", "--experiment", small_experiment(tmp_path), "--estimators", "TT,EB,MV",
-                 "--lmax-L", "200", "--out", str(out)]) == 0
+    assert (
+        main(
+            [
+                "forecast",
+                "--experiment",
+                small_experiment(tmp_path),
+                "--estimators",
+                "TT,EB,MV",
+                "--lmax-L",
+                "200",
+                "--out",
+                str(out),
+            ]
+        )
+        == 0
+    )
     document = json.loads(out.read_text())
     assert list(document["n0"]) == ["TT", "EB", "MV"] and list(document["snr"]) == ["TT", "EB", "MV"]
 

@@ -130,15 +130,20 @@ def general_response(tab, X, Y, C, component):
 @pytest.fixture(scope="module")
 def brute(fiducial):
     """Module result and OH03 brute-force sums for a small experiment with distinct T and P cuts."""
-    experiment = lensrec.Experiment(name="brute", noise_temperature=4.0, beam_fwhm=20.0, ell_min=4,
-                                    ell_max_temperature=90, ell_max_polarization=LMAX)
+    experiment = lensrec.Experiment(
+        name="brute",
+        noise_temperature=4.0,
+        beam_fwhm=20.0,
+        ell_min=4,
+        ell_max_temperature=90,
+        ell_max_polarization=LMAX,
+    )
     spectra = fiducial.truncated(LMAX)
     result = reconstruction_noise(experiment, spectra, lmax_L=LMAX, nthreads=2)
     C = {k: v[: LMAX + 1] for k, v in spectra.cmb(lensed=True).items()}
     total = experiment.total_spectra(spectra, LMAX)
     total = {k: np.where(np.isfinite(v), v, 0.0) for k, v in total.items()}
-    inverse = {X: np.where(total[X + X] > 0, 1.0 / np.where(total[X + X] > 0, total[X + X], 1.0), 0.0)
-               for X in "TEB"}
+    inverse = {X: np.where(total[X + X] > 0, 1.0 / np.where(total[X + X] > 0, total[X + X], 1.0), 0.0) for X in "TEB"}
 
     def tot(a, b):
         key = "".join(sorted(a + b, key="TEB".index))
@@ -151,8 +156,9 @@ def brute(fiducial):
             f, W, R = {}, {}, {}
             for label in LABELS:
                 X, Y = label
-                f[label] = (table_one(tab, label, C) if component == "gradient"
-                            else general_response(tab, X, Y, C, "curl"))
+                f[label] = (
+                    table_one(tab, label, C) if component == "gradient" else general_response(tab, X, Y, C, "curl")
+                )
                 eta = 2 if X == Y else 1
                 W[label] = np.conj(f[label]) * inverse[X][:, None] * inverse[Y][None, :]
                 R[label] = np.sum(W[label] * f[label]) / (eta * (2 * L + 1))
@@ -206,11 +212,13 @@ def test_te_noise_is_bounded_by_the_optimal_te_weight(fiducial):
     # OH03 §III: the optimal TE weight g = [C^EE_1 C^TT_2 f*_12 − (−1)^Σ C^TE_1 C^TE_2 f*_21] /
     # [C^TT_1 C^EE_2 C^EE_1 C^TT_2 − (C^TE_1 C^TE_2)²] has N0 = (2L+1)/Σ f g, a lower bound for any TE-pair
     # estimator, in particular for lensrec's diagonally filtered one.
-    experiment = lensrec.Experiment(name="te", noise_temperature=1.0, beam_fwhm=10.0, ell_min=2,
-                                    ell_max_temperature=80, ell_max_polarization=80)
+    experiment = lensrec.Experiment(
+        name="te", noise_temperature=1.0, beam_fwhm=10.0, ell_min=2, ell_max_temperature=80, ell_max_polarization=80
+    )
     spectra = fiducial.truncated(80)
-    result = reconstruction_noise(experiment, spectra, estimators=("TE",), lmax_L=80, components=("gradient",),
-                                  nthreads=2)
+    result = reconstruction_noise(
+        experiment, spectra, estimators=("TE",), lmax_L=80, components=("gradient",), nthreads=2
+    )
     C = {k: v[:81] for k, v in spectra.cmb(lensed=True).items()}
     total = {k: np.where(np.isfinite(v), v, 0.0) for k, v in experiment.total_spectra(spectra, 80).items()}
     ell = np.arange(81)
@@ -233,11 +241,19 @@ def test_te_noise_is_bounded_by_the_optimal_te_weight(fiducial):
 
 
 def test_unlensed_weights_match_brute_force(fiducial):
-    experiment = lensrec.Experiment(name="brute", noise_temperature=2.0, beam_fwhm=15.0, ell_min=2,
-                                    ell_max_temperature=60, ell_max_polarization=60)
+    experiment = lensrec.Experiment(
+        name="brute", noise_temperature=2.0, beam_fwhm=15.0, ell_min=2, ell_max_temperature=60, ell_max_polarization=60
+    )
     spectra = fiducial.truncated(60)
-    result = reconstruction_noise(experiment, spectra, estimators=("TT", "EB"), lmax_L=60, lensed_weights=False,
-                                  components=("gradient",), nthreads=2)
+    result = reconstruction_noise(
+        experiment,
+        spectra,
+        estimators=("TT", "EB"),
+        lmax_L=60,
+        lensed_weights=False,
+        components=("gradient",),
+        nthreads=2,
+    )
     C = {k: v[:61] for k, v in spectra.cmb(lensed=False).items()}
     total = experiment.total_spectra(spectra, 60)
     inverse = {X: np.where(np.isfinite(total[X + X]), 1.0 / total[X + X], 0.0) for X in "TEB"}
@@ -246,7 +262,9 @@ def test_unlensed_weights_match_brute_force(fiducial):
         for label in ("TT", "EB"):
             X, Y = label
             f = table_one(tab, label, C)
-            R = np.sum(np.abs(f) ** 2 * inverse[X][:, None] * inverse[Y][None, :]) / ((2 if X == Y else 1) * (2 * L + 1))
+            R = np.sum(np.abs(f) ** 2 * inverse[X][:, None] * inverse[Y][None, :]) / (
+                (2 if X == Y else 1) * (2 * L + 1)
+            )
             # optimal weights: N0 = A_L = 1/R_L (OH03 §III); rounding as above
             assert np.isclose(result.n0[label]["gradient"][L], 1 / R, rtol=1e-8, atol=0)
 
@@ -257,10 +275,12 @@ def test_low_L_accuracy_at_l_max_1000(fiducial):
     # Wigner-d recursions by ~(l/L)² (module docstring, "Accuracy"): 3e-7 measured at L = 2, falling as 1/L².
     # Allowed: 5e-6/L², i.e. that measurement with a factor 4 allowance for other spectra and estimators.
     lmax = 1000
-    experiment = lensrec.Experiment(name="low", noise_temperature=6.0, beam_fwhm=1.4, ell_min=2,
-                                    ell_max_temperature=lmax, ell_max_polarization=lmax)
-    result = reconstruction_noise(experiment, fiducial, estimators=("TT", "EB"), lmax_L=40, components=("gradient",),
-                                  nthreads=2)
+    experiment = lensrec.Experiment(
+        name="low", noise_temperature=6.0, beam_fwhm=1.4, ell_min=2, ell_max_temperature=lmax, ell_max_polarization=lmax
+    )
+    result = reconstruction_noise(
+        experiment, fiducial, estimators=("TT", "EB"), lmax_L=40, components=("gradient",), nthreads=2
+    )
     C = fiducial.cmb(lensed=True)
     total = experiment.total_spectra(fiducial, lmax)
     inverse = {X: np.where(np.isfinite(total[X + X]), 1.0 / total[X + X], 0.0) for X in "TEB"}
@@ -276,8 +296,10 @@ def test_low_L_accuracy_at_l_max_1000(fiducial):
                     f = (C["TT"][l1] * b21 + C["TT"][l2] * b12) * norm * w0
                     sums["TT"] += f * f * inverse["T"][l1] * inverse["T"][l2] / 2
                 else:  # EB: odd l1 + L + l2, ₂F⁻ = ₂F there
-                    f = (C["EE"][l1] * b21 * wigners.wigner_3j(l2, L, l1, 2, 0, -2)
-                         + C["BB"][l2] * b12 * wigners.wigner_3j(l1, L, l2, 2, 0, -2)) * norm
+                    f = (
+                        C["EE"][l1] * b21 * wigners.wigner_3j(l2, L, l1, 2, 0, -2)
+                        + C["BB"][l2] * b12 * wigners.wigner_3j(l1, L, l2, 2, 0, -2)
+                    ) * norm
                     sums["EB"] += f * f * inverse["E"][l1] * inverse["B"][l2]
         for label, value in sums.items():
             got = result.response[label]["gradient"][L]
@@ -293,15 +315,21 @@ def test_spin1_kernel_reproduces_oh03_F():
         for s in (0, 2, -2):
             reference = oh03_F(tab, s)
             # double-precision 3j values summed over σ = ±1 (partial cancellation): 1e-11 of the table scale
-            assert np.allclose(spin1_kernel(tab, s, "gradient"), reference, rtol=0, atol=1e-11 * np.abs(reference).max())
+            assert np.allclose(
+                spin1_kernel(tab, s, "gradient"), reference, rtol=0, atol=1e-11 * np.abs(reference).max()
+            )
 
 
 def test_general_construction_reproduces_table_one(fiducial):
     C = {k: v[:41] for k, v in fiducial.cmb(lensed=True).items()}
     tab = Tables(17, 40)
     for label in LABELS:
-        assert np.allclose(general_response(tab, label[0], label[1], C, "gradient"), table_one(tab, label, C),
-                           rtol=1e-12, atol=1e-12 * np.abs(table_one(tab, label, C)).max())
+        assert np.allclose(
+            general_response(tab, label[0], label[1], C, "gradient"),
+            table_one(tab, label, C),
+            rtol=1e-12,
+            atol=1e-12 * np.abs(table_one(tab, label, C)).max(),
+        )
 
 
 def test_eb_sign_from_the_polarization_symmetry(fiducial):
@@ -317,8 +345,10 @@ def test_eb_sign_from_the_polarization_symmetry(fiducial):
     f_be = tab.parity * f_eb.T
     scale = np.abs(f_ee).max()
     assert np.abs(f_ee - f_bb + 1j * (f_eb + f_be)).max() < 1e-12 * scale
-    f_eb_flipped = 1j * (C["EE"][:, None] * ((oh03_F(tab, 2) - oh03_F(tab, -2)) / 2).T
-                         - C["BB"][None, :] * (oh03_F(tab, 2) - oh03_F(tab, -2)) / 2)
+    f_eb_flipped = 1j * (
+        C["EE"][:, None] * ((oh03_F(tab, 2) - oh03_F(tab, -2)) / 2).T
+        - C["BB"][None, :] * (oh03_F(tab, 2) - oh03_F(tab, -2)) / 2
+    )
     f_be_flipped = tab.parity * f_eb_flipped.T
     assert np.abs(f_ee - f_bb + 1j * (f_eb_flipped + f_be_flipped)).max() > 1e-3 * scale
 
@@ -327,8 +357,15 @@ def test_eb_sign_from_the_polarization_symmetry(fiducial):
 @pytest.fixture(scope="module")
 def survey_results(fiducial):
     def run(noise, beam, **kw):
-        e = lensrec.Experiment(name="survey", noise_temperature=noise, beam_fwhm=beam, ell_min=2,
-                               ell_max_temperature=3000, ell_max_polarization=3000, **kw)
+        e = lensrec.Experiment(
+            name="survey",
+            noise_temperature=noise,
+            beam_fwhm=beam,
+            ell_min=2,
+            ell_max_temperature=3000,
+            ell_max_polarization=3000,
+            **kw,
+        )
         return reconstruction_noise(e, fiducial, lmax_L=3000, nthreads=2)
 
     return {"deep": run(0.5, 1.0), "shallow": run(20.0, 4.0), "mid": run(6.0, 1.4)}
@@ -391,8 +428,9 @@ def test_optimal_estimators_have_n0_equal_to_normalisation(survey_results):
         for label in ("TT", "EE", "TB", "EB"):
             # rounding: at L ≪ l the ladder terms cancel to O(lL), amplifying ε by ~(l/L)²: ≤ 3e-10 measured
             # at L = 2 (1e-13 typical), so allow 1e-9
-            assert np.allclose(result.n0[label][component][L] * result.response[label][component][L], 1.0,
-                               rtol=1e-9, atol=0), label
+            assert np.allclose(
+                result.n0[label][component][L] * result.response[label][component][L], 1.0, rtol=1e-9, atol=0
+            ), label
         # TE's cross term Σ W₁₂ W*₂₁ (−1)^Σ C^TE C^TE (either sign) makes N0 differ from A_L
         te = result.n0["TE"][component][L] * result.response["TE"][component][L]
         assert np.max(np.abs(te - 1)) > 0.01
@@ -401,8 +439,17 @@ def test_optimal_estimators_have_n0_equal_to_normalisation(survey_results):
 def test_n0_scales_as_noise_power_squared_when_noise_dominates(fiducial):
     # With N_l ≫ C_l the filters are 1/N_l and R ∝ 1/N², so N0 ∝ (noise power)² = Δ⁴ (common practice).
     # Per mode the ratio is 16 (1 + C/N₂)²/(1 + C/N₁)², so it departs from 16 by less than 2·max(C/N₁).
-    experiments = [lensrec.Experiment(name="n", noise_temperature=d, beam_fwhm=0.0, ell_min=1000,
-                                      ell_max_temperature=2000, ell_max_polarization=2000) for d in (5e4, 1e5)]
+    experiments = [
+        lensrec.Experiment(
+            name="n",
+            noise_temperature=d,
+            beam_fwhm=0.0,
+            ell_min=1000,
+            ell_max_temperature=2000,
+            ell_max_polarization=2000,
+        )
+        for d in (5e4, 1e5)
+    ]
     results = [reconstruction_noise(e, fiducial, estimators=("TT", "EB"), nthreads=2) for e in experiments]
     signal = fiducial.cmb(lensed=True)
     used = slice(1000, 2001)
@@ -416,8 +463,9 @@ def test_n0_scales_as_noise_power_squared_when_noise_dominates(fiducial):
 
 # ------------------------------------------------------------------------------------ general weights
 def test_general_machinery_other_sources_and_other_totals(fiducial):
-    e1 = lensrec.Experiment(name="a", noise_temperature=3.0, beam_fwhm=3.0, ell_max_temperature=1500,
-                            ell_max_polarization=1500)
+    e1 = lensrec.Experiment(
+        name="a", noise_temperature=3.0, beam_fwhm=3.0, ell_max_temperature=1500, ell_max_polarization=1500
+    )
     e2 = e1.replace(noise_temperature=100.0, noise_polarization=None, beam_fwhm=10.0)  # noise-dominated above ~1000
     factors = standard_factors(e1, fiducial, 1500)
     other = standard_factors(e2, fiducial, 1500, total_prefix="total2", filter_prefix="inverse2")
@@ -427,8 +475,9 @@ def test_general_machinery_other_sources_and_other_totals(fiducial):
     tt = quadratic_estimator("TT")
     eb = quadratic_estimator("EB")
     # gradient estimators do not respond to a curl source on the full sky (parity; OH03 §II, NYT12)
-    grad_on_curl = estimator_responses([tt, eb], [response_kernel("TT", "curl"), response_kernel("EB", "curl")],
-                                       factors, 1500, 400)
+    grad_on_curl = estimator_responses(
+        [tt, eb], [response_kernel("TT", "curl"), response_kernel("EB", "curl")], factors, 1500, 400
+    )
     own = estimator_responses([tt, eb], [response_kernel("TT"), response_kernel("EB")], factors, 1500, 400)
     for cross, self_ in zip(grad_on_curl, own, strict=True):
         assert np.max(np.abs(cross[2:])) < 1e-12 * np.max(np.abs(self_[2:]))
@@ -461,7 +510,9 @@ def test_result_shape_labels_and_snr(survey_results):
     snr = result.lensing_snr()
     assert snr["MV"] >= max(snr[label] for label in LABELS)
     # (S/N)² is linear in f_sky
-    assert np.isclose(result.lensing_snr(sky_fraction=0.25)["TT"] ** 2 * 4, result.lensing_snr(sky_fraction=1.0)["TT"] ** 2)
+    assert np.isclose(
+        result.lensing_snr(sky_fraction=0.25)["TT"] ** 2 * 4, result.lensing_snr(sky_fraction=1.0)["TT"] ** 2
+    )
     # restricted ranges add up: (S/N)² over [2, 100] + [101, 3000] = total
     parts = result.lensing_snr(L_max=100)["EB"] ** 2 + result.lensing_snr(L_min=101)["EB"] ** 2
     assert np.isclose(parts, snr["EB"] ** 2, rtol=1e-12)

@@ -34,8 +34,15 @@ def test_one_over_f_knee_doubles_the_noise_at_the_knee():
 
 
 def test_toml_round_trip_and_refusal_to_overwrite(tmp_path):
-    e = Experiment(name="Round Trip", noise_temperature=3.3, beam_fwhm=1.5, ell_min=40, sky_fraction=0.25,
-                   ell_knee_polarization=200.0, alpha_knee_polarization=-2.0)
+    e = Experiment(
+        name="Round Trip",
+        noise_temperature=3.3,
+        beam_fwhm=1.5,
+        ell_min=40,
+        sky_fraction=0.25,
+        ell_knee_polarization=200.0,
+        alpha_knee_polarization=-2.0,
+    )
     path = tmp_path / "e.toml"
     e.to_toml(path)
     assert Experiment.from_toml(path) == e

@@ -69,20 +69,38 @@ def flat_sky_n0(L, label, component, C, total, ell_min, ell_max, n_angle=128):
         return 1 / R
     # TE: N = ∫ [f² C^TT C^EE + f(l1,l2) f(l2,l1) C^TE_1 C^TE_2] / (C^TT_1 C^EE_2)² … with swapped roles
     f_swapped = weight_fn(label, l2, l1g, d2, d1, c2, -s2)
-    cross = f * f_swapped * at(total["TE"], l1g) * at(total["TE"], l2) * inv_x * inv_y / (at(total["TT"], l2) * at(total["EE"], l1g))
+    cross = (
+        f
+        * f_swapped
+        * at(total["TE"], l1g)
+        * at(total["TE"], l2)
+        * inv_x
+        * inv_y
+        / (at(total["TT"], l2) * at(total["EE"], l1g))
+    )
     N = R + np.sum(measure * cross)
     return N / R**2
 
 
 @pytest.fixture(scope="module")
 def both(fiducial):
-    experiment = lensrec.Experiment(name="flat", noise_temperature=3.0, beam_fwhm=3.0, ell_min=30,
-                                    ell_max_temperature=LMAX, ell_max_polarization=LMAX)
+    experiment = lensrec.Experiment(
+        name="flat",
+        noise_temperature=3.0,
+        beam_fwhm=3.0,
+        ell_min=30,
+        ell_max_temperature=LMAX,
+        ell_max_polarization=LMAX,
+    )
     full = reconstruction_noise(experiment, fiducial, estimators=LABELS, nthreads=2)
     C = {k: v[: LMAX + 1] for k, v in fiducial.cmb(lensed=True).items()}
     total = {k: v.copy() for k, v in experiment.total_spectra(fiducial, LMAX).items()}
-    flat = {(L, label, component): flat_sky_n0(L, label, component, C, total, 30, LMAX)
-            for L in L_CHECK for label in LABELS for component in ("gradient", "curl")}
+    flat = {
+        (L, label, component): flat_sky_n0(L, label, component, C, total, 30, LMAX)
+        for L in L_CHECK
+        for label in LABELS
+        for component in ("gradient", "curl")
+    }
     return full, flat
 
 

@@ -28,7 +28,9 @@ def reference_d(lmax, beta):
 
 def three_j_product(ls, ms, ns):
     """2 (l1 l2 l3; m)(l1 l2 l3; n) from wigners, 0 where a projection exceeds its l (wigners aborts there)."""
-    if any(abs(m) > ell for m, ell in zip(ms, ls, strict=True)) or any(abs(n) > ell for n, ell in zip(ns, ls, strict=True)):
+    if any(abs(m) > ell for m, ell in zip(ms, ls, strict=True)) or any(
+        abs(n) > ell for n, ell in zip(ns, ls, strict=True)
+    ):
         return 0.0
     return 2 * wigners.wigner_3j(*ls, *ms) * wigners.wigner_3j(*ls, *ns)
 
@@ -123,9 +125,14 @@ def test_quadrature_identity_for_random_triples(rng):
         checked += 1
 
 
-@pytest.mark.parametrize("triple,spins", [((6000, 5000, 2500), ((2, -1, -1), (0, 1, -1))),
-                                          ((4000, 3999, 1), ((-2, 1, 1), (2, -1, -1))),
-                                          ((3000, 3100, 2900), ((4, -2, -2), (-3, 0, 3)))])
+@pytest.mark.parametrize(
+    "triple,spins",
+    [
+        ((6000, 5000, 2500), ((2, -1, -1), (0, 1, -1))),
+        ((4000, 3999, 1), ((-2, 1, 1), (2, -1, -1))),
+        ((3000, 3100, 2900), ((4, -2, -2), (-3, 0, 3))),
+    ],
+)
 def test_quadrature_identity_at_high_multipoles(triple, spins):
     (l1, l2, l3), (ms, ns) = triple, spins
     x, w = gauss_legendre(npoints_for(l1, l2, l3))

@@ -45,8 +45,12 @@ def test_fiducial_file_matches_a_fresh_camb_run(fiducial):
     pytest.importorskip("camb")
     fresh = lensrec.spectra_from_camb(lmax=3000)
     for key in ("TT", "EE", "TE"):
-        np.testing.assert_allclose(fresh.lensed[key][2:2500], fiducial.lensed[key][2:2500], rtol=1e-3,
-                                   atol=1e-6 * np.abs(fiducial.lensed[key][2:2500]).max())  # camb lmax changes accuracy settings slightly
+        np.testing.assert_allclose(
+            fresh.lensed[key][2:2500],
+            fiducial.lensed[key][2:2500],
+            rtol=1e-3,
+            atol=1e-6 * np.abs(fiducial.lensed[key][2:2500]).max(),
+        )  # camb lmax changes accuracy settings slightly
     np.testing.assert_allclose(fresh.phi[2:2500], fiducial.phi[2:2500], rtol=1e-3)
 
 
@@ -78,7 +82,7 @@ def test_spectra_validation_rejects_bad_arrays(fiducial):
 
 def test_corrupted_spectra_file_is_reported(tmp_path):
     path = tmp_path / "broken.txt"
-    path.write_text("# parameters: {\"columns\": [\"ell\", \"x\"]}\n0 1\n1 2 3\n")
+    path.write_text('# parameters: {"columns": ["ell", "x"]}\n0 1\n1 2 3\n')
     with pytest.raises(ValueError, match="unreadable or corrupted|columns"):
         load_spectra_file(path)
     with pytest.raises(ValueError, match="does not exist"):

@@ -23,11 +23,16 @@ def _same(a, b):
 
 def test_serial_processes_and_dask_give_bit_identical_results(tmp_path):
     serial = run_suite(SETTINGS, tmp_path / "serial", gaussian_field_task, progress=False)
-    pool = run_suite(SETTINGS, tmp_path / "pool", gaussian_field_task, executor="processes", max_workers=2,
-                     progress=False)
+    pool = run_suite(
+        SETTINGS, tmp_path / "pool", gaussian_field_task, executor="processes", max_workers=2, progress=False
+    )
     distributed = pytest.importorskip("distributed")
-    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None,
-                                  silence_logs=50) as cluster, distributed.Client(cluster) as client:
+    with (
+        distributed.LocalCluster(
+            n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None, silence_logs=50
+        ) as cluster,
+        distributed.Client(cluster) as client,
+    ):
         dask_run = run_suite(SETTINGS, tmp_path / "dask", gaussian_field_task, executor=client, progress=False)
     assert serial.computed == pool.computed == dask_run.computed == list(range(6))
     _same(_arrays(serial), _arrays(pool))

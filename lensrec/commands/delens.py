@@ -48,7 +48,6 @@ def add_arguments(parser) -> None:
     )
 
 
-
 def read_phi_noise(phi_path: str, lmax_phi: int) -> tuple:
     """The gradient N0 of the reconstruction in ``phi_path`` from the n0.json beside it: (N0 array, estimator).
 

@@ -19,8 +19,13 @@ def add_arguments(parser) -> None:
     add_common(parser, experiment=True, out=True, seed=True)
     parser.add_argument("--nside", type=int, default=512, help="HEALPix nside of the simulation (default: %(default)s)")
     parser.add_argument("--lmax", type=int, default=None, help="CMB band limit (default: min(3*nside-1, 3000))")
-    parser.add_argument("--lmax-L", dest="lmax_L", type=int, default=None,
-                        help="lensing band limit of the reconstruction (default: lmax)")
+    parser.add_argument(
+        "--lmax-L",
+        dest="lmax_L",
+        type=int,
+        default=None,
+        help="lensing band limit of the reconstruction (default: lmax)",
+    )
 
 
 def run(args) -> int:
@@ -30,7 +35,16 @@ def run(args) -> int:
     from ..demo import run_demo
 
     start = time.perf_counter()
-    run_demo(args.out, experiment=args.experiment, nside=args.nside, lmax=args.lmax, lmax_L=args.lmax_L,
-             seed=args.seed, force=args.force, nthreads=args.nthreads, log=lambda line: print(line, flush=True))
+    run_demo(
+        args.out,
+        experiment=args.experiment,
+        nside=args.nside,
+        lmax=args.lmax,
+        lmax_L=args.lmax_L,
+        seed=args.seed,
+        force=args.force,
+        nthreads=args.nthreads,
+        log=lambda line: print(line, flush=True),
+    )
     print(f"report: {os.path.join(args.out, 'index.html')} ({time.perf_counter() - start:.0f} s)")
     return 0

@@ -23,18 +23,33 @@ def add_arguments(parser) -> None:
     from ..cli import add_common
 
     add_common(parser, experiment=True, out=True)
-    parser.add_argument("--lmax-L", dest="lmax_L", type=int, default=None,
-                        help="highest lensing multipole (default and maximum: the experiment's CMB l_max)")
-    parser.add_argument("--estimators", default="TT,TE,EE,TB,EB,MV",
-                        help="comma-separated estimators from TT, TE, EE, TB, EB, MV (default: %(default)s)")
-    parser.add_argument("--unlensed-weights", action="store_true",
-                        help="use unlensed CMB spectra in the weights and response (default: lensed)")
-    parser.add_argument("--delensing", action="store_true",
-                        help="also forecast delensing with the MV gradient N0: residual BB, A_lens^res, sigma(r)")
+    parser.add_argument(
+        "--lmax-L",
+        dest="lmax_L",
+        type=int,
+        default=None,
+        help="highest lensing multipole (default and maximum: the experiment's CMB l_max)",
+    )
+    parser.add_argument(
+        "--estimators",
+        default="TT,TE,EE,TB,EB,MV",
+        help="comma-separated estimators from TT, TE, EE, TB, EB, MV (default: %(default)s)",
+    )
+    parser.add_argument(
+        "--unlensed-weights",
+        action="store_true",
+        help="use unlensed CMB spectra in the weights and response (default: lensed)",
+    )
+    parser.add_argument(
+        "--delensing",
+        action="store_true",
+        help="also forecast delensing with the MV gradient N0: residual BB, A_lens^res, sigma(r)",
+    )
 
 
-def forecast_document(experiment, estimators="TT,TE,EE,TB,EB,MV", lmax_L=None, lensed_weights=True,
-                      nthreads=None, spectra=None) -> tuple[dict, object]:
+def forecast_document(
+    experiment, estimators="TT,TE,EE,TB,EB,MV", lmax_L=None, lensed_weights=True, nthreads=None, spectra=None
+) -> tuple[dict, object]:
     """Compute N0 and S/N and return (the JSON document without provenance, the ReconstructionNoise).
 
     Parameters are those of :func:`lensrec.reconstruction_noise`; the document holds "L", "n0" (NaN below
@@ -42,12 +57,20 @@ def forecast_document(experiment, estimators="TT,TE,EE,TB,EB,MV", lmax_L=None, l
     """
     from ..estimator_noise import reconstruction_noise
 
-    result = reconstruction_noise(experiment, spectra=spectra, estimators=estimators, lmax_L=lmax_L,
-                                  lensed_weights=lensed_weights, nthreads=nthreads)
+    result = reconstruction_noise(
+        experiment,
+        spectra=spectra,
+        estimators=estimators,
+        lmax_L=lmax_L,
+        lensed_weights=lensed_weights,
+        nthreads=nthreads,
+    )
     document = {
         "L": result.L.astype(int).tolist(),
-        "n0": {label: {component: values.tolist() for component, values in parts.items()}
-               for label, parts in result.n0.items()},
+        "n0": {
+            label: {component: values.tolist() for component, values in parts.items()}
+            for label, parts in result.n0.items()
+        },
         "snr": result.lensing_snr(),
     }
     return document, result
@@ -68,16 +91,22 @@ def format_table(result, snr: dict) -> str:
 def format_delensing(forecast) -> str:
     """Lensed and forecast residual BB at a few l, A_lens^res and sigma(r), without and with delensing."""
     columns = [ell for ell in (30, 100, 300, 1000) if forecast.ell_min <= ell <= forecast.ell_max]
-    lines = [f"delensing with the MV gradient N0 (l = {forecast.ell_min}-{forecast.ell_max}, "
-             f"f_sky = {forecast.sky_fraction:g}, r = {forecast.r:g}):",
-             f"{'':12s}" + "".join(f"{'BB(l=' + str(ell) + ')':>12s}" for ell in columns)
-             + f"{'A_lens^res':>12s}{'sigma(r)':>12s}"]
-    for label, bb, alens, sigma in (("lensed", forecast.lensed_bb, 1.0, forecast.sigma_r_lensed),
-                                    ("delensed", forecast.residual_bb, forecast.alens_residual,
-                                     forecast.sigma_r_delensed)):
+    lines = [
+        f"delensing with the MV gradient N0 (l = {forecast.ell_min}-{forecast.ell_max}, "
+        f"f_sky = {forecast.sky_fraction:g}, r = {forecast.r:g}):",
+        f"{'':12s}"
+        + "".join(f"{'BB(l=' + str(ell) + ')':>12s}" for ell in columns)
+        + f"{'A_lens^res':>12s}{'sigma(r)':>12s}",
+    ]
+    for label, bb, alens, sigma in (
+        ("lensed", forecast.lensed_bb, 1.0, forecast.sigma_r_lensed),
+        ("delensed", forecast.residual_bb, forecast.alens_residual, forecast.sigma_r_delensed),
+    ):
         lines.append(f"{label:12s}" + "".join(f"{bb[ell]:12.4e}" for ell in columns) + f"{alens:12.3f}{sigma:12.4e}")
-    lines.append("BB in uK^2. Caution: MV reuses the B modes; a residual measured on the same maps comes out lower "
-                 "than this forecast (delensing bias, see the notes in the JSON)")
+    lines.append(
+        "BB in uK^2. Caution: MV reuses the B modes; a residual measured on the same maps comes out lower "
+        "than this forecast (delensing bias, see the notes in the JSON)"
+    )
     return "\n".join(lines)
 
 
@@ -93,8 +122,13 @@ def run(args) -> int:
     experiment = load_experiment(args.experiment)
     timings["inputs"] = time.perf_counter() - start
     start = time.perf_counter()
-    document, result = forecast_document(experiment, estimators=args.estimators, lmax_L=args.lmax_L,
-                                         lensed_weights=not args.unlensed_weights, nthreads=args.nthreads)
+    document, result = forecast_document(
+        experiment,
+        estimators=args.estimators,
+        lmax_L=args.lmax_L,
+        lensed_weights=not args.unlensed_weights,
+        nthreads=args.nthreads,
+    )
     timings["reconstruction_noise"] = time.perf_counter() - start
     delensing = None
     if args.delensing:
@@ -104,14 +138,26 @@ def run(args) -> int:
         delensing = delensing_forecast(experiment, n0=result.n0["MV"]["gradient"], nthreads=args.nthreads)
         document["delensing"] = {"n0_estimator": "MV", **delensing.to_dict()}
         timings["delensing"] = time.perf_counter() - start
-    arguments = {"experiment": args.experiment, "lmax_L": int(result.L[-1]), "estimators": args.estimators,
-                 "unlensed_weights": bool(args.unlensed_weights), "delensing": bool(args.delensing),
-                 "nthreads": args.nthreads}
-    document["provenance"] = provenance("forecast", arguments=arguments, experiment=experiment, timings=timings,
-                                        extra={"settings": dict(result.settings)})
+    arguments = {
+        "experiment": args.experiment,
+        "lmax_L": int(result.L[-1]),
+        "estimators": args.estimators,
+        "unlensed_weights": bool(args.unlensed_weights),
+        "delensing": bool(args.delensing),
+        "nthreads": args.nthreads,
+    }
+    document["provenance"] = provenance(
+        "forecast",
+        arguments=arguments,
+        experiment=experiment,
+        timings=timings,
+        extra={"settings": dict(result.settings)},
+    )
     write_json(args.out, document, force=args.force)
-    print(f"lensrec forecast: {experiment.name}, lmax_L={int(result.L[-1])}, "
-          f"{timings['reconstruction_noise']:.2f} s; N0 in C_L^phiphi units")
+    print(
+        f"lensrec forecast: {experiment.name}, lmax_L={int(result.L[-1])}, "
+        f"{timings['reconstruction_noise']:.2f} s; N0 in C_L^phiphi units"
+    )
     print(format_table(result, document["snr"]))
     if delensing is not None:
         print(format_delensing(delensing))

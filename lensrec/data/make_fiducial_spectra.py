@@ -42,10 +42,18 @@ FIDUCIAL_PARAMETERS = {
 
 COLUMNS = (
     "ell",
-    "unlensed_TT", "unlensed_EE", "unlensed_BB", "unlensed_TE",
-    "lensed_TT", "lensed_EE", "lensed_BB", "lensed_TE",
+    "unlensed_TT",
+    "unlensed_EE",
+    "unlensed_BB",
+    "unlensed_TE",
+    "lensed_TT",
+    "lensed_EE",
+    "lensed_BB",
+    "lensed_TE",
     "phi_phi",
-    "tensor_TT", "tensor_EE", "tensor_BB",
+    "tensor_TT",
+    "tensor_EE",
+    "tensor_BB",
 )
 
 
@@ -60,8 +68,9 @@ def compute_columns(parameters: dict, lmax: int = LMAX, lmax_tensor: int = LMAX_
     lensed = powers["lensed_scalar"]
     phi = results.get_lens_potential_cls(lmax=lmax, raw_cl=True)[:, 0]
 
-    tensor_params = camb.set_params(lmax=lmax_tensor, r=1.0, WantTensors=True, WantScalars=False,
-                                    max_l_tensor=lmax_tensor, **parameters)
+    tensor_params = camb.set_params(
+        lmax=lmax_tensor, r=1.0, WantTensors=True, WantScalars=False, max_l_tensor=lmax_tensor, **parameters
+    )
     tensor_results = camb.get_results(tensor_params)
     tensor = tensor_results.get_tensor_cls(lmax=lmax_tensor, CMB_unit="muK", raw_cl=True)
     tensor_full = np.zeros((lmax + 1, 4))
@@ -73,19 +82,34 @@ def compute_columns(parameters: dict, lmax: int = LMAX, lmax_tensor: int = LMAX_
     auto[auto < 0] = 0.0
 
     ell = np.arange(lmax + 1, dtype=float)
-    table = np.column_stack([
-        ell,
-        unlensed[: lmax + 1, 0], unlensed[: lmax + 1, 1], unlensed[: lmax + 1, 2], unlensed[: lmax + 1, 3],
-        lensed[: lmax + 1, 0], lensed[: lmax + 1, 1], lensed[: lmax + 1, 2], lensed[: lmax + 1, 3],
-        phi[: lmax + 1],
-        tensor_full[:, 0], tensor_full[:, 1], tensor_full[:, 2],
-    ])
+    table = np.column_stack(
+        [
+            ell,
+            unlensed[: lmax + 1, 0],
+            unlensed[: lmax + 1, 1],
+            unlensed[: lmax + 1, 2],
+            unlensed[: lmax + 1, 3],
+            lensed[: lmax + 1, 0],
+            lensed[: lmax + 1, 1],
+            lensed[: lmax + 1, 2],
+            lensed[: lmax + 1, 3],
+            phi[: lmax + 1],
+            tensor_full[:, 0],
+            tensor_full[:, 1],
+            tensor_full[:, 2],
+        ]
+    )
     table[:2, 1:] = 0.0
     metadata = {
         "generator": "lensrec/data/make_fiducial_spectra.py",
         "camb_version": camb.__version__,
-        "camb_settings": {"lmax": lmax, "lens_potential_accuracy": 1, "lmax_tensor": lmax_tensor,
-                          "CMB_unit": "muK", "raw_cl": True},
+        "camb_settings": {
+            "lmax": lmax,
+            "lens_potential_accuracy": 1,
+            "lmax_tensor": lmax_tensor,
+            "CMB_unit": "muK",
+            "raw_cl": True,
+        },
         "parameters": parameters,
         "tensor_to_scalar_ratio_of_tensor_columns": 1.0,
         "tensor_negative_entries_set_to_zero": clipped,

@@ -63,8 +63,9 @@ def main() -> int:
     parser.add_argument("--lmax-L", dest="lmax_L", type=int, default=None, help="highest L (default: lmax)")
     parser.add_argument("--estimators", default="TT,TE,EE,TB,EB,MV", help="rows to time (default: %(default)s)")
     parser.add_argument("--skip-filter", action="store_true", help="do not time the map filter")
-    parser.add_argument("--workspace-mb", type=float, default=None,
-                        help="memory per block of rings (default: lensrec's, 1024 MB)")
+    parser.add_argument(
+        "--workspace-mb", type=float, default=None, help="memory per block of rings (default: lensrec's, 1024 MB)"
+    )
     args = parser.parse_args()
 
     import lensrec
@@ -78,44 +79,83 @@ def main() -> int:
     nthreads = args.nthreads
     labels = [label.strip() for label in args.estimators.split(",")]
     spectra = lensrec.fiducial_spectra()
-    experiment = lensrec.Experiment(name="Benchmark Survey", noise_temperature=1.0, beam_fwhm=1.5, ell_min=2,
-                                    ell_max_temperature=lmax, ell_max_polarization=lmax)
+    experiment = lensrec.Experiment(
+        name="Benchmark Survey",
+        noise_temperature=1.0,
+        beam_fwhm=1.5,
+        ell_min=2,
+        ell_max_temperature=lmax,
+        ell_max_polarization=lmax,
+    )
     unit = spin2_synthesis_seconds(nside, lmax, nthreads, repeat=2)
     unit_cpu = spin2_synthesis_cpu_seconds(nside, lmax, nthreads)
 
     signal = spectra.cmb(lensed=True)
-    alm = gaussian_cmb_alm({k: v[: lmax + 1] for k, v in signal.items()}, lmax, np.random.default_rng(1),
-                           nthreads=nthreads)
+    alm = gaussian_cmb_alm(
+        {k: v[: lmax + 1] for k, v in signal.items()}, lmax, np.random.default_rng(1), nthreads=nthreads
+    )
     fields = FilteredFields(alm, lmax, {k: v[: lmax + 1] for k, v in signal.items()})
     del alm
 
     rows = []
     for label in labels:
         estimators = BASE_ESTIMATORS if label == "MV" else (label,)
-        result, seconds, cpu = timed(lambda estimators=estimators: quadratic_estimates(
-            fields, estimators=estimators, lmax_L=lmax_L, nthreads=nthreads, workspace_mb=args.workspace_mb))
+        result, seconds, cpu = timed(
+            lambda estimators=estimators: quadratic_estimates(
+                fields, estimators=estimators, lmax_L=lmax_L, nthreads=nthreads, workspace_mb=args.workspace_mb
+            )
+        )
         settings = result.settings
         del result
         split = settings["seconds"]
-        rows.append({"row": f"estimator {label}", "workspace_mb": args.workspace_mb or 1024, "nside": nside, "lmax": lmax, "lmax_L": lmax_L, "nthreads": nthreads,
-                     "seconds": seconds, "cpu_seconds": cpu, "transforms": settings["transforms"]["total"],
-                     "minimum_transforms": MINIMUM[label], "syntheses": settings["transforms"]["synthesis"],
-                     "analyses": settings["transforms"]["analysis_spin1"], "products": settings["products"],
-                     "grid": "x".join(map(str, settings["grid"])), "ring_blocks": settings["ring_blocks"],
-                     "legs_s": split["legs"], "products_s": split["products"], "analysis_s": split["analysis"],
-                     "peak_rss_mb": peak_rss_mb()})
+        rows.append(
+            {
+                "row": f"estimator {label}",
+                "workspace_mb": args.workspace_mb or 1024,
+                "nside": nside,
+                "lmax": lmax,
+                "lmax_L": lmax_L,
+                "nthreads": nthreads,
+                "seconds": seconds,
+                "cpu_seconds": cpu,
+                "transforms": settings["transforms"]["total"],
+                "minimum_transforms": MINIMUM[label],
+                "syntheses": settings["transforms"]["synthesis"],
+                "analyses": settings["transforms"]["analysis_spin1"],
+                "products": settings["products"],
+                "grid": "x".join(map(str, settings["grid"])),
+                "ring_blocks": settings["ring_blocks"],
+                "legs_s": split["legs"],
+                "products_s": split["products"],
+                "analysis_s": split["analysis"],
+                "peak_rss_mb": peak_rss_mb(),
+            }
+        )
 
-    _, noise_seconds, noise_cpu = timed(lambda: lensrec.reconstruction_noise(experiment, lmax_L=lmax_L,
-                                                                             nthreads=nthreads))
-    rows.append({"row": "normalisation (responses, N0, MV weights)", "seconds": noise_seconds, "cpu_seconds": noise_cpu,
-                 "peak_rss_mb": peak_rss_mb()})
+    _, noise_seconds, noise_cpu = timed(
+        lambda: lensrec.reconstruction_noise(experiment, lmax_L=lmax_L, nthreads=nthreads)
+    )
+    rows.append(
+        {
+            "row": "normalisation (responses, N0, MV weights)",
+            "seconds": noise_seconds,
+            "cpu_seconds": noise_cpu,
+            "peak_rss_mb": peak_rss_mb(),
+        }
+    )
     if not args.skip_filter:
         maps = harmonics.alm2map_tqu(fields.wiener_alm(), nside, lmax, nthreads=nthreads)
         filt = IsotropicFilter(experiment, spectra, nthreads=nthreads)
         _, filter_seconds, filter_cpu = timed(lambda: filt.filter(maps))
         del maps
-        rows.append({"row": "isotropic filter of T, Q, U maps (3 Jacobi iterations)", "seconds": filter_seconds,
-                     "cpu_seconds": filter_cpu, "peak_rss_mb": peak_rss_mb()})
+        rows.append(
+            {
+                "row": "isotropic filter of T, Q, U maps (3 Jacobi iterations)",
+                "seconds": filter_seconds,
+                "cpu_seconds": filter_cpu,
+                "peak_rss_mb": peak_rss_mb(),
+            }
+        )
 
     unit = min(unit, spin2_synthesis_seconds(nside, lmax, nthreads, repeat=1))
     unit_cpu = min(unit_cpu, spin2_synthesis_cpu_seconds(nside, lmax, nthreads, repeat=1))

@@ -240,11 +240,15 @@ class IsotropicFilter:
         largest = max(experiment.ell_max_temperature, experiment.ell_max_polarization)
         lmax = largest if self.lmax is None else as_int(self.lmax, "lmax", minimum=experiment.ell_min + 1)
         if lmax > spectra.lmax:
-            raise ValueError(f"lmax={lmax} exceeds the reach of the spectra (l <= {spectra.lmax}); lower lmax or "
-                             "supply spectra computed to higher l")
+            raise ValueError(
+                f"lmax={lmax} exceeds the reach of the spectra (l <= {spectra.lmax}); lower lmax or "
+                "supply spectra computed to higher l"
+            )
         if lmax < largest:
-            experiment = experiment.replace(ell_max_temperature=min(experiment.ell_max_temperature, lmax),
-                                            ell_max_polarization=min(experiment.ell_max_polarization, lmax))
+            experiment = experiment.replace(
+                ell_max_temperature=min(experiment.ell_max_temperature, lmax),
+                ell_max_polarization=min(experiment.ell_max_polarization, lmax),
+            )
         set_(self, "experiment", experiment)
         set_(self, "spectra", spectra)
         set_(self, "lmax", lmax)
@@ -271,8 +275,9 @@ class IsotropicFilter:
             factor = np.zeros(lmax + 1)
             factor[usable] = 1.0 / (beam[usable] * auto[usable])
             if not np.any(usable):
-                raise ValueError(f"field {name} has no usable multipole between ell_min={experiment.ell_min} and "
-                                 f"lmax={lmax}")
+                raise ValueError(
+                    f"field {name} has no usable multipole between ell_min={experiment.ell_min} and lmax={lmax}"
+                )
             factors.append(factor)
         set_(self, "_factors", _readonly(np.array(factors)))
 
@@ -286,9 +291,14 @@ class IsotropicFilter:
         return np.array(self._factors[_field_index(field)])
 
     def _settings(self, **extra) -> dict:
-        settings = {"filter": "isotropic", "lmax": self.lmax, "iterations": self.iterations,
-                    "experiment": self.experiment.to_dict(), "spectra": dict(self.spectra.metadata),
-                    "apodization_deg": self.apodization}
+        settings = {
+            "filter": "isotropic",
+            "lmax": self.lmax,
+            "iterations": self.iterations,
+            "experiment": self.experiment.to_dict(),
+            "spectra": dict(self.spectra.metadata),
+            "apodization_deg": self.apodization,
+        }
         settings.update(extra)
         return settings
 
@@ -321,8 +331,10 @@ class IsotropicFilter:
         if self.mask is not None:
             if self.mask.size != array.shape[1]:
                 mask_nside = npix_to_nside(self.mask.size, "mask")
-                raise ValueError(f"mask has nside {mask_nside} ({self.mask.size} pixels) but the maps have nside "
-                                 f"{nside} ({array.shape[1]} pixels); regrade the mask (e.g. healpy.ud_grade)")
+                raise ValueError(
+                    f"mask has nside {mask_nside} ({self.mask.size} pixels) but the maps have nside "
+                    f"{nside} ({array.shape[1]} pixels); regrade the mask (e.g. healpy.ud_grade)"
+                )
             array = array * self.mask
             moments = sky_fraction_moments(self.mask)
         alm = harmonics.map2alm_tqu(array, self.lmax, iterations=self.iterations, nthreads=self.nthreads)

@@ -99,7 +99,7 @@ def cross_spectrum(alm1, alm2=None, lmax: int | None = None) -> np.ndarray:
     start = lmax + 1
     for m in range(1, lmax + 1):
         count = lmax - m + 1
-        out[m:] += 2.0 * product[start:start + count]
+        out[m:] += 2.0 * product[start : start + count]
         start += count
     out /= 2.0 * np.arange(lmax + 1) + 1.0
     return out
@@ -127,8 +127,9 @@ def _check_edges(edges, size: int) -> np.ndarray:
     if np.any(np.diff(values) <= 0):
         raise ValueError(f"edges must increase strictly, got {values.tolist()}")
     if values[0] < 0 or values[-1] > size:
-        raise ValueError(f"edges must lie in [0, {size}] (the spectrum has l = 0..{size - 1}), got "
-                         f"[{values[0]}, {values[-1]}]")
+        raise ValueError(
+            f"edges must lie in [0, {size}] (the spectrum has l = 0..{size - 1}), got [{values[0]}, {values[-1]}]"
+        )
     return values
 
 
@@ -254,8 +255,10 @@ def mask_corrected(cl, mask_moments, order: int) -> np.ndarray:
     if isinstance(mask_moments, Mapping):
         key = f"w{order}"
         if key not in mask_moments:
-            raise ValueError(f"mask_moments lacks {key!r} (has {sorted(mask_moments)}); compute it with "
-                             f"lensrec.sky_fraction_moments(mask, orders=range(1, {order + 1}))")
+            raise ValueError(
+                f"mask_moments lacks {key!r} (has {sorted(mask_moments)}); compute it with "
+                f"lensrec.sky_fraction_moments(mask, orders=range(1, {order + 1}))"
+            )
         moment = float(mask_moments[key])
     else:
         from .masks import check_mask

@@ -35,7 +35,8 @@ The products are evaluated on a Gauss–Legendre grid with ⌊(2ℓ_max + L_max)
 ≥ 2ℓ_max + L_max + 1 pixels per ring (:func:`lensrec.harmonics.gl_grid_for_band_limits`): H is
 band-limited at 2ℓ_max, so the analysis to L_max is exact quadrature (no aliasing). The grid is processed
 in blocks of ring pairs (north and south together) to bound memory (``workspace_mb``); within a block, the
-legs of one spin are one batched ducc0 synthesis, followed by one spin-1 analysis per estimator.
+legs of one spin are one batched ducc0 synthesis and the estimators' H fields one batched spin-1 analysis
+(each ducc0 call sets up its Legendre recursions once, ~0.1 s at ℓ_max = 3000, so blocks should be few).
 
 Transform counts (full-sky equivalents, ``Reconstruction.settings["transforms"]``) for one input (a = b):
 TT 2 syntheses (spin 0 T̄, spin 1 √(ℓ(ℓ+1)) C^TT T̄) + 1 spin-1 analysis; EE 3 + 1 (Ē at spin 2, C^EE Ē
@@ -60,6 +61,7 @@ from __future__ import annotations
 
 import concurrent.futures
 import difflib
+import functools
 import time
 from collections.abc import Mapping
 from dataclasses import dataclass
@@ -159,8 +161,9 @@ def _plan(labels, factors: FactorTable, shared: bool) -> dict:
     for label in labels:
         gradient = _products(label, "gradient", factors, shared)
         curl = _products(label, "curl", factors, shared)
-        if set(gradient) != set(curl) or any(abs(curl[k] + 1j * gradient[k]) > 1e-12 * abs(gradient[k])
-                                             for k in gradient):
+        if set(gradient) != set(curl) or any(
+            abs(curl[k] + 1j * gradient[k]) > 1e-12 * abs(gradient[k]) for k in gradient
+        ):
             raise RuntimeError(f"internal error: the curl weights of {label} are not i·sigma times the gradient ones")
         x, y = ESTIMATOR_FIELDS[label]
         plan[label] = (gradient, 2 if x == y else 1)
@@ -310,8 +313,9 @@ def _leg_coefficients(legs, fields, factors: FactorTable, lmax: int) -> np.ndarr
     """−u(ℓ) X̄_ℓm for every leg (rows, legs sorted by spin), then zero rows for the curl parts of the
     batched "STANDARD" spin-s syntheses (as many as the largest such batch)."""
     ell = ell_of_alm(lmax)
-    zeros = max([count for spin, _, count in _spin_groups(legs) if spin and _SYNTHESIS_MODE[spin] == "STANDARD"],
-                default=0)
+    zeros = max(
+        [count for spin, _, count in _spin_groups(legs) if spin and _SYNTHESIS_MODE[spin] == "STANDARD"], default=0
+    )
     out = np.zeros((len(legs) + zeros, nalm(lmax)), dtype=np.complex128)
     for row, (side, name, weights, _spin) in enumerate(legs):
         u = factors.product(weights, lmax)
@@ -333,7 +337,7 @@ class _Workspace:
             shape = (count, 1, max_npix) if spin == 0 else (count, max_npix, 2)
             self.leg_buffers[spin] = np.empty(shape)
         self.products = np.empty((n_labels, max_npix, 2))
-        self.analysis = np.empty((2, nalm(lmax_L)), dtype=np.complex128)  # one estimator at a time
+        self.analysis = np.empty((n_labels, 2, nalm(lmax_L)), dtype=np.complex128)
 
     def leg_maps(self, npix: int) -> list[np.ndarray]:
         """Per leg (in leg order): a real (npix,) view for spin 0, a complex (npix,) view otherwise."""
@@ -367,7 +371,7 @@ def _synthesise_legs(legs, coefficients, lmax, geometry, npix, nthreads, workspa
     row_bytes, item_bytes = coefficients.strides
     zero_row = len(legs)
     for spin, first, count in workspace.groups:
-        rows = coefficients[first:first + count]
+        rows = coefficients[first : first + count]
         out = workspace.leg_output(spin, npix)
         if spin == 0:
             ducc0.sht.synthesis(alm=rows[:, None, :], lmax=lmax, spin=0, nthreads=nthreads, map=out, **geometry)
@@ -377,8 +381,11 @@ def _synthesise_legs(legs, coefficients, lmax, geometry, npix, nthreads, workspa
         if mode == "GRAD_ONLY":
             alm = rows[:, None, :]
         else:  # each gradient row with its own zero row as curl, as one (count, 2, nalm) array without a copy
-            alm = as_strided(coefficients[first], shape=(count, 2, coefficients.shape[1]),
-                             strides=(row_bytes, (zero_row - first) * row_bytes, item_bytes))
+            alm = as_strided(
+                coefficients[first],
+                shape=(count, 2, coefficients.shape[1]),
+                strides=(row_bytes, (zero_row - first) * row_bytes, item_bytes),
+            )
         ducc0.sht.synthesis(alm=alm, lmax=lmax, spin=spin, nthreads=nthreads, map=out, mode=mode, **geometry)
 
 
@@ -412,10 +419,16 @@ def _multiply_block(block, legs_maps, products, out, scratch):
             acc[...] = 0.0
 
 
-def quadratic_estimates(first: FilteredFields, second: FilteredFields | None = None,
-                        estimators=BASE_ESTIMATORS, lmax_L: int | None = None, spectra: Spectra | None = None,
-                        lensed_weights: bool = True, nthreads: int | None = None,
-                        workspace_mb: int | None = None) -> QuadraticEstimates:
+def quadratic_estimates(
+    first: FilteredFields,
+    second: FilteredFields | None = None,
+    estimators=BASE_ESTIMATORS,
+    lmax_L: int | None = None,
+    spectra: Spectra | None = None,
+    lensed_weights: bool = True,
+    nthreads: int | None = None,
+    workspace_mb: int | None = None,
+) -> QuadraticEstimates:
     """Unnormalised quadratic estimates ḡ^XY_LM[a, b] in position space (gradient and curl weights).
 
     Parameters
@@ -491,8 +504,9 @@ def quadratic_estimates(first: FilteredFields, second: FilteredFields | None = N
     plan = _plan(labels, factors, shared)
     fields = (first, second)
 
-    legs = sorted({leg for products, _ in plan.values() for key in products for leg, _ in key},
-                  key=lambda leg: (leg[3], leg))  # by |spin|: each spin is one batched synthesis
+    legs = sorted(
+        {leg for products, _ in plan.values() for key in products for leg, _ in key}, key=lambda leg: (leg[3], leg)
+    )  # by |spin|: each spin is one batched synthesis
     index = {leg: i for i, leg in enumerate(legs)}
     products = []
     for label in labels:
@@ -533,8 +547,12 @@ def quadratic_estimates(first: FilteredFields, second: FilteredFields | None = N
         for rings in blocks:
             clock = time.perf_counter()
             npix = rings.size * grid.nphi
-            geometry = {"theta": np.ascontiguousarray(theta[rings]), "nphi": np.full(rings.size, grid.nphi, np.uintp),
-                        "phi0": np.zeros(rings.size), "ringstart": (np.arange(rings.size) * grid.nphi).astype(np.uintp)}
+            geometry = {
+                "theta": np.ascontiguousarray(theta[rings]),
+                "nphi": np.full(rings.size, grid.nphi, np.uintp),
+                "phi0": np.zeros(rings.size),
+                "ringstart": (np.arange(rings.size) * grid.nphi).astype(np.uintp),
+            }
             _synthesise_legs(legs, coefficients, lmax, geometry, npix, nthreads, workspace)
             seconds["legs"] += time.perf_counter() - clock
             clock = time.perf_counter()
@@ -544,14 +562,19 @@ def quadratic_estimates(first: FilteredFields, second: FilteredFields | None = N
                 for piece in pieces:
                     multiply(piece, leg_maps, h)
             else:
-                list(pool.map(lambda piece: multiply(piece, leg_maps, h), pieces))
+                list(pool.map(functools.partial(multiply, leg_maps=leg_maps, h=h), pieces))
             seconds["products"] += time.perf_counter() - clock
             clock = time.perf_counter()
-            weights = np.ascontiguousarray(ring_weights[rings])
-            for k, h_map in enumerate(workspace.product_output(npix)):
-                ducc0.sht.adjoint_synthesis(map=h_map, lmax=lmax_L, spin=1, nthreads=nthreads, ringfactor=weights,
-                                            alm=workspace.analysis, **geometry)
-                result[k] += workspace.analysis
+            ducc0.sht.adjoint_synthesis(
+                map=workspace.product_output(npix),
+                lmax=lmax_L,
+                spin=1,
+                nthreads=nthreads,
+                ringfactor=np.ascontiguousarray(ring_weights[rings]),
+                alm=workspace.analysis,
+                **geometry,
+            )
+            result += workspace.analysis
             seconds["analysis"] += time.perf_counter() - clock
     finally:
         if pool is not None:
@@ -569,15 +592,28 @@ def quadratic_estimates(first: FilteredFields, second: FilteredFields | None = N
     for leg in legs:
         spins[str(leg[3])] = spins.get(str(leg[3]), 0) + 1
     settings = {
-        "lmax": lmax, "lmax_L": lmax_L, "lensed_weights": bool(lensed_weights), "estimators": list(labels),
-        "grid": [grid.ntheta, grid.nphi], "ring_blocks": len(blocks),
-        "transforms": {"synthesis_by_spin": spins, "synthesis": len(legs), "analysis_spin1": len(labels),
-                       "total": len(legs) + len(labels)},
+        "lmax": lmax,
+        "lmax_L": lmax_L,
+        "lensed_weights": bool(lensed_weights),
+        "estimators": list(labels),
+        "grid": [grid.ntheta, grid.nphi],
+        "ring_blocks": len(blocks),
+        "transforms": {
+            "synthesis_by_spin": spins,
+            "synthesis": len(legs),
+            "analysis_spin1": len(labels),
+            "total": len(legs) + len(labels),
+        },
         "products": int(sum(len(items) for items in products)),
         "seconds": seconds,
     }
-    return QuadraticEstimates(gradient=MappingProxyType(gradient), curl=MappingProxyType(curl), lmax_L=lmax_L,
-                              shared=shared, settings=MappingProxyType(settings))
+    return QuadraticEstimates(
+        gradient=MappingProxyType(gradient),
+        curl=MappingProxyType(curl),
+        lmax_L=lmax_L,
+        shared=shared,
+        settings=MappingProxyType(settings),
+    )
 
 
 # ------------------------------------------------------------------------------------ normalisation
@@ -587,15 +623,25 @@ def _check_mean_field(mean_field, estimator: str, lmax_L: int):
     if not isinstance(mean_field, MeanField):
         raise TypeError(f"mean_field must be a MeanField (from lensrec.mean_field), got {type(mean_field).__name__}")
     if mean_field.estimator != estimator or mean_field.lmax_L != lmax_L:
-        raise ValueError(f"mean_field is for estimator {mean_field.estimator!r} to lmax_L={mean_field.lmax_L}, but "
-                         f"this reconstruction uses {estimator!r} to lmax_L={lmax_L}")
+        raise ValueError(
+            f"mean_field is for estimator {mean_field.estimator!r} to lmax_L={mean_field.lmax_L}, but "
+            f"this reconstruction uses {estimator!r} to lmax_L={lmax_L}"
+        )
     return mean_field
 
 
-def reconstruct_filtered(first: FilteredFields, experiment, second: FilteredFields | None = None,
-                         spectra: Spectra | None = None, estimator: str = "MV", lmax_L: int | None = None,
-                         mean_field: MeanField | None = None, lensed_weights: bool = True,
-                         noise: ReconstructionNoise | None = None, nthreads: int | None = None) -> Reconstruction:
+def reconstruct_filtered(
+    first: FilteredFields,
+    experiment,
+    second: FilteredFields | None = None,
+    spectra: Spectra | None = None,
+    estimator: str = "MV",
+    lmax_L: int | None = None,
+    mean_field: MeanField | None = None,
+    lensed_weights: bool = True,
+    noise: ReconstructionNoise | None = None,
+    nthreads: int | None = None,
+) -> Reconstruction:
     """Normalised reconstruction from filtered fields (one input, or a mixed pair [a, b]).
 
     Parameters
@@ -637,25 +683,37 @@ def reconstruct_filtered(first: FilteredFields, experiment, second: FilteredFiel
         raise TypeError(f"first must be FilteredFields, got {type(first).__name__}")
     largest = max(experiment.ell_max_temperature, experiment.ell_max_polarization)
     if largest > first.lmax:
-        raise ValueError(f"the experiment uses l up to {largest} but the filtered fields stop at lmax={first.lmax}; "
-                         "normalise with the experiment the filter used (IsotropicFilter.experiment)")
+        raise ValueError(
+            f"the experiment uses l up to {largest} but the filtered fields stop at lmax={first.lmax}; "
+            "normalise with the experiment the filter used (IsotropicFilter.experiment)"
+        )
     if lmax_L is None:
         lmax_L = largest
     lmax_L = as_int(lmax_L, "lmax_L", minimum=2)
     if lmax_L > largest:
-        raise ValueError(f"lmax_L={lmax_L} exceeds the CMB band limit lmax={largest} of the filtered maps; choose "
-                         f"lmax_L <= {largest} (or filter to a higher lmax)")
+        raise ValueError(
+            f"lmax_L={lmax_L} exceeds the CMB band limit lmax={largest} of the filtered maps; choose "
+            f"lmax_L <= {largest} (or filter to a higher lmax)"
+        )
     mean_field = _check_mean_field(mean_field, estimator, lmax_L)
     spectra = fiducial_spectra() if spectra is None else spectra
     labels = BASE_ESTIMATORS if estimator == "MV" else (estimator,)
     if noise is None:
-        noise = reconstruction_noise(experiment, spectra, estimators=ESTIMATORS if estimator == "MV" else labels,
-                                     lmax_L=lmax_L, lensed_weights=lensed_weights, nthreads=nthreads)
+        noise = reconstruction_noise(
+            experiment,
+            spectra,
+            estimators=ESTIMATORS if estimator == "MV" else labels,
+            lmax_L=lmax_L,
+            lensed_weights=lensed_weights,
+            nthreads=nthreads,
+        )
     elif not isinstance(noise, ReconstructionNoise):
         raise TypeError(f"noise must be a ReconstructionNoise, got {type(noise).__name__}")
     if int(noise.L[-1]) != lmax_L or any(label not in noise.n0 for label in labels + (estimator,)):
-        raise ValueError(f"noise must hold {estimator} (and its parts) to lmax_L={lmax_L}; got estimators "
-                         f"{list(noise.n0)} to lmax_L={int(noise.L[-1])}")
+        raise ValueError(
+            f"noise must hold {estimator} (and its parts) to lmax_L={lmax_L}; got estimators "
+            f"{list(noise.n0)} to lmax_L={int(noise.L[-1])}"
+        )
     estimates = quadratic_estimates(first, second, labels, lmax_L, spectra, lensed_weights, nthreads)
 
     ell = ell_of_alm(lmax_L)
@@ -670,7 +728,9 @@ def reconstruct_filtered(first: FilteredFields, experiment, second: FilteredFiel
             for label in labels:
                 response = noise.response[label][component]
                 with np.errstate(divide="ignore", invalid="ignore"):
-                    scale = np.where(np.isfinite(response) & (response > 0), weights[order.index(label)] / response, 0.0)
+                    scale = np.where(
+                        np.isfinite(response) & (response > 0), weights[order.index(label)] / response, 0.0
+                    )
                 scale = np.nan_to_num(scale, nan=0.0)
                 total += parts[label] * scale[ell]
         else:
@@ -684,26 +744,50 @@ def reconstruct_filtered(first: FilteredFields, experiment, second: FilteredFiel
         out[component] = total
 
     settings = dict(estimates.settings)
-    settings.update({"estimator": estimator, "experiment": experiment.to_dict(), "spectra": dict(spectra.metadata),
-                     "filter": dict(first.settings), "mixed_inputs": not estimates.shared,
-                     "mean_field_count": None if mean_field is None else mean_field.count})
+    settings.update(
+        {
+            "estimator": estimator,
+            "experiment": experiment.to_dict(),
+            "spectra": dict(spectra.metadata),
+            "filter": dict(first.settings),
+            "mixed_inputs": not estimates.shared,
+            "mean_field_count": None if mean_field is None else mean_field.count,
+        }
+    )
     return Reconstruction(
-        phi_alm=_readonly(out["gradient"]), curl_alm=_readonly(out["curl"]), estimator=estimator, lmax_L=lmax_L,
+        phi_alm=_readonly(out["gradient"]),
+        curl_alm=_readonly(out["curl"]),
+        estimator=estimator,
+        lmax_L=lmax_L,
         n0=MappingProxyType({c: noise.n0[estimator][c] for c in COMPONENTS}),
         response=MappingProxyType({c: noise.response[estimator][c] for c in COMPONENTS}),
-        unnormalised=MappingProxyType({label: MappingProxyType({"gradient": estimates.gradient[label],
-                                                                "curl": estimates.curl[label]})
-                                       for label in labels}),
+        unnormalised=MappingProxyType(
+            {
+                label: MappingProxyType({"gradient": estimates.gradient[label], "curl": estimates.curl[label]})
+                for label in labels
+            }
+        ),
         mv_weights=MappingProxyType(dict(noise.mv_weights)) if estimator == "MV" else None,
-        noise=noise, mask_moments=first.mask_moments, mean_field_subtracted=mean_field is not None,
+        noise=noise,
+        mask_moments=first.mask_moments,
+        mean_field_subtracted=mean_field is not None,
         settings=MappingProxyType(settings),
     )
 
 
-def reconstruct(maps, experiment, spectra: Spectra | None = None, estimator: str = "MV", lmax_L: int | None = None,
-                mask=None, mean_field: MeanField | None = None, lmax: int | None = None,
-                nthreads: int | None = None, lensed_weights: bool = True,
-                field_filter: FieldFilter | None = None) -> Reconstruction:
+def reconstruct(
+    maps,
+    experiment,
+    spectra: Spectra | None = None,
+    estimator: str = "MV",
+    lmax_L: int | None = None,
+    mask=None,
+    mean_field: MeanField | None = None,
+    lmax: int | None = None,
+    nthreads: int | None = None,
+    lensed_weights: bool = True,
+    field_filter: FieldFilter | None = None,
+) -> Reconstruction:
     """Reconstruct the lensing potential φ (and the curl Ω) from observed T, Q, U maps.
 
     Filters the maps (:class:`lensrec.filtering.IsotropicFilter` unless ``field_filter`` is given), forms
@@ -775,11 +859,21 @@ def reconstruct(maps, experiment, spectra: Spectra | None = None, estimator: str
     if lmax_L is not None:
         lmax_L = as_int(lmax_L, "lmax_L", minimum=2)
         if lmax_L > cmb_lmax:
-            raise ValueError(f"lmax_L={lmax_L} exceeds the CMB band limit lmax={cmb_lmax} the maps are filtered to; "
-                             f"choose lmax_L <= {cmb_lmax}")
+            raise ValueError(
+                f"lmax_L={lmax_L} exceeds the CMB band limit lmax={cmb_lmax} the maps are filtered to; "
+                f"choose lmax_L <= {cmb_lmax}"
+            )
     fields = field_filter.filter(maps)
-    return reconstruct_filtered(fields, experiment, spectra=spectra, estimator=estimator, lmax_L=lmax_L,
-                                mean_field=mean_field, lensed_weights=lensed_weights, nthreads=nthreads)
+    return reconstruct_filtered(
+        fields,
+        experiment,
+        spectra=spectra,
+        estimator=estimator,
+        lmax_L=lmax_L,
+        mean_field=mean_field,
+        lensed_weights=lensed_weights,
+        nthreads=nthreads,
+    )
 
 
 def mean_field(reconstructions) -> MeanField:
@@ -821,8 +915,10 @@ def mean_field(reconstructions) -> MeanField:
         if item.mean_field_subtracted:
             raise ValueError(f"reconstructions[{k}] already had a mean-field subtracted; average raw reconstructions")
         if item.estimator != items[0].estimator or item.lmax_L != items[0].lmax_L:
-            raise ValueError(f"reconstructions[{k}] is {item.estimator} to lmax_L={item.lmax_L}, but the first is "
-                             f"{items[0].estimator} to lmax_L={items[0].lmax_L}")
+            raise ValueError(
+                f"reconstructions[{k}] is {item.estimator} to lmax_L={item.lmax_L}, but the first is "
+                f"{items[0].estimator} to lmax_L={items[0].lmax_L}"
+            )
         if phi is None:
             phi = np.array(item.phi_alm, dtype=np.complex128)
             curl = np.array(item.curl_alm, dtype=np.complex128)
@@ -830,5 +926,10 @@ def mean_field(reconstructions) -> MeanField:
             phi += item.phi_alm
             curl += item.curl_alm
     count = len(items)
-    return MeanField(phi_alm=_readonly(phi / count), curl_alm=_readonly(curl / count), estimator=items[0].estimator,
-                     lmax_L=items[0].lmax_L, count=count)
+    return MeanField(
+        phi_alm=_readonly(phi / count),
+        curl_alm=_readonly(curl / count),
+        estimator=items[0].estimator,
+        lmax_L=items[0].lmax_L,
+        count=count,
+    )

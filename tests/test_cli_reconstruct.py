@@ -18,8 +18,14 @@ LMAX = 128
 @pytest.fixture(scope="module")
 def inputs(tmp_path_factory):
     folder = tmp_path_factory.mktemp("reconstruct_inputs")
-    experiment = lensrec.Experiment(name="Small CLI Survey", noise_temperature=2.0, beam_fwhm=10.0, ell_min=2,
-                                    ell_max_temperature=LMAX, ell_max_polarization=LMAX)
+    experiment = lensrec.Experiment(
+        name="Small CLI Survey",
+        noise_temperature=2.0,
+        beam_fwhm=10.0,
+        ell_min=2,
+        ell_max_temperature=LMAX,
+        ell_max_polarization=LMAX,
+    )
     path = folder / "small.toml"
     experiment.to_toml(path)
     sky = lensrec.simulate_sky(experiment, nside=NSIDE, lmax=LMAX, lmax_margin=64, seed=12, nthreads=2)
@@ -31,8 +37,22 @@ def inputs(tmp_path_factory):
 
 
 def arguments(inputs, out, *extra):
-    return ["reconstruct", "--experiment", inputs["experiment"], "--maps", inputs["maps"], "--estimator", "EB",
-            "--lmax-L", "100", "--out", str(out), "--nthreads", "2", *extra]
+    return [
+        "reconstruct",
+        "--experiment",
+        inputs["experiment"],
+        "--maps",
+        inputs["maps"],
+        "--estimator",
+        "EB",
+        "--lmax-L",
+        "100",
+        "--out",
+        str(out),
+        "--nthreads",
+        "2",
+        *extra,
+    ]
 
 
 def test_reconstruct_writes_estimates_n0_and_provenance(inputs, tmp_path, capsys):

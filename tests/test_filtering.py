@@ -24,8 +24,15 @@ LMAX = 128
 @pytest.fixture(scope="module")
 def experiment():
     # distinct cuts for T and P so that per-field cuts are exercised
-    return lensrec.Experiment(name="Filter Test Survey", noise_temperature=3.0, noise_polarization=5.0,
-                              beam_fwhm=20.0, ell_min=5, ell_max_temperature=100, ell_max_polarization=LMAX)
+    return lensrec.Experiment(
+        name="Filter Test Survey",
+        noise_temperature=3.0,
+        noise_polarization=5.0,
+        beam_fwhm=20.0,
+        ell_min=5,
+        ell_max_temperature=100,
+        ell_max_polarization=LMAX,
+    )
 
 
 @pytest.fixture(scope="module")
@@ -49,9 +56,11 @@ def knox_total(experiment, lmax):
     ell = np.arange(lmax + 1)
     sigma = experiment.beam_fwhm * math.pi / 10800 / math.sqrt(8 * math.log(2))
     out = {}
-    for field, level, top in (("T", experiment.noise_temperature, experiment.ell_max_temperature),
-                              ("E", experiment.noise_polarization, experiment.ell_max_polarization),
-                              ("B", experiment.noise_polarization, experiment.ell_max_polarization)):
+    for field, level, top in (
+        ("T", experiment.noise_temperature, experiment.ell_max_temperature),
+        ("E", experiment.noise_polarization, experiment.ell_max_polarization),
+        ("B", experiment.noise_polarization, experiment.ell_max_polarization),
+    ):
         total = spectra[field * 2][: lmax + 1] + (level * math.pi / 10800) ** 2 * np.exp(ell * (ell + 1) * sigma**2)
         total[(ell < experiment.ell_min) | (ell > top)] = np.inf
         out[field] = total
@@ -158,8 +167,9 @@ def test_a_lower_lmax_caps_the_experiment(experiment, observed):
 def test_the_protocol_accepts_any_object_with_a_filter_method(experiment):
     class Passthrough:
         def filter(self, maps):
-            return FilteredFields(np.zeros((3, harmonics.nalm(8)), complex), 8,
-                                  {k: np.ones(9) for k in ("TT", "EE", "BB", "TE")})
+            return FilteredFields(
+                np.zeros((3, harmonics.nalm(8)), complex), 8, {k: np.ones(9) for k in ("TT", "EE", "BB", "TE")}
+            )
 
     assert isinstance(IsotropicFilter(experiment), FieldFilter)
     assert isinstance(Passthrough(), FieldFilter)

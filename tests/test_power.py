@@ -60,9 +60,15 @@ def test_binning_is_the_weighted_mean_in_half_open_bins():
     assert np.isclose(weighted[0], np.sum(weights[2:5] * cl[2:5]) / np.sum(weights[2:5]))
 
 
-@pytest.mark.parametrize("edges, message", [
-    ([5], "at least two"), ([5, 3], "increase strictly"), ([0, 20], r"lie in \[0, 11\]"), ([0.5, 3], "integer"),
-])
+@pytest.mark.parametrize(
+    "edges, message",
+    [
+        ([5], "at least two"),
+        ([5, 3], "increase strictly"),
+        ([0, 20], r"lie in \[0, 11\]"),
+        ([0.5, 3], "integer"),
+    ],
+)
 def test_bad_edges_are_refused(edges, message):
     with pytest.raises(ValueError, match=message):
         bin_spectrum(np.ones(11), edges)

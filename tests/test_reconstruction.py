@@ -38,7 +38,7 @@ PAIRS = {"TT": (0, 0), "TE": (0, 1), "EE": (1, 1), "TB": (0, 2), "EB": (1, 2)}
 
 
 # ----------------------------------------------------------------------------------- brute force (wigners)
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def three_j(l1, l2, l3, m1, m2, m3):
     """(l1 l2 l3; m1 m2 m3) from wigners, zero outside the selection rules (wigners aborts on |m| > j)."""
     if abs(m1) > l1 or abs(m2) > l2 or abs(m3) > l3 or m1 + m2 + m3 != 0 or not abs(l1 - l2) <= l3 <= l1 + l2:
@@ -83,9 +83,13 @@ def response_tables(L, cl, lmax):
     c2 = {k: v[None, :] for k, v in cl.items()}
     f0, f2, fm2 = oh03_F(L, 0, lmax), oh03_F(L, 2, lmax), oh03_F(L, -2, lmax)
     plus, minus = (f2 + fm2) / 2, (f2 - fm2) / 2
-    gradient = {"TT": c1["TT"] * f0.T + c2["TT"] * f0, "TE": c1["TE"] * plus.T + c2["TE"] * f0,
-                "EE": c1["EE"] * plus.T + c2["EE"] * plus, "TB": 1j * c1["TE"] * minus.T,
-                "EB": 1j * (c1["EE"] * minus.T + c2["BB"] * minus)}
+    gradient = {
+        "TT": c1["TT"] * f0.T + c2["TT"] * f0,
+        "TE": c1["TE"] * plus.T + c2["TE"] * f0,
+        "EE": c1["EE"] * plus.T + c2["EE"] * plus,
+        "TB": 1j * c1["TE"] * minus.T,
+        "EB": 1j * (c1["EE"] * minus.T + c2["BB"] * minus),
+    }
     s0, s2, sm2 = curl_S(L, 0, lmax), curl_S(L, 2, lmax), curl_S(L, -2, lmax)
     parity = (-1.0) ** (ell[:, None] + L + ell[None, :])
     K = {"TT": s0, "EE": (s2 + sm2) / 2, "BB": (s2 + sm2) / 2, "EB": 1j * (s2 - sm2) / 2, "BE": -1j * (s2 - sm2) / 2}
@@ -124,9 +128,12 @@ def brute_force_estimates(first, second, cl, lmax, lmax_L):
     for L in range(1, lmax_L + 1):
         tables = response_tables(L, cl, lmax)
         for M in range(-L, L + 1):
-            terms = [(l1, m1, l2, M - m1, (-1) ** M * three_j(l1, l2, L, m1, M - m1, -M))
-                     for l1 in range(lmax + 1) for m1 in range(-l1, l1 + 1)
-                     for l2 in range(max(abs(l1 - L), abs(M - m1)), min(l1 + L, lmax) + 1)]
+            terms = [
+                (l1, m1, l2, M - m1, (-1) ** M * three_j(l1, l2, L, m1, M - m1, -M))
+                for l1 in range(lmax + 1)
+                for m1 in range(-l1, l1 + 1)
+                for l2 in range(max(abs(l1 - L), abs(M - m1)), min(l1 + L, lmax) + 1)
+            ]
             l1, m1, l2, m2, w = (np.array(v) for v in zip(*terms, strict=True))
             for label in LABELS:
                 x, y = PAIRS[label]
@@ -153,8 +160,9 @@ def tiny_inputs():
 
     cl = {key: np.r_[0.0, 0.0, rng.uniform(0.5, 2.0, lmax - 1)] for key in ("TT", "EE", "BB")}
     cl["TE"] = np.r_[0.0, 0.0, rng.uniform(-0.5, 0.5, lmax - 1)]
-    spectra = lensrec.Spectra(unlensed=cl, lensed=cl, phi=np.ones(lmax + 1),
-                              tensor={k: np.zeros(lmax + 1) for k in ("TT", "EE", "BB")})
+    spectra = lensrec.Spectra(
+        unlensed=cl, lensed=cl, phi=np.ones(lmax + 1), tensor={k: np.zeros(lmax + 1) for k in ("TT", "EE", "BB")}
+    )
     a, b = fields(), fields()
     return lmax, cl, spectra, a, b
 
@@ -182,12 +190,14 @@ def test_position_space_estimates_equal_brute_force_3j_sums(tiny_inputs, mixed):
             assert np.abs(want).max() > 0
             assert np.allclose(mine, want, rtol=0, atol=1e-8 * np.abs(want).max()), (label, component)
     # processing the grid in many small blocks of ring pairs (here 2 rings each) changes only rounding
-    blocked = quadratic_estimates(first_fields, second_fields, lmax_L=lmax_L, spectra=spectra, nthreads=2,
-                                  workspace_mb=0.001)
+    blocked = quadratic_estimates(
+        first_fields, second_fields, lmax_L=lmax_L, spectra=spectra, nthreads=2, workspace_mb=0.001
+    )
     assert blocked.settings["ring_blocks"] > 5
     for label in LABELS:
-        assert np.allclose(blocked.gradient[label], got.gradient[label], rtol=0,
-                           atol=1e-12 * np.abs(got.gradient[label]).max())
+        assert np.allclose(
+            blocked.gradient[label], got.gradient[label], rtol=0, atol=1e-12 * np.abs(got.gradient[label]).max()
+        )
         assert np.allclose(blocked.curl[label], got.curl[label], rtol=0, atol=1e-12 * np.abs(got.curl[label]).max())
 
 
@@ -212,15 +222,21 @@ def test_transform_counts(tiny_inputs):
         got = quadratic_estimates(fields, estimators=label, lmax_L=4, spectra=spectra, nthreads=1)
         assert got.settings["transforms"]["total"] == total, label
     both = quadratic_estimates(fields, estimators=LABELS, lmax_L=4, spectra=spectra, nthreads=1)
-    assert both.settings["transforms"] == {"synthesis_by_spin": {"0": 1, "1": 5, "2": 2, "3": 3}, "synthesis": 11,
-                                           "analysis_spin1": 5, "total": 16}
-    mixed = quadratic_estimates(fields, FilteredFields(b, lmax, cl), estimators=LABELS, lmax_L=4, spectra=spectra,
-                                nthreads=1)
+    assert both.settings["transforms"] == {
+        "synthesis_by_spin": {"0": 1, "1": 5, "2": 2, "3": 3},
+        "synthesis": 11,
+        "analysis_spin1": 5,
+        "total": 16,
+    }
+    mixed = quadratic_estimates(
+        fields, FilteredFields(b, lmax, cl), estimators=LABELS, lmax_L=4, spectra=spectra, nthreads=1
+    )
     assert mixed.settings["transforms"]["synthesis"] == 16  # 7 legs of the first input, 9 of the second
     # unlensed weights have no B-mode power (r = 0), so EB drops the C^BB B legs: 3 syntheses + 1 analysis
     fiducial = lensrec.fiducial_spectra()
-    unlensed = quadratic_estimates(fields, estimators="EB", lmax_L=4, spectra=fiducial, lensed_weights=False,
-                                   nthreads=1)
+    unlensed = quadratic_estimates(
+        fields, estimators="EB", lmax_L=4, spectra=fiducial, lensed_weights=False, nthreads=1
+    )
     assert unlensed.settings["transforms"]["total"] == 4
 
 
@@ -231,10 +247,18 @@ def test_docstring_examples_run():
 # ----------------------------------------------------------------------------------------- small API checks
 @pytest.fixture(scope="module")
 def small_case():
-    experiment = lensrec.Experiment(name="Small Recon Survey", noise_temperature=2.0, beam_fwhm=15.0, ell_min=2,
-                                    ell_max_temperature=96, ell_max_polarization=96)
-    skies = [lensrec.simulate_sky(experiment, nside=64, lmax=96, lmax_margin=64, seed=5, index=i, nthreads=2)
-             for i in range(3)]
+    experiment = lensrec.Experiment(
+        name="Small Recon Survey",
+        noise_temperature=2.0,
+        beam_fwhm=15.0,
+        ell_min=2,
+        ell_max_temperature=96,
+        ell_max_polarization=96,
+    )
+    skies = [
+        lensrec.simulate_sky(experiment, nside=64, lmax=96, lmax_margin=64, seed=5, index=i, nthreads=2)
+        for i in range(3)
+    ]
     return experiment, skies
 
 
@@ -319,7 +343,7 @@ def test_bad_input_is_refused_before_any_transform(small_case):
 # ------------------------------------------------------------------------------------- statistical checks
 def binned_ratios(numerator, denominator, edges):
     weights = 2 * np.arange(numerator.size) + 1.0
-    return (bin_spectrum(numerator, edges, weights)[1] / bin_spectrum(denominator, edges, weights)[1])
+    return bin_spectrum(numerator, edges, weights)[1] / bin_spectrum(denominator, edges, weights)[1]
 
 
 def bin_sums(values, edges):
@@ -382,20 +406,29 @@ def low_noise_full_sky():
     The observed coefficients (beam × (lensed + noise)) go through the filter's harmonic path (its map path is
     checked in tests/test_filtering.py and by the moderate-noise fixture below).
     """
-    experiment = lensrec.Experiment(name="Low Noise Test Survey", noise_temperature=1.0, noise_polarization=1.4,
-                                    beam_fwhm=2.0, ell_min=2, ell_max_temperature=LOW_NOISE_LMAX,
-                                    ell_max_polarization=LOW_NOISE_LMAX)
-    sky = lensrec.simulate_sky(experiment, nside=1024, lmax=LOW_NOISE_LMAX, lmax_margin=500, seed=2026, noise=False,
-                               nthreads=2)
-    noise_spectra = {k: np.nan_to_num(experiment.noise_spectrum(k[0], LOW_NOISE_LMAX), posinf=0.0)
-                     for k in ("TT", "EE", "BB")}
+    experiment = lensrec.Experiment(
+        name="Low Noise Test Survey",
+        noise_temperature=1.0,
+        noise_polarization=1.4,
+        beam_fwhm=2.0,
+        ell_min=2,
+        ell_max_temperature=LOW_NOISE_LMAX,
+        ell_max_polarization=LOW_NOISE_LMAX,
+    )
+    sky = lensrec.simulate_sky(
+        experiment, nside=1024, lmax=LOW_NOISE_LMAX, lmax_margin=500, seed=2026, noise=False, nthreads=2
+    )
+    noise_spectra = {
+        k: np.nan_to_num(experiment.noise_spectrum(k[0], LOW_NOISE_LMAX), posinf=0.0) for k in ("TT", "EE", "BB")
+    }
     noise_spectra["TE"] = np.zeros(LOW_NOISE_LMAX + 1)
     noise = gaussian_cmb_alm(noise_spectra, LOW_NOISE_LMAX, np.random.default_rng(2026))
     ell = harmonics.ell_of_alm(LOW_NOISE_LMAX)
     observed = (sky.lensed_alm + noise) * experiment.beam(LOW_NOISE_LMAX)[ell]
     filt = IsotropicFilter(experiment, nthreads=2)
-    result = reconstruct_filtered(filt.filter_alm(observed), filt.experiment, estimator="MV",
-                                  lmax_L=LOW_NOISE_LMAX_L, nthreads=2)
+    result = reconstruct_filtered(
+        filt.filter_alm(observed), filt.experiment, estimator="MV", lmax_L=LOW_NOISE_LMAX_L, nthreads=2
+    )
     phi = harmonics.truncate_alm(sky.phi_alm, LOW_NOISE_LMAX_L, sky.lmax_unlensed)
     return result, phi
 
@@ -436,8 +469,15 @@ def test_auto_minus_n0_is_the_input_power_at_low_L(low_noise_full_sky, label):
 
 
 MODERATE_LMAX = 1024
-MODERATE = dict(name="Moderate Noise Test Survey", noise_temperature=6.0, noise_polarization=8.5, beam_fwhm=4.0,
-                ell_min=2, ell_max_temperature=MODERATE_LMAX, ell_max_polarization=MODERATE_LMAX)
+MODERATE = dict(
+    name="Moderate Noise Test Survey",
+    noise_temperature=6.0,
+    noise_polarization=8.5,
+    beam_fwhm=4.0,
+    ell_min=2,
+    ell_max_temperature=MODERATE_LMAX,
+    ell_max_polarization=MODERATE_LMAX,
+)
 
 
 @pytest.fixture(scope="module")
@@ -488,15 +528,21 @@ def gaussian_runs():
     total = {k: np.nan_to_num(v, posinf=0.0) for k, v in filt.total.items()}
     ell = harmonics.ell_of_alm(MODERATE_LMAX)
     beam = experiment.beam(MODERATE_LMAX)[ell]
-    fields = [filt.filter_alm(gaussian_cmb_alm(total, MODERATE_LMAX, np.random.default_rng(300 + i)) * beam)
-              for i in range(4)]
+    fields = [
+        filt.filter_alm(gaussian_cmb_alm(total, MODERATE_LMAX, np.random.default_rng(300 + i)) * beam) for i in range(4)
+    ]
     runs, noise = [], None
     for f in fields:
-        runs.append(reconstruct_filtered(f, filt.experiment, estimator="MV", lmax_L=MODERATE_LMAX, noise=noise,
-                                         nthreads=2))
+        runs.append(
+            reconstruct_filtered(f, filt.experiment, estimator="MV", lmax_L=MODERATE_LMAX, noise=noise, nthreads=2)
+        )
         noise = runs[-1].noise
-    mixed = [reconstruct_filtered(fields[a], filt.experiment, second=fields[b], estimator="MV",
-                                  lmax_L=MODERATE_LMAX, noise=noise, nthreads=2) for a, b in ((0, 1), (2, 3))]
+    mixed = [
+        reconstruct_filtered(
+            fields[a], filt.experiment, second=fields[b], estimator="MV", lmax_L=MODERATE_LMAX, noise=noise, nthreads=2
+        )
+        for a, b in ((0, 1), (2, 3))
+    ]
     return runs, mixed, noise
 
 
@@ -542,13 +588,20 @@ MASK_LMAX_L = 400
 @pytest.fixture(scope="module")
 def masked_runs():
     """Seven lensed skies behind an apodized 60-degree cap (C2 taper of 10 degrees): six for the mean-field."""
-    experiment = lensrec.Experiment(name="Masked Test Survey", noise_temperature=1.0, beam_fwhm=5.0, ell_min=2,
-                                    ell_max_temperature=MASK_LMAX, ell_max_polarization=MASK_LMAX)
+    experiment = lensrec.Experiment(
+        name="Masked Test Survey",
+        noise_temperature=1.0,
+        beam_fwhm=5.0,
+        ell_min=2,
+        ell_max_temperature=MASK_LMAX,
+        ell_max_polarization=MASK_LMAX,
+    )
     mask = lensrec.cap_mask(MASK_NSIDE, 0.0, 60.0, 60.0, width=10.0)
     runs, inputs = [], []
     for index in range(7):
-        sky = lensrec.simulate_sky(experiment, nside=MASK_NSIDE, lmax=MASK_LMAX, lmax_margin=300, seed=9,
-                                   index=index, nthreads=2)
+        sky = lensrec.simulate_sky(
+            experiment, nside=MASK_NSIDE, lmax=MASK_LMAX, lmax_margin=300, seed=9, index=index, nthreads=2
+        )
         runs.append(reconstruct(sky.maps, experiment, estimator="MV", lmax_L=MASK_LMAX_L, mask=mask, nthreads=2))
         inputs.append(harmonics.truncate_alm(sky.phi_alm, MASK_LMAX_L, sky.lmax_unlensed))
     return runs, inputs, mask

@@ -25,17 +25,29 @@ def add_arguments(parser) -> None:
     from ..cli import add_common
 
     add_common(parser, experiment=True, out=True)
-    parser.add_argument("--maps", required=True, help="HEALPix FITS file with T, Q, U in uK (e.g. from 'lensrec simulate')")
-    parser.add_argument("--estimator", default="MV",
-                        help="one of TT, TE, EE, TB, EB, MV (default: %(default)s)")
-    parser.add_argument("--lmax-L", dest="lmax_L", type=int, default=None,
-                        help="highest lensing multipole (default and maximum: the CMB lmax)")
-    parser.add_argument("--lmax", type=int, default=None,
-                        help="CMB band limit of the filter (default: the experiment's largest ell_max; <= 3*nside-1)")
+    parser.add_argument(
+        "--maps", required=True, help="HEALPix FITS file with T, Q, U in uK (e.g. from 'lensrec simulate')"
+    )
+    parser.add_argument("--estimator", default="MV", help="one of TT, TE, EE, TB, EB, MV (default: %(default)s)")
+    parser.add_argument(
+        "--lmax-L",
+        dest="lmax_L",
+        type=int,
+        default=None,
+        help="highest lensing multipole (default and maximum: the CMB lmax)",
+    )
+    parser.add_argument(
+        "--lmax",
+        type=int,
+        default=None,
+        help="CMB band limit of the filter (default: the experiment's largest ell_max; <= 3*nside-1)",
+    )
     parser.add_argument("--mask", default=None, help="apodized HEALPix FITS mask (values in [0, 1], same nside)")
-    parser.add_argument("--unlensed-weights", action="store_true",
-                        help="use unlensed CMB spectra in the weights and response (default: lensed)")
-
+    parser.add_argument(
+        "--unlensed-weights",
+        action="store_true",
+        help="use unlensed CMB spectra in the weights and response (default: lensed)",
+    )
 
 
 def _column_count(path: str) -> int:
@@ -60,8 +72,10 @@ def n0_document(result) -> dict:
     noise = result.noise
     return {
         "L": noise.L.astype(int).tolist(),
-        "n0": {label: {component: values.tolist() for component, values in parts.items()}
-               for label, parts in noise.n0.items()},
+        "n0": {
+            label: {component: values.tolist() for component, values in parts.items()}
+            for label, parts in noise.n0.items()
+        },
         "snr": noise.lensing_snr(),
     }
 
@@ -87,14 +101,26 @@ def run(args) -> int:
     maps = read_maps(args.maps)
     nside = lensrec.harmonics.npix_to_nside(maps.shape[1], f"maps in {args.maps!r}")
     mask = lensrec.load_mask(args.mask, nside) if args.mask else None
-    inputs = {"maps": os.path.abspath(args.maps), "maps_sha256": file_sha256(args.maps), "nside": nside,
-              "mask": os.path.abspath(args.mask) if args.mask else None,
-              "mask_sha256": file_sha256(args.mask) if args.mask else None}
+    inputs = {
+        "maps": os.path.abspath(args.maps),
+        "maps_sha256": file_sha256(args.maps),
+        "nside": nside,
+        "mask": os.path.abspath(args.mask) if args.mask else None,
+        "mask_sha256": file_sha256(args.mask) if args.mask else None,
+    }
     timings["inputs"] = time.perf_counter() - start
 
     start = time.perf_counter()
-    result = lensrec.reconstruct(maps, experiment, estimator=estimator, lmax_L=args.lmax_L, mask=mask, lmax=args.lmax,
-                                 nthreads=args.nthreads, lensed_weights=not args.unlensed_weights)
+    result = lensrec.reconstruct(
+        maps,
+        experiment,
+        estimator=estimator,
+        lmax_L=args.lmax_L,
+        mask=mask,
+        lmax=args.lmax,
+        nthreads=args.nthreads,
+        lensed_weights=not args.unlensed_weights,
+    )
     timings["reconstruction"] = time.perf_counter() - start
 
     start = time.perf_counter()
@@ -103,18 +129,34 @@ def run(args) -> int:
     write_alm(paths["curl_alm.fits"], result.curl_alm, lmax=result.lmax_L, force=args.force)
     arguments = {key: value for key, value in vars(args).items() if not key.startswith("_")}
     document = n0_document(result)
-    document["provenance"] = provenance("reconstruct", arguments=arguments, experiment=experiment,
-                                        extra={"settings": {"estimator": estimator, "lmax_L": result.lmax_L,
-                                                            "lensed_weights": not args.unlensed_weights}})
+    document["provenance"] = provenance(
+        "reconstruct",
+        arguments=arguments,
+        experiment=experiment,
+        extra={
+            "settings": {"estimator": estimator, "lmax_L": result.lmax_L, "lensed_weights": not args.unlensed_weights}
+        },
+    )
     write_json(paths["n0.json"], document, force=args.force)
     timings["writing"] = time.perf_counter() - start
-    record = provenance("reconstruct", arguments=arguments, experiment=experiment, timings=timings,
-                        extra={"settings": dict(result.settings), "inputs": inputs, "outputs": list(OUTPUTS),
-                               "mask_moments": None if result.mask_moments is None else dict(result.mask_moments)})
+    record = provenance(
+        "reconstruct",
+        arguments=arguments,
+        experiment=experiment,
+        timings=timings,
+        extra={
+            "settings": dict(result.settings),
+            "inputs": inputs,
+            "outputs": list(OUTPUTS),
+            "mask_moments": None if result.mask_moments is None else dict(result.mask_moments),
+        },
+    )
     write_json(paths["run.json"], record, force=args.force)
     transforms = result.settings["transforms"]
-    print(f"lensrec reconstruct: {estimator} to L = {result.lmax_L} from nside {nside} maps "
-          f"({transforms['synthesis']} syntheses + {transforms['analysis_spin1']} analyses on a "
-          f"{result.settings['grid'][0]} x {result.settings['grid'][1]} grid, {timings['reconstruction']:.1f} s)")
+    print(
+        f"lensrec reconstruct: {estimator} to L = {result.lmax_L} from nside {nside} maps "
+        f"({transforms['synthesis']} syntheses + {transforms['analysis_spin1']} analyses on a "
+        f"{result.settings['grid'][0]} x {result.settings['grid'][1]} grid, {timings['reconstruction']:.1f} s)"
+    )
     print(f"wrote {', '.join(paths.values())}")
     return 0

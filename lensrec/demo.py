@@ -39,8 +39,9 @@ FORECAST_L = (30, 100, 300, 1000)
 
 
 def default_lmax(nside: int, experiment) -> int:
-    """Band limit of the demo maps: 3·nside − 1, capped at 3000 and at the experiment's largest ℓ_max."""
-    return min(3 * nside - 1, 3000, max(experiment.ell_max_temperature, experiment.ell_max_polarization))
+    """Band limit of the demo maps: 2·nside (where HEALPix analysis is accurate), capped at 3000 and at the
+    experiment's largest ℓ_max. Closer to 3·nside − 1 the filter's map analysis lowers the response by ~2%."""
+    return min(2 * nside, 3000, max(experiment.ell_max_temperature, experiment.ell_max_polarization))
 
 
 def _binned(values, edges):

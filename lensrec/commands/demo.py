@@ -18,7 +18,7 @@ def add_arguments(parser) -> None:
 
     add_common(parser, experiment=True, out=True, seed=True)
     parser.add_argument("--nside", type=int, default=512, help="HEALPix nside of the simulation (default: %(default)s)")
-    parser.add_argument("--lmax", type=int, default=None, help="CMB band limit (default: min(3*nside-1, 3000))")
+    parser.add_argument("--lmax", type=int, default=None, help="CMB band limit (default: min(2*nside, 3000))")
     parser.add_argument(
         "--lmax-L",
         dest="lmax_L",

@@ -5,7 +5,7 @@ BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed-stamp
 OUT ?= demo_output
 
-.PHONY: install demo lab test test-fast bench lint clean
+.PHONY: install demo lab test test-fast validate bench lint clean
 
 $(STAMP): pyproject.toml
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
@@ -26,7 +26,11 @@ test: install
 	$(BIN)/python -m pytest -q
 
 test-fast: install
-	$(BIN)/python -m pytest -q -m "not slow and not browser"
+	$(BIN)/python -m pytest -q -m "not slow and not browser and not validate"
+
+# Long physics checks (minutes to an hour); their figures are recorded in docs/validation.md.
+validate: install
+	$(BIN)/python -m pytest -q -m validate
 
 bench: install
 	$(BIN)/python benchmarks/run_all.py $(if $(QUICK),--quick,)

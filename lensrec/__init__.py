@@ -28,7 +28,7 @@ from .reconstruction import (
 from .sky import SimulatedSky, deflection_maps, lens_alm, lens_tqu_alm, simulate_sky
 from .spectra import Spectra, fiducial_spectra, spectra_from_camb
 from .suites import LensingSuite, lensing_suite_settings, open_lensing_suite, run_lensing_suite
-from .tensor_forecast import delensing_forecast, sigma_r
+from .tensor_forecast import TensorFisher, delensing_forecast, power_law_foreground_bb, sigma_r, tensor_fisher
 
 __all__ = [
     "__version__",
@@ -50,6 +50,9 @@ __all__ = [
     "fiducial_spectra",
     "spectra_from_camb",
     "sigma_r",
+    "tensor_fisher",
+    "TensorFisher",
+    "power_law_foreground_bb",
     "lensed_cmb_spectra",
     "first_order_lensed_bb",
     "delensed_spectra",

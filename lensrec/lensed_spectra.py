@@ -537,8 +537,12 @@ def delensed_spectra(
     K[C^EE, C^φφ] − K[W C^EE, ρ² C^φφ] = K[C^EE, C^φφ,res] + K[(1 − W) C^EE, ρ² C^φφ], with K the
     convolution of :func:`first_order_lensed_bb`; the second term (lensing of the E modes missing from the
     template by the reconstructed φ) is added to BB at first order. TT, EE and TE are not changed by
-    ``ee_noise``. Neither the reconstruction-noise lensing of E (N0-sourced B modes) nor the delensing bias
-    from reusing the same B modes in φ̂ is included (see :data:`lensrec.tensor_forecast.DELENSING_BIAS_NOTE`).
+    ``ee_noise``. The B modes of E lensed by the reconstruction noise in the template are included: with the
+    Wiener filter of the true N0 the template power K[W C^EE, ρ⁴(C^φφ + N0)] equals its cross with the
+    lensing B modes, K[W C^EE, ρ² C^φφ], so the residual K[C^EE, C^φφ] − 2 K[W C^EE, ρ² C^φφ] +
+    K[W C^EE, ρ² C^φφ] is the expression above (checked on simulations in tests/test_tensor_forecast.py). Not
+    included: the delensing bias from reusing the same B modes in φ̂ (see
+    :data:`lensrec.tensor_forecast.DELENSING_BIAS_NOTE`) and a reconstruction whose noise differs from ``n0``.
 
     Parameters
     ----------

@@ -8,6 +8,15 @@ practice; e.g. Knox 1995, PRD 52, 4307, for the variance of a measured spectrum)
 
 where C^BB,lens is whatever lensing B-mode power is left in the map: the full lensing B modes, a delensed
 residual, or a forecast residual from :func:`lensrec.delensed_spectra`.
+
+:func:`tensor_fisher` extends this to several parameters: the model is
+
+    C_ℓ^BB = r C_ℓ^t + A_lens C_ℓ^lens + A_fg C_ℓ^fg + N_ℓ,
+
+evaluated at the fiducial r, A_lens = 1 (and A_fg = 1 if a foreground residual is given), with the Fisher
+matrix F_ij = Σ_ℓ f_sky (2ℓ+1)/2 · ∂_i C_ℓ ∂_j C_ℓ / C_ℓ² (Tegmark, Taylor & Heavens 1997, ApJ 480, 22).
+The conditional σ(r) = F_rr^(-1/2) (the amplitudes known) is exactly :func:`sigma_r`; the marginalized
+σ(r) = [(F⁻¹)_rr]^(1/2) lets the amplitudes float, and is never smaller.
 """
 
 from __future__ import annotations
@@ -20,7 +29,16 @@ import numpy as np
 
 from ._checks import as_finite_array, as_float, as_int
 
-__all__ = ["sigma_r", "delensing_forecast", "alens_residual", "DelensingForecast", "DELENSING_BIAS_NOTE"]
+__all__ = [
+    "sigma_r",
+    "tensor_fisher",
+    "TensorFisher",
+    "power_law_foreground_bb",
+    "delensing_forecast",
+    "alens_residual",
+    "DelensingForecast",
+    "DELENSING_BIAS_NOTE",
+]
 
 DELENSING_BIAS_NOTE = (
     "The forecast residual assumes the B-mode template and the B modes it is subtracted from are independent. "
@@ -145,6 +163,224 @@ def sigma_r(bb_lensing, bb_noise, bb_tensor_r1, sky_fraction, ell_min, ell_max, 
     return 1.0 / math.sqrt(fisher)
 
 
+# Dust-like slope of a polarized foreground residual: D_ℓ^BB ∝ ℓ^-0.42, i.e. C_ℓ ∝ ℓ^-2.42 (Planck
+# Collaboration Int. XXX 2016, A&A 586, A133).
+FOREGROUND_SLOPE = -0.42
+FOREGROUND_PIVOT = 80
+
+
+def power_law_foreground_bb(lmax, amplitude, slope=FOREGROUND_SLOPE, ell_pivot=FOREGROUND_PIVOT) -> np.ndarray:
+    """A power-law foreground-residual B-mode spectrum, D_ℓ = amplitude · (ℓ / ell_pivot)^slope.
+
+    Parameters
+    ----------
+    lmax : int
+        Highest multipole (≥ 2).
+    amplitude : float
+        D_ℓ = ℓ(ℓ+1) C_ℓ / 2π at ``ell_pivot`` in µK² (≥ 0).
+    slope : float, default -0.42
+        Power-law index of D_ℓ; the default is the slope of polarized dust B modes (Planck Collaboration
+        Int. XXX 2016, A&A 586, A133).
+    ell_pivot : int, default 80
+        Pivot multipole of ``amplitude``.
+
+    Returns
+    -------
+    ndarray
+        C_ℓ^fg in µK², ℓ = 0 … lmax (0 at ℓ < 2).
+
+    Examples
+    --------
+    >>> import math
+    >>> from lensrec.tensor_forecast import power_law_foreground_bb
+    >>> fg = power_law_foreground_bb(100, 0.01)
+    >>> round(float(80 * 81 * fg[80] / (2 * math.pi)), 12)
+    0.01
+    """
+    lmax = as_int(lmax, "lmax", minimum=2)
+    amplitude = as_float(amplitude, "amplitude", minimum=0.0)
+    slope = as_float(slope, "slope")
+    ell_pivot = as_int(ell_pivot, "ell_pivot", minimum=2)
+    ell = np.arange(lmax + 1, dtype=np.float64)
+    out = np.zeros(lmax + 1)
+    out[2:] = amplitude * (ell[2:] / ell_pivot) ** slope * 2.0 * math.pi / (ell[2:] * (ell[2:] + 1.0))
+    return out
+
+
+@dataclass(frozen=True, eq=False)
+class TensorFisher:
+    """Result of :func:`tensor_fisher`.
+
+    Attributes
+    ----------
+    parameters : tuple of str
+        Parameter names in the order of the matrix: ``"r"``, then ``"alens"`` and ``"foreground"`` when
+        they are varied.
+    fisher : ndarray, shape (n, n)
+        The Fisher matrix.
+    sigma_r_marginalized : float
+        [(F⁻¹)_rr]^(1/2): σ(r) with the amplitudes free.
+    sigma_r_conditional : float
+        F_rr^(-1/2): σ(r) with the amplitudes fixed (equal to :func:`sigma_r`).
+    sigma : dict of str to float
+        Marginalized 1σ error of every parameter.
+    correlation_r_alens : float
+        Correlation coefficient of r and A_lens in F⁻¹ (NaN if A_lens is not varied).
+    notes : tuple of str
+        Parameters left fixed because their spectrum is zero in the range, and the model's caveats.
+    """
+
+    parameters: tuple
+    fisher: np.ndarray
+    sigma_r_marginalized: float
+    sigma_r_conditional: float
+    sigma: dict
+    correlation_r_alens: float
+    notes: tuple = ()
+
+    def to_dict(self) -> dict:
+        return {
+            "parameters": list(self.parameters),
+            "fisher": self.fisher.tolist(),
+            "sigma_r_marginalized": self.sigma_r_marginalized,
+            "sigma_r_conditional": self.sigma_r_conditional,
+            "sigma": dict(self.sigma),
+            "correlation_r_alens": self.correlation_r_alens,
+            "notes": list(self.notes),
+        }
+
+
+def tensor_fisher(
+    bb_lensing,
+    bb_noise,
+    bb_tensor_r1,
+    sky_fraction,
+    ell_min,
+    ell_max,
+    r=0.0,
+    foreground_bb=None,
+    vary_alens=True,
+) -> TensorFisher:
+    """Fisher forecast of r together with a residual-lensing amplitude (and a foreground-residual amplitude).
+
+    The B-mode power is modeled as C_ℓ = r C_ℓ^t + A_lens C_ℓ^lens + A_fg C_ℓ^fg + N_ℓ with Gaussian
+    bandpower errors (cosmic plus noise variance, f_sky mode counting), at the fiducial r, A_lens = 1 and
+    A_fg = 1, and F_ij = Σ_ℓ f_sky (2ℓ+1)/2 · ∂_i C_ℓ ∂_j C_ℓ / C_ℓ².
+
+    Parameters
+    ----------
+    bb_lensing, bb_noise, bb_tensor_r1, sky_fraction, ell_min, ell_max, r
+        As for :func:`sigma_r`. ``bb_lensing`` is the lensing B-mode power left in the map (lensed or a
+        delensed residual); its amplitude A_lens is the lensing nuisance parameter.
+    foreground_bb : array_like, optional
+        The foreground-residual B-mode power at amplitude 1 (µK², from ℓ = 0, e.g.
+        :func:`power_law_foreground_bb`); it adds to the variance and its amplitude A_fg is varied.
+    vary_alens : bool, default True
+        Vary A_lens (False fixes it: then only r and, if given, A_fg).
+
+    Returns
+    -------
+    TensorFisher
+        Marginalized and conditional σ(r). A nuisance amplitude whose spectrum is zero over the range
+        (e.g. a perfectly delensed residual) carries no information and cannot move r: it is left fixed and
+        named in ``notes``.
+
+    Raises
+    ------
+    TypeError, ValueError
+        As :func:`sigma_r`; also for a bad ``foreground_bb`` and for nuisance spectra so nearly degenerate
+        with each other or with the tensor spectrum that the Fisher matrix cannot be inverted.
+
+    References
+    ----------
+    Tegmark, Taylor & Heavens 1997, ApJ 480, 22 (the Fisher matrix of Gaussian fields); Knox 1995,
+    PRD 52, 4307 (bandpower variance with noise).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from lensrec.tensor_forecast import sigma_r, tensor_fisher
+    >>> s = __import__("lensrec").fiducial_spectra()
+    >>> lens, tensor, noise = s.lensed["BB"][:301], s.tensor["BB"][:301], np.full(301, 1e-7)
+    >>> out = tensor_fisher(lens, noise, tensor, 0.1, 30, 300)
+    >>> round(out.sigma_r_conditional / sigma_r(lens, noise, tensor, 0.1, 30, 300), 12)
+    1.0
+    >>> bool(out.sigma_r_marginalized >= out.sigma_r_conditional)
+    True
+    """
+    ell_min = as_int(ell_min, "ell_min", minimum=2)
+    ell_max = as_int(ell_max, "ell_max", minimum=2)
+    if ell_max < ell_min:
+        raise ValueError(f"ell_max={ell_max} must be >= ell_min={ell_min} (the multipole range is inverted)")
+    sky_fraction = as_float(sky_fraction, "sky_fraction", minimum=0.0, maximum=1.0, strict_minimum=True)
+    r = as_float(r, "r", minimum=0.0)
+    if not isinstance(vary_alens, (bool, np.bool_)):
+        raise TypeError(f"vary_alens must be True or False, got {vary_alens!r}")
+    used = slice(ell_min, ell_max + 1)
+    lensing = _spectrum(bb_lensing, "bb_lensing", ell_max)[used]
+    noise = _spectrum(bb_noise, "bb_noise", ell_max, allow_inf=True)[used]
+    tensor = _spectrum(bb_tensor_r1, "bb_tensor_r1", ell_max)[used]
+    foreground = None if foreground_bb is None else _spectrum(foreground_bb, "foreground_bb", ell_max)[used]
+    ell = np.arange(ell_min, ell_max + 1, dtype=np.float64)
+    total = r * tensor + lensing + noise + (0.0 if foreground is None else foreground)
+    data = np.isfinite(noise)
+    if np.any(data & (total == 0.0) & (tensor > 0.0)):
+        where = int(ell[np.argmax(data & (total == 0.0) & (tensor > 0.0))])
+        raise ValueError(
+            f"the Fisher forecast is degenerate at l = {where}: tensor power but zero variance; give r > 0 or a "
+            "non-zero bb_lensing, bb_noise or foreground_bb"
+        )
+    data &= total > 0.0
+    derivatives = {"r": tensor}
+    notes = []
+    for name, spectrum, wanted in (("alens", lensing, vary_alens), ("foreground", foreground, foreground is not None)):
+        if not wanted:
+            continue
+        if np.any(spectrum[data] > 0.0):
+            derivatives[name] = spectrum
+        else:
+            notes.append(
+                f"{name} is held fixed: its spectrum is zero at every multipole with data, so it cannot move r"
+            )
+    weight = np.zeros(ell.size)
+    weight[data] = sky_fraction * (2.0 * ell[data] + 1.0) / 2.0 / total[data] ** 2
+    names = tuple(derivatives)
+    stacked = np.array([np.where(data, derivatives[name], 0.0) for name in names])
+    fisher = (stacked * weight) @ stacked.T
+    if not fisher[0, 0] > 0.0:
+        raise ValueError(
+            f"no multipole in [{ell_min}, {ell_max}] carries information on r (tensor power zero or noise "
+            "infinite everywhere); widen the range or check the inputs"
+        )
+    scale = np.sqrt(np.diag(fisher))
+    normalized = fisher / np.outer(scale, scale)
+    if np.linalg.cond(normalized) > 1e12:
+        raise ValueError(
+            f"the Fisher matrix over {names} is singular: the spectra of these parameters are (nearly) "
+            "proportional over the range, so they cannot be separated"
+        )
+    covariance = np.linalg.inv(normalized) / np.outer(scale, scale)
+    sigma = {name: float(math.sqrt(covariance[i, i])) for i, name in enumerate(names)}
+    if "alens" in names:
+        k = names.index("alens")
+        correlation = float(covariance[0, k] / math.sqrt(covariance[0, 0] * covariance[k, k]))
+    else:
+        correlation = float("nan")
+    return TensorFisher(
+        parameters=names,
+        fisher=fisher,
+        sigma_r_marginalized=sigma["r"],
+        sigma_r_conditional=1.0 / math.sqrt(fisher[0, 0]),
+        sigma=sigma,
+        correlation_r_alens=correlation,
+        notes=tuple(notes)
+        + (
+            "Gaussian BB-only Fisher forecast with f_sky mode counting; amplitudes at fiducial 1, "
+            "derivatives are the given spectra.",
+        ),
+    )
+
+
 # Primordial B modes carry (almost) no information above this multipole: the r = 1 tensor BB at ℓ = 1000
 # is 2e-3 of the lensing BB and 1e-7 of its own peak (fiducial camb spectra).
 DEFAULT_FORECAST_LMAX = 1000
@@ -168,7 +404,11 @@ class DelensingForecast:
     alens_residual : float
         A_lens^res, the amplitude of lensing BB left after delensing (see :func:`delensing_forecast`).
     sigma_r_lensed, sigma_r_delensed : float
-        σ(r) from BB alone without and with delensing.
+        σ(r) from BB alone without and with delensing, the lensing (and foreground) amplitude fixed: the
+        conditional σ(r) of :func:`tensor_fisher`.
+    sigma_r_lensed_marginalized, sigma_r_delensed_marginalized : float
+        The same with the lensing amplitude (A_lens, or A_lens^res after delensing) and, if a foreground
+        residual is given, its amplitude marginalized (:func:`tensor_fisher`).
     ell_min, ell_max : int
         Multipole range of the B-mode Fisher sums and of A_lens^res.
     sky_fraction, r : float
@@ -191,6 +431,9 @@ class DelensingForecast:
     sky_fraction: float
     r: float
     notes: tuple = ()
+    sigma_r_lensed_marginalized: float = float("nan")
+    sigma_r_delensed_marginalized: float = float("nan")
+    foreground_bb: np.ndarray | None = None
 
     @property
     def improvement(self) -> float:
@@ -203,7 +446,9 @@ class DelensingForecast:
         for item in dataclasses.fields(self):
             value = getattr(self, item.name)
             out[item.name] = (
-                value.tolist()
+                None
+                if value is None
+                else value.tolist()
                 if isinstance(value, np.ndarray)
                 else (list(value) if isinstance(value, tuple) else value)
             )
@@ -266,6 +511,7 @@ def delensing_forecast(
     template_e_noise=True,
     ell_margin=None,
     nthreads=None,
+    foreground_bb=None,
 ) -> DelensingForecast:
     """Forecast the lensing B modes left after delensing, A_lens^res, and σ(r) with and without delensing.
 
@@ -305,6 +551,10 @@ def delensing_forecast(
         Input multipoles above lmax used for lensing (default 2000; see :func:`lensrec.lensed_cmb_spectra`).
     nthreads : int, optional
         Threads for the Wigner-d engine.
+    foreground_bb : array_like, optional
+        A foreground-residual B-mode spectrum (µK², from ℓ = 0, reaching lmax; e.g.
+        :func:`power_law_foreground_bb`) added to the variance of every σ(r), whose amplitude is marginalized
+        in the ``*_marginalized`` values.
 
     Returns
     -------
@@ -320,8 +570,13 @@ def delensing_forecast(
 
     Notes
     -----
-    Not included: the delensing bias above; the B modes from lensing the template's reconstruction noise
-    (N0-lensed E); foregrounds, E-to-B leakage from masks, and any marginalization over A_lens.
+    The B modes that the template's own reconstruction noise creates (E lensed by the noise in φ^WF) are
+    included: with the Wiener filter built from the true N0, the template's power K[W C^EE, ρ⁴(C^φφ + N0)]
+    equals its cross with the lensing B modes K[W C^EE, ρ² C^φφ], so the residual is
+    K[C^EE, C^φφ] − K[W C^EE, ρ² C^φφ], which is exactly what C^φφ(1 − ρ²) and the E-noise term give
+    (checked on simulations in tests/test_tensor_forecast.py). Not included: the delensing bias above,
+    foregrounds unless ``foreground_bb`` is given, E-to-B leakage from masks, and an N0 other than the one
+    the Wiener filter uses.
 
     References
     ----------
@@ -393,10 +648,17 @@ def delensing_forecast(
     tensor = np.array(spectra.tensor["BB"][: lmax + 1])
     lensed_bb, residual_bb = lensed["BB"], delensed["BB"]
     sky = experiment.sky_fraction
+    foreground = None if foreground_bb is None else _spectrum(foreground_bb, "foreground_bb", lmax).copy()
+    fisher_lensed, fisher_delensed = (
+        tensor_fisher(bb, noise, tensor, sky, ell_min, ell_max, r=r, foreground_bb=foreground)
+        for bb in (lensed_bb, residual_bb)
+    )
     notes = (
         DELENSING_BIAS_NOTE,
-        "sigma(r) is a Gaussian, BB-only, single-parameter Fisher forecast with the f_sky mode-counting "
-        "approximation; no foregrounds, no E-to-B leakage, no A_lens marginalization.",
+        "sigma(r) is a Gaussian, BB-only Fisher forecast with the f_sky mode-counting approximation and no "
+        "E-to-B leakage; sigma_r_lensed and sigma_r_delensed hold the lensing amplitude fixed (conditional), "
+        "the *_marginalized values let it float"
+        + (" together with the foreground-residual amplitude." if foreground is not None else "; no foregrounds."),
         "alens_residual is the Fisher-weighted mean of C^res/C^lens over the B-mode range, weights "
         "(2l+1) (C^lens / (C^res + N))^2.",
         "The residual is the lensing of the CMB by C^phiphi (1 - rho^2)"
@@ -414,11 +676,14 @@ def delensing_forecast(
         tensor_bb_r1=tensor,
         phi_residual=delensed["phi_residual"],
         alens_residual=alens_residual(lensed_bb, residual_bb, noise, ell_min, ell_max),
-        sigma_r_lensed=sigma_r(lensed_bb, noise, tensor, sky, ell_min, ell_max, r=r),
-        sigma_r_delensed=sigma_r(residual_bb, noise, tensor, sky, ell_min, ell_max, r=r),
+        sigma_r_lensed=fisher_lensed.sigma_r_conditional,
+        sigma_r_delensed=fisher_delensed.sigma_r_conditional,
         ell_min=ell_min,
         ell_max=ell_max,
         sky_fraction=sky,
         r=r,
         notes=notes,
+        sigma_r_lensed_marginalized=fisher_lensed.sigma_r_marginalized,
+        sigma_r_delensed_marginalized=fisher_delensed.sigma_r_marginalized,
+        foreground_bb=foreground,
     )

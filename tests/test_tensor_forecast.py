@@ -5,7 +5,7 @@ import pytest
 
 import lensrec
 from lensrec import sigma_r
-from lensrec.tensor_forecast import alens_residual
+from lensrec.tensor_forecast import alens_residual, power_law_foreground_bb, tensor_fisher
 
 ARCMIN = math.pi / 10800.0
 
@@ -240,3 +240,161 @@ def test_delensing_forecast_refuses_bad_input(fiducial, arguments, error, match)
     call.update(arguments)
     with pytest.raises(error, match=match):
         lensrec.delensing_forecast(**call)
+
+
+# ------------------------------------------------------------------ r with the lensing amplitude free
+def _fisher_inputs(fiducial, lmax=300):
+    ell = np.arange(lmax + 1)
+    return {
+        "bb_lensing": np.array(fiducial.lensed["BB"][: lmax + 1]),
+        "bb_noise": _white_noise(2.0, lmax),
+        "bb_tensor_r1": np.array(fiducial.tensor["BB"][: lmax + 1]),
+        "sky_fraction": 0.4,
+        "ell_min": 20,
+        "ell_max": lmax,
+        "r": 0.01,
+        "foreground_bb": np.where(ell >= 2, 3e-7 * (np.maximum(ell, 2) / 80.0) ** -2.42, 0.0),
+    }
+
+
+def test_two_parameter_fisher_with_the_lensing_amplitude_fixed_is_sigma_r(fiducial):
+    # common practice (Tegmark, Taylor & Heavens 1997, ApJ 480, 22): fixing a parameter leaves F_rr, so the
+    # conditional sigma(r) = F_rr^-1/2 is the one-parameter forecast; only summation order differs.
+    inputs = _fisher_inputs(fiducial)
+    inputs.pop("foreground_bb")
+    result = tensor_fisher(**inputs)
+    assert result.parameters == ("r", "alens")
+    assert result.sigma_r_conditional == pytest.approx(sigma_r(**inputs), rel=1e-12)
+    fixed = tensor_fisher(**inputs, vary_alens=False)
+    assert fixed.parameters == ("r",)
+    assert fixed.sigma_r_marginalized == pytest.approx(sigma_r(**inputs), rel=1e-12)
+
+
+def test_fisher_matches_a_direct_two_parameter_sum(fiducial):
+    # Tegmark, Taylor & Heavens 1997, ApJ 480, 22: F_ij = sum_l f_sky (2l+1)/2 dC/dp_i dC/dp_j / C^2 and the
+    # marginalized error sqrt((F^-1)_rr); written out here with the 2x2 inverse in closed form.
+    inputs = _fisher_inputs(fiducial)
+    inputs.pop("foreground_bb")
+    f_rr = f_ra = f_aa = 0.0
+    for ell in range(20, 301):
+        total = 0.01 * inputs["bb_tensor_r1"][ell] + inputs["bb_lensing"][ell] + inputs["bb_noise"][ell]
+        modes = 0.4 * (2 * ell + 1) / 2.0 / total**2
+        f_rr += modes * inputs["bb_tensor_r1"][ell] ** 2
+        f_ra += modes * inputs["bb_tensor_r1"][ell] * inputs["bb_lensing"][ell]
+        f_aa += modes * inputs["bb_lensing"][ell] ** 2
+    marginalized = math.sqrt(f_aa / (f_rr * f_aa - f_ra**2))
+    result = tensor_fisher(**inputs)
+    assert result.fisher[0, 1] == pytest.approx(f_ra, rel=1e-12)  # float rounding only
+    assert result.sigma_r_marginalized == pytest.approx(marginalized, rel=1e-9)  # a 2x2 inverse: rounding only
+    assert result.sigma_r_conditional == pytest.approx(f_rr**-0.5, rel=1e-12)
+    # the lensing BB and the tensor BB overlap at l < 150, so marginalizing costs something measurable
+    assert result.sigma_r_marginalized > 1.01 * result.sigma_r_conditional
+    assert -1.0 < result.correlation_r_alens < 0.0  # more lensing mimics more r: anti-correlated (common practice)
+
+
+def test_marginalizing_never_lowers_sigma_r(fiducial):
+    # common practice: (F^-1)_rr >= 1/F_rr for any positive-definite F (Cauchy-Schwarz), and freeing a third
+    # parameter at the same variance can only widen it further
+    inputs = _fisher_inputs(fiducial)
+    foreground = inputs.pop("foreground_bb")
+    for scale in (0.0, 0.3, 1.0):
+        lensing = scale * inputs["bb_lensing"]
+        three = tensor_fisher(**{**inputs, "bb_lensing": lensing}, foreground_bb=foreground)
+        # the same variance with the foreground power counted as fixed noise: r and A_lens only
+        two = tensor_fisher(**{**inputs, "bb_lensing": lensing, "bb_noise": inputs["bb_noise"] + foreground})
+        assert three.sigma_r_conditional == pytest.approx(two.sigma_r_conditional, rel=1e-12)
+        assert three.sigma_r_marginalized >= two.sigma_r_marginalized >= two.sigma_r_conditional
+    assert three.parameters == ("r", "alens", "foreground")
+    assert three.sigma_r_marginalized > 1.01 * two.sigma_r_marginalized  # the dust-like slope overlaps r
+
+
+def test_a_zero_residual_amplitude_is_held_fixed(fiducial):
+    # perfect delensing leaves no lensing B power: its amplitude has no derivative and cannot move r
+    inputs = _fisher_inputs(fiducial)
+    inputs.pop("foreground_bb")
+    inputs["bb_lensing"] = np.zeros(301)
+    result = tensor_fisher(**inputs)
+    assert result.parameters == ("r",) and "alens is held fixed" in result.notes[0]
+    assert result.sigma_r_marginalized == pytest.approx(sigma_r(**inputs), rel=1e-12)
+
+
+def test_proportional_nuisance_spectra_are_refused(fiducial):
+    inputs = _fisher_inputs(fiducial)
+    inputs["foreground_bb"] = 2.0 * inputs["bb_lensing"]
+    with pytest.raises(ValueError, match="singular"):
+        tensor_fisher(**inputs)
+    inputs["foreground_bb"] = -inputs["bb_lensing"]
+    with pytest.raises(ValueError, match="foreground_bb must be non-negative"):
+        tensor_fisher(**inputs)
+
+
+def test_power_law_foreground_has_the_stated_slope():
+    # Planck Collaboration Int. XXX 2016, A&A 586, A133: dust D_l^BB ∝ l^-0.42
+    fg = power_law_foreground_bb(500, 0.02)
+    ell = np.arange(501)
+    d_ell = ell * (ell + 1) * fg / (2 * math.pi)
+    assert d_ell[80] == pytest.approx(0.02, rel=1e-12)
+    assert d_ell[320] / d_ell[80] == pytest.approx(4.0**-0.42, rel=1e-12)
+    with pytest.raises(ValueError, match="amplitude must be >= 0"):
+        power_law_foreground_bb(500, -1.0)
+
+
+def test_delensing_forecast_reports_marginalized_and_conditional_sigma_r(fiducial):
+    experiment = lensrec.load_experiment("deep_highland")
+    fg = power_law_foreground_bb(500, 1e-3)
+    result = lensrec.delensing_forecast(experiment, n0=_toy_n0(fiducial.lmax + 1), lmax=500, foreground_bb=fg)
+    assert result.sigma_r_delensed_marginalized >= result.sigma_r_delensed
+    assert result.sigma_r_lensed_marginalized >= result.sigma_r_lensed
+    assert result.sigma_r_delensed_marginalized < result.sigma_r_lensed_marginalized
+    data = result.to_dict()
+    assert data["sigma_r_delensed_marginalized"] == result.sigma_r_delensed_marginalized
+    assert len(data["foreground_bb"]) == 501
+
+
+# ------------------------------------------------ the Wiener residual includes the noise-lensed E
+def test_wiener_residual_includes_the_b_modes_of_the_reconstruction_noise(fiducial):
+    # Smith, Hanson, LoVerde, Hirata & Zahn 2012, JCAP 06, 014: with phi^WF = rho^2 (phi + n), n of power N0
+    # and rho^2 = C/(C + N0), the template's power K[W C^EE, rho^4 (C + N0)] equals its cross with the lensing
+    # B modes, so the residual is K[C^EE, C^pp(1 - rho^2)] + K[(1 - W) C^EE, rho^2 C^pp] and no separate
+    # noise-lensing term K[W C^EE, rho^4 N0] adds to it. Checked on a first-order simulation (lensing B and
+    # template both first order, Hu 2000, PRD 62, 043007) with N0 = C^pp (rho^2 = 1/2), where that extra term
+    # would be ~49% of the residual. Tolerance: 4 sigma of the band power, sqrt(2/nu), nu = sum (2l+1).
+    from lensrec import delensing
+    from lensrec.harmonics import scale_alm
+    from lensrec.sky import gaussian_alm
+
+    lmax_b, lmax_s = 400, 1200
+    rng = np.random.default_rng(3)
+    ee, pp = np.array(fiducial.unlensed["EE"][: lmax_s + 1]), np.array(fiducial.phi[: lmax_s + 1])
+    ell = np.arange(lmax_s + 1.0)
+    n0 = pp.copy()
+    e_noise = np.where(ell >= 2, 2e-6 * (ell / 500.0) ** 2, 0.0)
+    wiener_e = np.where(ee > 0, ee / np.where(ee > 0, ee + e_noise, 1.0), 0.0)
+    rho2 = np.where(pp > 0, 0.5, 0.0)
+    e, phi = gaussian_alm(ee, lmax_s, rng), gaussian_alm(pp, lmax_s, rng)
+    e_obs, phi_hat = e + gaussian_alm(e_noise, lmax_s, rng), phi + gaussian_alm(n0, lmax_s, rng)
+    lensing_b = delensing.lensing_b_template(e, phi, lmax_b, method="first_order", nthreads=2)
+    template = delensing.lensing_b_template(
+        scale_alm(e_obs, wiener_e, lmax_s), scale_alm(phi_hat, rho2, lmax_s), lmax_b, method="first_order", nthreads=2
+    )
+    residual = lensrec.auto_spectrum(lensing_b - template)
+
+    def kernel(a, b):
+        return lensrec.first_order_lensed_bb(a, b, lmax_b, ell_margin=lmax_s - lmax_b)
+
+    forecast = kernel(ee, pp * (1 - rho2)) + kernel((1 - wiener_e) * ee, rho2 * pp)
+    noise_lensing = kernel(wiener_e * ee, rho2**2 * n0)
+    for lo, hi in ((30, 100), (100, 200), (200, 400)):
+        band = slice(lo, hi + 1)
+        modes = 2 * np.arange(lo, hi + 1) + 1
+        ratio = np.sum(modes * residual[band]) / np.sum(modes * forecast[band])
+        assert abs(ratio - 1) < 4 * math.sqrt(2 / np.sum(modes)), (lo, hi, ratio)
+        assert np.sum(modes * noise_lensing[band]) / np.sum(modes * forecast[band]) > 0.4  # the test can tell
+
+
+def test_docstring_examples_run():
+    import doctest
+
+    from lensrec import tensor_forecast
+
+    assert doctest.testmod(tensor_forecast).failed == 0

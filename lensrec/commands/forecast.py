@@ -96,13 +96,24 @@ def format_delensing(forecast) -> str:
         f"f_sky = {forecast.sky_fraction:g}, r = {forecast.r:g}):",
         f"{'':12s}"
         + "".join(f"{'BB(l=' + str(ell) + ')':>12s}" for ell in columns)
-        + f"{'A_lens^res':>12s}{'sigma(r)':>12s}",
+        + f"{'A_lens^res':>12s}{'sigma(r)':>12s}{'marginal.':>12s}",
     ]
-    for label, bb, alens, sigma in (
-        ("lensed", forecast.lensed_bb, 1.0, forecast.sigma_r_lensed),
-        ("delensed", forecast.residual_bb, forecast.alens_residual, forecast.sigma_r_delensed),
+    for label, bb, alens, sigma, marginal in (
+        ("lensed", forecast.lensed_bb, 1.0, forecast.sigma_r_lensed, forecast.sigma_r_lensed_marginalized),
+        (
+            "delensed",
+            forecast.residual_bb,
+            forecast.alens_residual,
+            forecast.sigma_r_delensed,
+            forecast.sigma_r_delensed_marginalized,
+        ),
     ):
-        lines.append(f"{label:12s}" + "".join(f"{bb[ell]:12.4e}" for ell in columns) + f"{alens:12.3f}{sigma:12.4e}")
+        lines.append(
+            f"{label:12s}"
+            + "".join(f"{bb[ell]:12.4e}" for ell in columns)
+            + f"{alens:12.3f}{sigma:12.4e}{marginal:12.4e}"
+        )
+    lines.append("sigma(r): lensing amplitude fixed (conditional); marginal.: lensing amplitude marginalized (Fisher)")
     lines.append(
         "BB in uK^2. Caution: MV reuses the B modes; a residual measured on the same maps comes out lower "
         "than this forecast (delensing bias, see the notes in the JSON)"

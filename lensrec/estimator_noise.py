@@ -15,7 +15,6 @@ its response to another source (the curl, unlensed spectra, …) or for its N0 u
 
 from __future__ import annotations
 
-import difflib
 from collections.abc import Mapping
 from dataclasses import dataclass
 from types import MappingProxyType
@@ -24,8 +23,6 @@ import numpy as np
 
 from ._checks import as_finite_array, as_float, as_int
 from .estimator_weights import (
-    COMPONENTS,
-    ESTIMATOR_FIELDS,
     FactorTable,
     KernelSums,
     PairKernel,
@@ -35,6 +32,7 @@ from .estimator_weights import (
     spectrum_name,
 )
 from .experiment import Experiment, load_experiment
+from .labels import COMBINED_ESTIMATORS, COMPONENTS, ESTIMATOR_FIELDS, ESTIMATORS, parse_components, parse_estimators
 from .spectra import Spectra, fiducial_spectra
 
 __all__ = [
@@ -47,8 +45,6 @@ __all__ = [
     "minimum_variance",
 ]
 
-ESTIMATORS = ("TT", "TE", "EE", "TB", "EB", "MV")
-BASE_ESTIMATORS = ("TT", "TE", "EE", "TB", "EB")
 # Imaginary parts of sums that are real by symmetry must cancel to rounding; anything larger is a defect.
 _IMAGINARY_TOLERANCE = 1e-9
 
@@ -338,39 +334,6 @@ class ReconstructionNoise:
         return document
 
 
-# -------------------------------------------------------------------------------------- validation
-def _parse_estimators(estimators) -> tuple[str, ...]:
-    if isinstance(estimators, str):
-        estimators = [part.strip() for part in estimators.split(",")]
-    try:
-        labels = list(estimators)
-    except TypeError:
-        raise TypeError(f"estimators must be a sequence of labels from {ESTIMATORS}, got {estimators!r}") from None
-    if not labels:
-        raise ValueError(f"estimators must name at least one of {ESTIMATORS}, got none")
-    out = []
-    for label in labels:
-        if not isinstance(label, str):
-            raise TypeError(f"estimator labels must be strings from {ESTIMATORS}, got {label!r}")
-        if label not in ESTIMATORS:
-            close = difflib.get_close_matches(label.upper(), ESTIMATORS, n=1, cutoff=0.4)
-            hint = f"; did you mean {close[0]!r}?" if close else ""
-            raise ValueError(f"unknown estimator {label!r}{hint} Allowed: {', '.join(ESTIMATORS)}")
-        if label in out:
-            raise ValueError(f"estimator {label!r} is listed twice in {labels}")
-        out.append(label)
-    return tuple(out)
-
-
-def _parse_components(components) -> tuple[str, ...]:
-    if isinstance(components, str):
-        components = (components,)
-    out = tuple(components)
-    if not out or any(c not in COMPONENTS for c in out) or len(set(out)) != len(out):
-        raise ValueError(f"components must be distinct entries of {COMPONENTS}, got {components!r}")
-    return out
-
-
 # --------------------------------------------------------------------------------------- main entry
 def reconstruction_noise(
     experiment,
@@ -433,8 +396,8 @@ def reconstruction_noise(
     spectra = fiducial_spectra() if spectra is None else spectra
     if not isinstance(spectra, Spectra):
         raise TypeError(f"spectra must be a lensrec Spectra object, got {type(spectra).__name__}")
-    labels = _parse_estimators(estimators)
-    components = _parse_components(components)
+    labels = parse_estimators(estimators)
+    components = parse_components(components)
     lmax = max(experiment.ell_max_temperature, experiment.ell_max_polarization)
     if spectra.lmax < lmax:
         raise ValueError(
@@ -450,7 +413,8 @@ def reconstruction_noise(
         for which in (spectra.lensed, spectra.unlensed):
             as_finite_array(which[key][: lmax + 1], f"spectra {key}")
     factors = standard_factors(experiment, spectra, lmax, lensed_weights)
-    base = BASE_ESTIMATORS if "MV" in labels else tuple(label for label in labels if label != "MV")
+    wanted = set(labels).union(*(COMBINED_ESTIMATORS.get(label, ()) for label in labels))
+    base = tuple(label for label in ESTIMATOR_FIELDS if label in wanted)
     usable = []
     for label in base:
         cut = [f for f in ESTIMATOR_FIELDS[label] if factors.is_zero(f"inverse:{f}")]
@@ -462,7 +426,7 @@ def reconstruction_noise(
                 f"(ell_min={experiment.ell_min}, ell_max={experiment.ell_max(cut[0])}, "
                 f"spectra to l={spectra.lmax}); drop {label} from estimators"
             )
-    base = tuple(usable)  # MV combines the estimators that are defined
+    base = tuple(usable)  # a combination combines those of its estimators that are defined
     if not base:
         raise ValueError("no estimator has usable multipoles: every field is cut")
 
@@ -503,14 +467,19 @@ def reconstruction_noise(
             if label in labels:
                 n0.setdefault(label, {})[component] = _frozen_array(cov[i, i])
                 response.setdefault(label, {})[component] = _frozen_array(np.where(low, np.nan, responses[i]))
-        if "MV" in labels:
-            mv_n0, weights = minimum_variance(np.where(np.isnan(cov), np.inf, cov))
-            mv_n0[low] = np.nan
+        for label in labels:
+            if label not in COMBINED_ESTIMATORS:
+                continue
+            index = [i for i, pair in enumerate(base) if pair in COMBINED_ESTIMATORS[label]]
+            part = cov[np.ix_(index, index)]
+            combined_n0, weights = minimum_variance(np.where(np.isnan(part), np.inf, part))
+            combined_n0[low] = np.nan
             weights[:, low] = np.nan
-            n0.setdefault("MV", {})[component] = _frozen_array(mv_n0)
+            n0.setdefault(label, {})[component] = _frozen_array(combined_n0)
             with np.errstate(divide="ignore"):
-                response.setdefault("MV", {})[component] = _frozen_array(1.0 / mv_n0)
-            mv_weights[component] = _frozen_array(weights)
+                response.setdefault(label, {})[component] = _frozen_array(1.0 / combined_n0)
+            if label == "MV":  # MV combines every defined estimator: its weights run over covariance_labels
+                mv_weights[component] = _frozen_array(weights)
     ordered = {label: MappingProxyType(n0[label]) for label in labels}
     settings = {
         "lmax": lmax,

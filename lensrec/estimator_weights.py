@@ -101,6 +101,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ._checks import as_finite_array, as_int, resolve_nthreads
+from .labels import COMPONENTS, ESTIMATOR_FIELDS, PAIR_ESTIMATORS, parse_component, parse_estimator
 from .quadrature import _canonical, _nodes_with_theta, _project_many, _series_many, npoints_for
 
 __all__ = [
@@ -117,8 +118,6 @@ __all__ = [
     "KernelSums",
 ]
 
-ESTIMATOR_FIELDS = {"TT": ("T", "T"), "TE": ("T", "E"), "EE": ("E", "E"), "TB": ("T", "B"), "EB": ("E", "B")}
-COMPONENTS = ("gradient", "curl")
 _ORDER = {"T": 0, "E": 1, "B": 2}
 _LADDER = re.compile(r"^ladder\(([+-]?\d+)\)$")
 _ODD_CROSS = re.compile(r"^[^:]+:(TB|EB)$")
@@ -381,8 +380,7 @@ def quadratic_estimator(
     filters : str
         Prefix of the per-field filters, ``"inverse:T"`` … = 1/C_tot (0 outside the ℓ cuts).
     """
-    if label not in ESTIMATOR_FIELDS:
-        raise ValueError(f"estimator must be one of {tuple(ESTIMATOR_FIELDS)}, got {label!r}")
+    label = parse_estimator(label, allowed=PAIR_ESTIMATORS)
     x, y = ESTIMATOR_FIELDS[label]
     weight = (
         response_kernel((x, y), component, spectra)
@@ -402,8 +400,7 @@ def _pair(fields) -> tuple[str, str]:
 
 
 def _check_component(component) -> None:
-    if component not in COMPONENTS:
-        raise ValueError(f"component must be one of {COMPONENTS}, got {component!r}")
+    parse_component(component)
 
 
 # ------------------------------------------------------------------------------------- the sums

@@ -15,6 +15,7 @@ import numpy as np
 
 import lensrec
 from lensrec import delensing
+from lensrec.labels import ESTIMATORS, uses_b_modes
 
 from .plotting import COLORS, PAIR, FigureView, d_ell, finite_or_nan, set_log_range, style_axes
 from .section import Section, heading, labelled
@@ -126,7 +127,7 @@ class DelensingSection(Section):
             self.view.show_note("No reconstruction noise yet: the Estimator noise tab computes it for the current "
                                 "experiment; then press <b>Forecast</b>.")  # fmt: skip
             return
-        labels = [label for label in ("MV", "EB", "TB", "EE", "TE", "TT") if label in noise.n0]
+        labels = [label for label in reversed(ESTIMATORS) if label in noise.n0]  # combinations first
         current = self.estimator.value
         self.estimator.options = labels
         self.estimator.value = current if current in labels else labels[0]
@@ -247,7 +248,7 @@ class DelensingSection(Section):
             f"B modes of the simulated sky – {result.method} template, {self.template_estimator}"
         )
         self.template_view.draw()
-        bias = self.template_estimator in ("MV", "EB", "TB")
+        bias = uses_b_modes(self.template_estimator)
         self.template_summary.value = (
             "<table style='margin:1.5em 1em;border-collapse:collapse;white-space:nowrap'>"
             f"<tr><td style='padding:2px 8px'>A_lens^res (measured)</td><td><b>{result.alens_residual:.3f}</b></td></tr>"
@@ -305,7 +306,7 @@ class DelensingSection(Section):
         self.ax_bb.set_ylim(values.min() / 3.0, values.max() * 5.0)
         self.title_bb.set_text(f"B modes – {self.forecast_noise.experiment.name}, {self.forecast_label} N0")
         self.view.draw()
-        bias = self.forecast_label in ("MV", "EB", "TB")
+        bias = uses_b_modes(self.forecast_label)
         self.summary.value = (
             "<table style='margin:1.5em 1em;border-collapse:collapse;white-space:nowrap'>"
             f"<tr><td style='padding:2px 8px'>A_lens^res</td><td><b>{forecast.alens_residual:.3f}</b></td></tr>"

@@ -13,14 +13,14 @@ import ipywidgets as widgets
 import numpy as np
 
 import lensrec
+from lensrec.labels import COMPONENTS, ESTIMATORS, PAIR_ESTIMATORS
 
-from .plotting import COLORS, ESTIMATOR_COLORS, WIDE, FigureView, finite_or_nan, phi_plot_units, style_axes
+from .plotting import COLORS, WIDE, FigureView, estimator_color, finite_or_nan, phi_plot_units, style_axes
 from .section import Section, labelled
 from .work import LiveUpdate
 
 __all__ = ["EstimatorNoiseSection", "ESTIMATORS", "UNIT_LABELS"]
 
-ESTIMATORS = ("TT", "TE", "EE", "TB", "EB", "MV")
 UNIT_LABELS = {
     "phi": r"$[L(L+1)]^2 C_L / 2\pi$",
     "kappa": r"$C_L^{\kappa\kappa} = [L(L+1)]^2 C_L^{\phi\phi} / 4$",
@@ -57,7 +57,7 @@ class EstimatorNoiseSection(Section):
             value="phi",
             style={"button_width": "12em"},
         )
-        self.component = widgets.ToggleButtons(options=["gradient", "curl"], value="gradient")
+        self.component = widgets.ToggleButtons(options=list(COMPONENTS), value="gradient")
         self.table = widgets.HTML()
         self.table.add_class("lensrec-snr-table")
         self.view = FigureView(WIDE, name="noise-n0")
@@ -130,8 +130,8 @@ class EstimatorNoiseSection(Section):
         (self.signal_line,) = self.ax.plot([], [], color=COLORS["signal"], lw=3.0, label="signal")
         self.lines = {}
         for label in ESTIMATORS:
-            style = {"lw": 2.0} if label == "MV" else {"lw": 1.3, "alpha": 0.9}
-            (self.lines[label],) = self.ax.plot([], [], color=ESTIMATOR_COLORS[label], label=f"N0 {label}", **style)
+            style = {"lw": 2.0} if label not in PAIR_ESTIMATORS else {"lw": 1.3, "alpha": 0.9}
+            (self.lines[label],) = self.ax.plot([], [], color=estimator_color(label), label=f"N0 {label}", **style)
         self.ax.set_xscale("log")
         self.ax.set_yscale("log")
         self.ax.set_xlabel("lensing multipole L")
@@ -175,7 +175,7 @@ class EstimatorNoiseSection(Section):
     def _fill_table(self) -> None:
         result = self.result
         rows = "".join(
-            f"<tr><td style='padding:2px 10px;color:{ESTIMATOR_COLORS[label]}'><b>{label}</b></td>"
+            f"<tr><td style='padding:2px 10px;color:{estimator_color(label)}'><b>{label}</b></td>"
             f"<td style='padding:2px 10px;text-align:right'>{self.snr[label]:.1f}</td></tr>"
             for label in ESTIMATORS
             if label in self.snr

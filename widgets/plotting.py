@@ -18,6 +18,7 @@ from matplotlib.figure import Figure
 __all__ = [
     "COLORS",
     "ESTIMATOR_COLORS",
+    "estimator_color",
     "DPI",
     "WIDE",
     "SQUARE",
@@ -62,6 +63,20 @@ ESTIMATOR_COLORS = {
     "EB": "#b03a2e",
     "MV": "#17202a",
 }
+
+
+def estimator_color(label: str) -> str:
+    """The line color of an estimator: its entry in ESTIMATOR_COLORS, else one from matplotlib's tab10 cycle."""
+    if label in ESTIMATOR_COLORS:
+        return ESTIMATOR_COLORS[label]
+    from matplotlib import colormaps, colors
+
+    from lensrec.labels import ESTIMATORS
+
+    index = ESTIMATORS.index(label) if label in ESTIMATORS else 0
+    return colors.to_hex(colormaps["tab10"](index % 10))
+
+
 MAP_CMAP = "RdBu_r"
 POSITIVE_CMAP = "magma"
 

@@ -17,12 +17,13 @@ import numpy as np
 
 import lensrec
 from lensrec import harmonics, power
+from lensrec.labels import ESTIMATORS
 
 from .plotting import (
     COLORS,
-    ESTIMATOR_COLORS,
     MAP_CMAP,
     FigureView,
+    estimator_color,
     phi_plot_units,
     set_log_range,
     style_axes,
@@ -33,7 +34,6 @@ from .work import LongTask
 
 __all__ = ["ReconstructionSection", "band_average"]
 
-ESTIMATORS = ("MV", "TT", "TE", "EE", "TB", "EB")
 MAPS_FIGURE = (10.4, 3.4)
 SPECTRA_FIGURE = (10.4, 3.8)
 MOLLWEIDE_XSIZE = 600
@@ -205,7 +205,7 @@ class ReconstructionSection(Section):
         (self.theory_line,) = self.ax_auto.plot(
             [], [], color=COLORS["signal"], lw=3.0, label=r"theory $C_L^{\phi\phi}$"
         )
-        (self.n0_line,) = self.ax_auto.plot([], [], color=ESTIMATOR_COLORS["MV"], lw=1.2, ls="--", label="N0")
+        (self.n0_line,) = self.ax_auto.plot([], [], color=estimator_color("MV"), lw=1.2, ls="--", label="N0")
         (self.auto_band,) = self.ax_auto.plot([], [], "o", color=COLORS["reconstructed"], ms=4,
                                               label="auto − N0 (band average)")  # fmt: skip
         (self.auto_band_negative,) = self.ax_auto.plot([], [], "o", mfc="none", color=COLORS["reconstructed"], ms=4,

@@ -16,6 +16,7 @@ import numpy as np
 
 import lensrec
 from lensrec import bandpowers
+from lensrec.labels import COMPONENTS, ESTIMATORS, SUITE_STAGES
 
 from .plotting import COLORS, PAIR, FigureView, phi_plot_units, set_log_range, style_axes
 from .section import Section, heading, labelled
@@ -24,8 +25,6 @@ from .work import Cancelled, LongTask
 __all__ = ["ValidationSection", "NEEDS"]
 
 NEEDS = ("lensing_suite_settings", "run_lensing_suite", "lensing_bandpowers")
-ESTIMATORS = ("MV", "TT", "TE", "EE", "TB", "EB")
-STAGES = ("data", "simulations", "pairs")
 TERM_STYLE = {  # term → (label, colour)
     "rdn0": ("RDN0", "#2874a6"),
     "mc_n0": ("Monte-Carlo N0", "#85c1e9"),
@@ -64,7 +63,7 @@ class ValidationSection(Section):
         self.workers = labelled(widgets.IntText(value=2, description="workers"), "16em")
         self.estimator = labelled(widgets.Dropdown(options=list(ESTIMATORS), value="MV", description="estimator"),
                                   "16em")  # fmt: skip
-        self.component = widgets.ToggleButtons(options=["gradient", "curl"], value="gradient")
+        self.component = widgets.ToggleButtons(options=list(COMPONENTS), value="gradient")
         self.nside = labelled(widgets.Dropdown(options=[32, 64, 128, 256], value=64, description="nside"), "16em")
         self.lmax = labelled(widgets.IntText(value=128, description="lmax"), "16em")
         self.lmax_L = labelled(widgets.IntText(value=0, description="lmax_L (0 = lmax)"), "16em")
@@ -137,11 +136,11 @@ class ValidationSection(Section):
 
             def progress(done, total):
                 if done == 0 or total != stage["total"]:
-                    stage["index"] = min(stage["index"] + 1, len(STAGES) - 1)
+                    stage["index"] = min(stage["index"] + 1, len(SUITE_STAGES) - 1)
                     stage["total"] = total
                 k = stage["index"]
-                fraction = (k + (done / total if total else 1.0)) / len(STAGES)
-                report(0.9 * fraction, f"{STAGES[k]}: {done}/{total}", check_cancel=False)
+                fraction = (k + (done / total if total else 1.0)) / len(SUITE_STAGES)
+                report(0.9 * fraction, f"{SUITE_STAGES[k]}: {done}/{total}", check_cancel=False)
 
             suite = lensrec.run_lensing_suite(settings, folder, executor=executor, max_workers=workers,
                                               progress=progress, cancel=cancel, force=force)  # fmt: skip

@@ -5,6 +5,8 @@ from __future__ import annotations
 import os
 import time
 
+from ..labels import parse_estimator, uses_b_modes
+
 HELP = "build a lensing B-mode template from the maps' E modes and a reconstructed phi, and delens the B modes"
 EXAMPLES = """examples:
   lensrec delens --experiment deep_highland --maps sky/maps.fits --phi rec/phi_alm.fits --out delensed/
@@ -22,8 +24,6 @@ is biased low (delensing bias); reconstruct with TT, TE, EE for an unbiased resi
 
 OUTPUTS = ("b_template_alm.fits", "spectra.json", "run.json")
 SUMMARY_BANDS = ((30, 100), (100, 300), (300, 1000), (1000, 2000), (2000, 3000))
-# estimator labels whose reconstruction uses B modes (MV combines all five)
-USES_B_MODES = ("TB", "EB", "MV")
 
 
 def add_arguments(parser) -> None:
@@ -83,6 +83,10 @@ def read_phi_noise(phi_path: str, lmax_phi: int) -> tuple:
                 "(provenance.settings.estimator is missing)"
             )
         estimator = next(iter(noise))
+    try:
+        estimator = parse_estimator(estimator)
+    except (TypeError, ValueError) as exc:
+        raise ValueError(f"{path!r} names an estimator lensrec does not know: {exc}") from None
     if estimator not in noise or not isinstance(noise[estimator], dict) or "gradient" not in noise[estimator]:
         raise ValueError(f"{path!r} lacks the gradient N0 of its estimator {estimator!r}")
     try:
@@ -189,7 +193,7 @@ def run(args) -> int:
     timings["template"] = time.perf_counter() - start
 
     bias_warning = None
-    if estimator.upper() in USES_B_MODES:
+    if uses_b_modes(estimator):
         where = (
             "these same maps"
             if same_maps

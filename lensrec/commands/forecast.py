@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import time
 
+from ..labels import ESTIMATORS
+
 HELP = "exact full-sky reconstruction noise N0 (gradient and curl) and lensing S/N of the quadratic estimators"
 EXAMPLES = """examples:
   lensrec forecast --experiment deep_highland --lmax-L 3000 --out n0.json
@@ -32,8 +34,8 @@ def add_arguments(parser) -> None:
     )
     parser.add_argument(
         "--estimators",
-        default="TT,TE,EE,TB,EB,MV",
-        help="comma-separated estimators from TT, TE, EE, TB, EB, MV (default: %(default)s)",
+        default=",".join(ESTIMATORS),
+        help=f"comma-separated estimators from {', '.join(ESTIMATORS)} (default: %(default)s)",
     )
     parser.add_argument(
         "--unlensed-weights",
@@ -48,7 +50,7 @@ def add_arguments(parser) -> None:
 
 
 def forecast_document(
-    experiment, estimators="TT,TE,EE,TB,EB,MV", lmax_L=None, lensed_weights=True, nthreads=None, spectra=None
+    experiment, estimators=ESTIMATORS, lmax_L=None, lensed_weights=True, nthreads=None, spectra=None
 ) -> tuple[dict, object]:
     """Compute N0 and S/N and return (the JSON document without provenance, the ReconstructionNoise).
 

@@ -5,6 +5,8 @@ from __future__ import annotations
 import os
 import time
 
+from ..labels import ESTIMATORS, parse_estimator
+
 HELP = "reconstruct the lensing potential phi (and the curl null test) from T, Q, U maps with a quadratic estimator"
 EXAMPLES = """examples:
   lensrec reconstruct --experiment deep_highland --maps sky/maps.fits --estimator MV --lmax-L 2000 --out rec/
@@ -28,7 +30,7 @@ def add_arguments(parser) -> None:
     parser.add_argument(
         "--maps", required=True, help="HEALPix FITS file with T, Q, U in uK (e.g. from 'lensrec simulate')"
     )
-    parser.add_argument("--estimator", default="MV", help="one of TT, TE, EE, TB, EB, MV (default: %(default)s)")
+    parser.add_argument("--estimator", default="MV", help=f"one of {', '.join(ESTIMATORS)} (default: %(default)s)")
     parser.add_argument(
         "--lmax-L",
         dest="lmax_L",
@@ -84,13 +86,12 @@ def run(args) -> int:
     import lensrec
 
     from ..io import check_outputs_free, file_sha256, provenance, read_maps, write_alm, write_json
-    from ..reconstruction import _check_label
 
     paths = {name: os.path.join(args.out, name) for name in OUTPUTS}
     if os.path.exists(args.out) and not os.path.isdir(args.out):
         raise ValueError(f"--out {args.out!r} exists and is not a folder")
     check_outputs_free(paths.values(), force=args.force)  # refuse before any work
-    estimator = _check_label(args.estimator)
+    estimator = parse_estimator(args.estimator)
 
     timings = {}
     start = time.perf_counter()

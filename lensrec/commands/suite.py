@@ -5,6 +5,8 @@ from __future__ import annotations
 import os
 import time
 
+from ..labels import COMPONENTS, ESTIMATORS
+
 HELP = "run a cached, resumable suite of lensing simulations, or report its debiased bandpowers and bias budget"
 EXAMPLES = """examples:
   lensrec suite run --experiment deep_highland --nside 256 --lmax 512 --lmax-L 400 --estimators EB \\
@@ -32,7 +34,9 @@ def add_arguments(parser) -> None:
     run.add_argument(
         "--lmax-L", dest="lmax_L", type=int, default=None, help="highest lensing multipole (default: the CMB lmax)"
     )
-    run.add_argument("--estimators", default="MV", help="comma-separated labels from TT,TE,EE,TB,EB,MV (default MV)")
+    run.add_argument(
+        "--estimators", default="MV", help=f"comma-separated labels from {','.join(ESTIMATORS)} (default MV)"
+    )
     run.add_argument("--n-sims", dest="n_sims", type=int, required=True, help="number of simulations (>= 4)")
     run.add_argument("--seed", type=int, default=0, help="seed of the simulations (default: %(default)s)")
     run.add_argument("--data-seed", type=int, default=None, help="seed of the simulated data (default: seed + 1)")
@@ -181,7 +185,7 @@ def _run_suite(args) -> int:
 def _report(args) -> int:
     from ..bandpowers import default_binning, lensing_bandpowers, write_bias_report
     from ..io import check_outputs_free, provenance, write_json
-    from ..suites import COMPONENTS, open_lensing_suite
+    from ..suites import open_lensing_suite
 
     start = time.perf_counter()
     suite = open_lensing_suite(args.suite)

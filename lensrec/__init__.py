@@ -6,8 +6,7 @@ All results describe simulations of idealised surveys, not survey-ready measurem
 
 from __future__ import annotations
 
-__version__ = "0.1.0"
-
+from ._version import __version__
 from .bandpowers import LensingBandpowers, bias_budget_table, lensing_bandpowers, plot_bias_budget
 from .delensing import DelensingResult, delens, delensing_spectra, lensing_b_template, wiener_filter_phi
 from .estimator_noise import ReconstructionNoise, reconstruction_noise

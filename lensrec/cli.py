@@ -12,6 +12,7 @@ import argparse
 import importlib
 import sys
 
+from .commands.options import InputError, add_common  # noqa: F401  (add_common: kept importable here)
 from .io import OutputExistsError
 
 # name -> module under lensrec.commands; the order is the order shown by --help
@@ -34,32 +35,12 @@ EPILOG = """examples:
 run 'lensrec COMMAND --help' for the options of one command."""
 
 
-class InputError(ValueError):
-    """A user-input problem detected by a command (exit code 2)."""
-
-
-def add_common(parser: argparse.ArgumentParser, experiment=True, out=True, seed=False) -> None:
-    """The options every command spells the same way."""
-    if experiment:
-        parser.add_argument(
-            "--experiment", default="deep_highland", help="experiment TOML file or shipped name (default: %(default)s)"
-        )
-    if out:
-        parser.add_argument("--out", required=True, help="output file or folder")
-        parser.add_argument("--force", action="store_true", help="overwrite existing outputs")
-    if seed:
-        parser.add_argument("--seed", type=int, default=0, help="random seed (default: %(default)s)")
-    parser.add_argument(
-        "--nthreads", type=int, default=None, help="threads for transforms (default: LENSREC_NTHREADS or all cores)"
-    )
-
-
 def _load_command(name: str):
     return importlib.import_module(f"lensrec.commands.{COMMANDS[name]}")
 
 
 def build_parser(available=None) -> argparse.ArgumentParser:
-    from . import __version__
+    from ._version import __version__
 
     parser = argparse.ArgumentParser(
         prog="lensrec",

@@ -20,6 +20,7 @@ import warnings
 import numpy as np
 
 from ._checks import as_finite_array, check_nside
+from ._version import __version__
 
 __all__ = [
     "OutputExistsError",
@@ -279,8 +280,6 @@ def provenance(
     extra: dict | None = None,
 ) -> dict:
     """The provenance record stored in every output: versions, commit, inputs, seeds and timings."""
-    from . import __version__
-
     record = {
         "lensrec_version": __version__,
         "git_commit": _git_commit(),

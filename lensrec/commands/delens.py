@@ -27,7 +27,7 @@ SUMMARY_BANDS = ((30, 100), (100, 300), (300, 1000), (1000, 2000), (2000, 3000))
 
 
 def add_arguments(parser) -> None:
-    from ..cli import add_common
+    from .options import add_common
 
     add_common(parser, experiment=True, out=True)
     parser.add_argument("--maps", required=True, help="observed T, Q, U maps (HEALPix FITS, uK, RING)")
@@ -126,8 +126,8 @@ def run(args) -> int:
     import lensrec
     from lensrec import delensing, harmonics
 
-    from ..cli import InputError
     from ..io import check_outputs_free, file_sha256, provenance, read_alm, read_maps, write_alm, write_json
+    from .options import InputError
 
     paths = {name: os.path.join(args.out, name) for name in OUTPUTS}
     if os.path.exists(args.out) and not os.path.isdir(args.out):

@@ -14,7 +14,7 @@ The report describes one simulation of an idealised survey, not a result for any
 
 
 def add_arguments(parser) -> None:
-    from ..cli import add_common
+    from .options import add_common
 
     add_common(parser, experiment=True, out=True, seed=True)
     parser.add_argument("--nside", type=int, default=512, help="HEALPix nside of the simulation (default: %(default)s)")

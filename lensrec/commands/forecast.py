@@ -22,7 +22,7 @@ TABLE_L = (30, 100, 300, 1000, 2000, 3000)
 
 
 def add_arguments(parser) -> None:
-    from ..cli import add_common
+    from .options import add_common
 
     add_common(parser, experiment=True, out=True)
     parser.add_argument(

@@ -24,7 +24,7 @@ OUTPUTS = ("phi_alm.fits", "curl_alm.fits", "n0.json", "run.json")
 
 
 def add_arguments(parser) -> None:
-    from ..cli import add_common
+    from .options import add_common
 
     add_common(parser, experiment=True, out=True)
     parser.add_argument(

@@ -18,8 +18,8 @@ OUTPUTS = ("maps.fits", "phi_input_alm.fits", "run.json")
 
 
 def add_arguments(parser) -> None:
-    from ..cli import add_common
     from ..sky import DEFAULT_LMAX_MARGIN
+    from .options import add_common
 
     add_common(parser, experiment=True, out=True, seed=True)
     parser.add_argument("--nside", type=int, required=True, help="HEALPix nside of the maps (a power of two)")

@@ -19,6 +19,7 @@ COMPONENT_KEYS = {
     "noise": 2,
     "curl": 3,
     "cmb_second": 4,
+    "tracer": 5,
 }
 
 

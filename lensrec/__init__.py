@@ -28,6 +28,18 @@ from .sky import SimulatedSky, deflection_maps, lens_alm, lens_tqu_alm, simulate
 from .spectra import Spectra, fiducial_spectra, spectra_from_camb
 from .suites import LensingSuite, lensing_suite_settings, open_lensing_suite, run_lensing_suite
 from .tensor_forecast import TensorFisher, delensing_forecast, power_law_foreground_bb, sigma_r, tensor_fisher
+from .tracers import (
+    Tracer,
+    TracerCombination,
+    TracerSet,
+    combine_tracers,
+    combined_phi,
+    load_tracers,
+    make_tracer,
+    simulate_tracers,
+    tracer_delensing_forecasts,
+    tracer_set,
+)
 
 __all__ = [
     "__version__",
@@ -52,6 +64,16 @@ __all__ = [
     "tensor_fisher",
     "TensorFisher",
     "power_law_foreground_bb",
+    "Tracer",
+    "TracerSet",
+    "TracerCombination",
+    "make_tracer",
+    "tracer_set",
+    "load_tracers",
+    "combine_tracers",
+    "simulate_tracers",
+    "combined_phi",
+    "tracer_delensing_forecasts",
     "lensed_cmb_spectra",
     "first_order_lensed_bb",
     "delensed_spectra",

@@ -45,6 +45,7 @@ __all__ = [
     "simulate_tracers",
     "combined_phi",
     "available_tracers",
+    "tracer_delensing_forecasts",
     "TRACER_NOTE",
 ]
 
@@ -205,6 +206,17 @@ class TracerSet:
     def noise(self) -> np.ndarray:
         """Noise power of each tracer, shape (n, L_max + 1)."""
         return np.array([tracer.noise for tracer in self.tracers])
+
+    def truncated(self, lmax_L: int) -> TracerSet:
+        """The same set restricted to L ≤ ``lmax_L`` (≤ its own lmax_L)."""
+        lmax_L = as_int(lmax_L, "lmax_L", minimum=2, maximum=self.lmax_L)
+        cut = slice(0, lmax_L + 1)
+        return TracerSet(
+            tracers=tuple(Tracer(t.name, t.auto[cut], t.cross_phi[cut], t.noise[cut]) for t in self.tracers),
+            cross={key: value[cut] for key, value in self.cross.items()},
+            phi=self.phi[cut],
+            source=self.source,
+        )
 
 
 def _check_psd(matrices: np.ndarray, what: str) -> None:
@@ -636,3 +648,42 @@ def combined_phi(combination: TracerCombination, tracer_alm=None, phi_hat_alm=No
         values = truncate_alm(values, lmax_L, lmax_in) if lmax_in > lmax_L else values
         out += scale_alm(values, weight, lmax_L)
     return out
+
+
+def tracer_delensing_forecasts(experiment, tracers=None, n0=None, spectra=None, lmax=None, r=0.0, nthreads=None):
+    """Delensing forecasts with each input alone and with their optimal combination.
+
+    Parameters
+    ----------
+    experiment : Experiment or str
+    tracers : TracerSet, str or None
+        External tracers (a str is read by :func:`load_tracers`).
+    n0 : array_like, optional
+        N0 of the internal reconstruction (e.g. the MV or TT+TE+EE gradient N0).
+    spectra : Spectra, optional
+    lmax : int, optional
+        As for :func:`lensrec.delensing_forecast`.
+    r : float
+    nthreads : int, optional
+
+    Returns
+    -------
+    (TracerCombination, dict of str to DelensingForecast)
+        The combination and one forecast per input name (``"internal"`` for φ̂) and ``"combined"``: each is
+        :func:`lensrec.delensing_forecast` with the effective noise C^φφ(1 − ρ²)/ρ² of that input.
+    """
+    from .tensor_forecast import delensing_forecast
+
+    phi = None if spectra is None else spectra.phi
+    combination = combine_tracers(tracers, n0=n0, phi_spectrum=phi)
+    out = {}
+    for name, rho2 in (*combination.rho2_single.items(), ("combined", combination.rho2)):
+        out[name] = delensing_forecast(
+            experiment,
+            spectra,
+            n0=_effective_noise(combination.phi, rho2),
+            lmax=lmax,
+            r=r,
+            nthreads=nthreads,
+        )
+    return combination, out

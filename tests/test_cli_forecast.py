@@ -100,3 +100,21 @@ def test_forecast_bad_input_exits_2_with_a_message(tmp_path, capsys):
     assert main(["forecast", "--experiment", "no_such_survey", "--out", str(out)]) == 2
     assert "no experiment file or shipped experiment" in capsys.readouterr().err
     assert not out.exists()
+
+
+def test_forecast_with_a_tracer_reports_each_input_and_their_combination(tmp_path, capsys):
+    # Sherwin & Schmittfull 2015, PRD 92, 043005: the optimal combination correlates at least as well with phi
+    # as its best input, so it delenses at least as well (a forecast statement).
+    out = tmp_path / "fc.json"
+    args = ["forecast", "--experiment", "deep_highland", "--lmax-L", "400", "--estimators", "EE,MV"]
+    assert main(args + ["--tracer", "glow_and_motes", "--out", str(out)]) == 0
+    block = json.loads(out.read_text())["tracers"]
+    assert block["inputs"] == ["diffuse_glow", "scattered_motes", "internal"]
+    alens = {name: item["alens_residual"] for name, item in block["delensing"].items()}
+    assert alens["combined"] <= min(alens[name] for name in block["inputs"])
+    for item in block["delensing"].values():
+        assert item["sigma_r_delensed_marginalized"] >= item["sigma_r_delensed"]
+    assert np.all(np.array(block["rho"]["combined"][2:]) >= np.array(block["rho"]["diffuse_glow"][2:]) - 1e-12)
+    assert "combined" in capsys.readouterr().out
+    assert main(args + ["--tracer", str(tmp_path / "none.toml"), "--out", str(out), "--force"]) == 2
+    assert "not found; shipped tracers" in capsys.readouterr().err

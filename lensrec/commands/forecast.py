@@ -16,7 +16,10 @@ writes one JSON file: {"L": [0..lmax_L], "n0": {"TT": {"gradient": [...], "curl"
 "snr": {"TT": ..., ...}, "provenance": {...}}; N0 in C_L^phiphi units (C_L^OmegaOmega for the curl),
 null below L = 2; snr is the Fisher S/N of C_L^phiphi over 2 <= L <= lmax_L with the experiment's sky fraction.
 --delensing adds "delensing": the lensed and forecast residual BB, A_lens^res and sigma(r) with and without
-delensing, from lensrec.delensing_forecast with the MV gradient N0 (see its notes on the delensing bias)."""
+delensing, from lensrec.delensing_forecast with the MV gradient N0 (see its notes on the delensing bias).
+--tracer FILE (a tracer TOML or a shipped name such as diffuse_glow) adds "tracers": the correlation rho_L of
+each tracer, of the internal MV reconstruction and of their optimal combination (Sherwin & Schmittfull 2015),
+and the delensing forecast (A_lens^res, sigma(r) conditional and marginalized) with each of them."""
 
 TABLE_L = (30, 100, 300, 1000, 2000, 3000)
 
@@ -46,6 +49,12 @@ def add_arguments(parser) -> None:
         "--delensing",
         action="store_true",
         help="also forecast delensing with the MV gradient N0: residual BB, A_lens^res, sigma(r)",
+    )
+    parser.add_argument(
+        "--tracer",
+        default=None,
+        help="tracer TOML file or shipped name: forecast delensing with the tracers, the internal MV phi and "
+        "their optimal combination",
     )
 
 
@@ -123,13 +132,36 @@ def format_delensing(forecast) -> str:
     return "\n".join(lines)
 
 
+def format_tracers(block: dict) -> str:
+    """rho_L at a few L and the delensing forecast with each input and with their combination."""
+    columns = [L for L in (30, 100, 300, 1000) if L < len(block["L"])]
+    lines = [
+        "delensing with tracers (internal = MV reconstruction; combined = optimal combination):",
+        f"{'input':18s}"
+        + "".join(f"{'rho(L=' + str(L) + ')':>12s}" for L in columns)
+        + f"{'A_lens^res':>12s}{'sigma(r)':>12s}{'marginal.':>12s}",
+    ]
+    for name, item in block["delensing"].items():
+        lines.append(
+            f"{name:18s}"
+            + "".join(f"{block['rho'][name][L]:12.3f}" for L in columns)
+            + f"{item['alens_residual']:12.3f}{item['sigma_r_delensed']:12.4e}"
+            + f"{item['sigma_r_delensed_marginalized']:12.4e}"
+        )
+    return "\n".join(lines)
+
+
 def run(args) -> int:
+    import numpy as np
+
     from ..experiment import load_experiment
     from ..io import check_outputs_free, provenance, write_json
 
     check_outputs_free([args.out], force=args.force)  # refuse before any work
-    if args.delensing and "MV" not in [label.strip() for label in args.estimators.split(",")]:
-        raise ValueError(f"--delensing uses the MV gradient N0: include MV in --estimators (got {args.estimators!r})")
+    if (args.delensing or args.tracer) and "MV" not in [label.strip() for label in args.estimators.split(",")]:
+        raise ValueError(
+            f"--delensing and --tracer use the MV gradient N0: include MV in --estimators (got {args.estimators!r})"
+        )
     timings = {}
     start = time.perf_counter()
     experiment = load_experiment(args.experiment)
@@ -151,7 +183,38 @@ def run(args) -> int:
         delensing = delensing_forecast(experiment, n0=result.n0["MV"]["gradient"], nthreads=args.nthreads)
         document["delensing"] = {"n0_estimator": "MV", **delensing.to_dict()}
         timings["delensing"] = time.perf_counter() - start
+    tracer_forecasts = None
+    if args.tracer:
+        from ..tracers import load_tracers, tracer_delensing_forecasts
+
+        start = time.perf_counter()
+        tracer_set = load_tracers(args.tracer)
+        combination, tracer_forecasts = tracer_delensing_forecasts(
+            experiment, tracer_set, n0=result.n0["MV"]["gradient"], nthreads=args.nthreads
+        )
+        document["tracers"] = {
+            "source": tracer_set.source,
+            "inputs": list(combination.inputs),
+            "internal_estimator": "MV",
+            "L": list(range(combination.lmax_L + 1)),
+            "rho": {
+                **{name: np.sqrt(value).tolist() for name, value in combination.rho2_single.items()},
+                "combined": np.sqrt(combination.rho2).tolist(),
+            },
+            "delensing": {
+                name: {
+                    "alens_residual": item.alens_residual,
+                    "sigma_r_delensed": item.sigma_r_delensed,
+                    "sigma_r_delensed_marginalized": item.sigma_r_delensed_marginalized,
+                    "residual_bb": item.residual_bb.tolist(),
+                }
+                for name, item in tracer_forecasts.items()
+            },
+            "notes": list(combination.notes),
+        }
+        timings["tracers"] = time.perf_counter() - start
     arguments = {
+        "tracer": args.tracer,
         "experiment": args.experiment,
         "lmax_L": int(result.L[-1]),
         "estimators": args.estimators,
@@ -174,5 +237,7 @@ def run(args) -> int:
     print(format_table(result, document["snr"]))
     if delensing is not None:
         print(format_delensing(delensing))
+    if tracer_forecasts is not None:
+        print(format_tracers(document["tracers"]))
     print(f"wrote {args.out}")
     return 0

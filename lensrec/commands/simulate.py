@@ -12,7 +12,9 @@ EXAMPLES = """examples:
   lensrec simulate --experiment wide_lowland --nside 256 --lmax 500 --no-noise --force --out sky/
 
 writes DIR/maps.fits (T, Q, U in uK, RING), DIR/phi_input_alm.fits (phi_LM to lmax + lmax-margin) and
-DIR/run.json (provenance: versions, git commit, experiment, arguments, seed, timings)."""
+DIR/run.json (provenance: versions, git commit, experiment, arguments, seed, timings). With --tracer FILE
+(a tracer TOML or a shipped name such as diffuse_glow) also DIR/tracer_alm.fits: one healpy alm HDU per
+tracer, in the file's order, Gaussian and correlated with the simulated phi (lensrec.simulate_tracers)."""
 
 OUTPUTS = ("maps.fits", "phi_input_alm.fits", "run.json")
 
@@ -34,6 +36,11 @@ def add_arguments(parser) -> None:
     parser.add_argument("--no-noise", action="store_true", help="noise-free maps")
     parser.add_argument("--mask", default=None, help="HEALPix FITS mask (values in [0, 1], same nside)")
     parser.add_argument("--r", type=float, default=0.0, help="tensor-to-scalar ratio (default: %(default)s)")
+    parser.add_argument(
+        "--tracer",
+        default=None,
+        help="also simulate the tracers of this TOML file (or shipped name), correlated with the simulated phi",
+    )
 
 
 def run(args) -> int:
@@ -49,6 +56,13 @@ def run(args) -> int:
     start = time.perf_counter()
     experiment = lensrec.load_experiment(args.experiment)
     mask = lensrec.load_mask(args.mask, args.nside) if args.mask else None
+    tracer_set = None
+    if args.tracer:
+        from ..tracers import load_tracers
+
+        tracer_set = load_tracers(args.tracer)
+        paths["tracer_alm.fits"] = os.path.join(args.out, "tracer_alm.fits")
+        check_outputs_free([paths["tracer_alm.fits"]], force=args.force)
     timings["inputs"] = time.perf_counter() - start
 
     start = time.perf_counter()
@@ -70,6 +84,19 @@ def run(args) -> int:
     os.makedirs(args.out, exist_ok=True)
     write_maps(paths["maps.fits"], result.maps, force=args.force)
     write_alm(paths["phi_input_alm.fits"], result.phi_alm, force=args.force)
+    extra_settings = {}
+    if tracer_set is not None:
+        from ..harmonics import lmax_from_nalm
+        from ..tracers import simulate_tracers
+
+        tracer_set = tracer_set.truncated(min(tracer_set.lmax_L, lmax_from_nalm(result.phi_alm.size)))
+        tracer_alm = simulate_tracers(tracer_set, result.phi_alm, seed=args.seed, index=args.index)
+        write_alm(paths["tracer_alm.fits"], list(tracer_alm), force=args.force)
+        extra_settings["tracers"] = {
+            "names": list(tracer_set.names),
+            "source": tracer_set.source,
+            "lmax_L": tracer_set.lmax_L,
+        }
     timings["writing"] = time.perf_counter() - start
     arguments = {key: value for key, value in vars(args).items() if not key.startswith("_")}
     record = provenance(
@@ -78,7 +105,10 @@ def run(args) -> int:
         experiment=experiment,
         seed=args.seed,
         timings=timings,
-        extra={"settings": dict(result.settings), "outputs": list(OUTPUTS)},
+        extra={
+            "settings": {**dict(result.settings), **extra_settings},
+            "outputs": [os.path.basename(p) for p in paths.values()],
+        },
     )
     write_json(paths["run.json"], record, force=args.force)
     print(f"wrote {', '.join(paths.values())} ({timings['simulation']:.1f} s simulation)")

@@ -13,6 +13,7 @@ from .estimator_noise import ReconstructionNoise, reconstruction_noise
 from .experiment import Experiment, available_experiments, load_experiment
 from .filtering import FieldFilter, FilteredFields, IsotropicFilter
 from .io import OutputExistsError
+from .iterative_noise import IterativeNoise, iterative_reconstruction_noise
 from .lensed_spectra import delensed_spectra, first_order_lensed_bb, lensed_cmb_spectra
 from .masks import apodize_binary_mask, cap_mask, latitude_mask, load_mask, sky_fraction_moments
 from .power import auto_spectrum, bin_spectrum, binned_cross_spectrum, cross_spectrum, mask_corrected
@@ -80,6 +81,8 @@ __all__ = [
     "delensing_forecast",
     "ReconstructionNoise",
     "reconstruction_noise",
+    "IterativeNoise",
+    "iterative_reconstruction_noise",
     "DelensingResult",
     "lensing_b_template",
     "delens",

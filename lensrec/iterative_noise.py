@@ -42,21 +42,17 @@ import numpy as np
 
 from ._checks import as_float, as_int
 from .estimator_noise import ReconstructionNoise, reconstruction_noise
-from .estimator_weights import COMPONENTS
 from .experiment import Experiment, load_experiment
+from .labels import COMPONENTS, ITERATIVE_ESTIMATORS, parse_components, parse_estimators
 from .lensed_spectra import DEFAULT_ELL_MARGIN, lensed_cmb_spectra, residual_lensing_potential
 from .spectra import Spectra, fiducial_spectra
 
 __all__ = [
-    "ITERATIVE_ESTIMATORS",
     "IterativeNoise",
     "iterative_reconstruction_noise",
     "partially_delensed_spectra",
 ]
 
-# Estimators whose noise is forecast iteratively: EB (the lensing B modes dominate its filter at depth) and
-# the minimum-variance combination of all five (whose EB part carries the gain).
-ITERATIVE_ESTIMATORS = ("EB", "MV")
 DEFAULT_TOLERANCE = 1e-3
 DEFAULT_MAX_LENSING_ITERATIONS = 30
 
@@ -152,7 +148,9 @@ def _with_lensed(spectra: Spectra, replacement: Mapping) -> Spectra:
     )
 
 
-def partially_delensed_spectra(spectra: Spectra, n0, lmax: int, ell_margin=None, polarization_only=False, nthreads=None):
+def partially_delensed_spectra(
+    spectra: Spectra, n0, lmax: int, ell_margin=None, polarization_only=False, nthreads=None
+):
     """The CMB spectra lensed by the residual C^φφ N0/(C^φφ + N0), by the non-perturbative engine.
 
     Parameters
@@ -305,9 +303,7 @@ def iterative_reconstruction_noise(
     if not isinstance(spectra, Spectra):
         raise TypeError(f"spectra must be a lensrec Spectra object, got {type(spectra).__name__}")
     labels = _parse_iterative(estimators)
-    if isinstance(components, str):
-        components = (components,)
-    components = tuple(components)
+    components = parse_components(components)
     if "gradient" not in components:
         components = ("gradient", *components)  # the gradient drives the iteration; it is returned too
     tolerance = as_float(tolerance, "tolerance", 0.0, 0.5, strict_minimum=True)
@@ -399,24 +395,11 @@ def _noise_with(experiment, spectra, replacement, label, lmax_L, components, nth
 
 
 def _parse_iterative(estimators) -> tuple[str, ...]:
-    if isinstance(estimators, str):
-        estimators = [part.strip() for part in estimators.split(",")]
-    try:
-        labels = list(estimators)
-    except TypeError:
-        raise TypeError(f"estimators must be a sequence of labels from {ITERATIVE_ESTIMATORS}, got {estimators!r}") from None
-    if not labels:
-        raise ValueError(f"estimators must name at least one of {ITERATIVE_ESTIMATORS}, got none")
-    out = []
+    """Known labels (nearest-label hint from lensrec.labels), each with an iterative form."""
+    labels = parse_estimators(estimators)
     for label in labels:
-        if not isinstance(label, str):
-            raise TypeError(f"estimator labels must be strings from {ITERATIVE_ESTIMATORS}, got {label!r}")
         if label not in ITERATIVE_ESTIMATORS:
             raise ValueError(
-                f"estimator {label!r} has no iterative form here; iterative estimators: "
-                f"{', '.join(ITERATIVE_ESTIMATORS)}"
+                f"estimator {label!r} has no iterative form; iterative estimators: {', '.join(ITERATIVE_ESTIMATORS)}"
             )
-        if label in out:
-            raise ValueError(f"estimator {label!r} is listed twice in {labels}")
-        out.append(label)
-    return tuple(out)
+    return labels

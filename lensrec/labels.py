@@ -36,6 +36,7 @@ __all__ = [
     "COMBINED_ESTIMATORS",
     "JOINT_ESTIMATORS",
     "ESTIMATORS",
+    "ITERATIVE_ESTIMATORS",
     "COMPONENTS",
     "SUITE_STAGES",
     "FIELDS",
@@ -64,6 +65,10 @@ COMBINED_ESTIMATORS = MappingProxyType({"MV": PAIR_ESTIMATORS})
 JOINT_ESTIMATORS = MappingProxyType({})
 
 ESTIMATORS = PAIR_ESTIMATORS + tuple(COMBINED_ESTIMATORS) + tuple(JOINT_ESTIMATORS)
+
+# Estimators with an iterative form (delens with the current estimate, estimate again): EB, where lensing B
+# dominates the filtered B modes at depth (Smith et al. 2012, JCAP 06, 014), and the combinations holding it.
+ITERATIVE_ESTIMATORS = ("EB", "MV")
 
 # Lensing components: the gradient (phi) and the curl (Omega) of the deflection.
 COMPONENTS = ("gradient", "curl")

@@ -12,11 +12,7 @@ import numpy as np
 import pytest
 
 import lensrec
-from lensrec.iterative_noise import (
-    ITERATIVE_ESTIMATORS,
-    iterative_reconstruction_noise,
-    partially_delensed_spectra,
-)
+from lensrec.iterative_noise import iterative_reconstruction_noise, partially_delensed_spectra
 
 LMAX = 2000
 LMAX_L = 1000
@@ -177,7 +173,8 @@ def test_bad_input_names_the_value(spectra):
         iterative_reconstruction_noise(experiment, spectra, estimators="EB", lmax_L=200, max_lensing_iterations=0)
     with pytest.raises(TypeError, match="progress"):
         iterative_reconstruction_noise(experiment, spectra, estimators="EB", lmax_L=200, progress=3)
-    assert set(ITERATIVE_ESTIMATORS) == {"EB", "MV"}
+    with pytest.raises(ValueError, match="unknown estimator 'eb'; did you mean 'EB'"):
+        iterative_reconstruction_noise(experiment, spectra, estimators="eb", lmax_L=200)
 
 
 def test_not_converging_is_an_error_not_a_result(spectra):

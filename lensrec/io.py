@@ -30,6 +30,10 @@ __all__ = [
     "read_json",
     "write_maps",
     "read_maps",
+    "map_header",
+    "map_is_masked",
+    "MAP_QUANTITIES",
+    "POLARIZATION_CONVENTIONS",
     "write_alm",
     "read_alm",
     "check_outputs_free",
@@ -146,12 +150,81 @@ def _healpy():
     return healpy
 
 
-def write_maps(path, maps, force: bool = False, column_names=("T", "Q", "U")) -> None:
-    """Write HEALPix maps (RING, µK) in healpy's standard FITS layout, atomically."""
+# ------------------------------------------------------------------------------------- HEALPix headers
+#: Map quantities :func:`read_maps` knows: sky maps in temperature units (returned in µK), noise-variance
+#: maps (returned in µK²) and plain numbers (masks, hit counts; TUNIT is not used).
+MAP_QUANTITIES = ("temperature", "variance", "none")
+#: Polarization conventions of Q/U maps (the FITS keyword POLCCONV).
+POLARIZATION_CONVENTIONS = ("COSMO", "IAU")
+ORDERINGS = ("RING", "NESTED")
+
+# Factor that takes a map in each TUNIT to µK (thermodynamic CMB units only: brightness-temperature or
+# intensity units cannot be converted without a bandpass and are refused).
+_TEMPERATURE_UNITS = {
+    "k": 1e6,
+    "kcmb": 1e6,
+    "k_cmb": 1e6,
+    "k(cmb)": 1e6,
+    "mk": 1e3,
+    "mkcmb": 1e3,
+    "mk_cmb": 1e3,
+    "uk": 1.0,
+    "µk": 1.0,
+    "μk": 1.0,
+    "muk": 1.0,
+    "microk": 1.0,
+    "ukcmb": 1.0,
+    "uk_cmb": 1.0,
+    "µk_cmb": 1.0,
+}
+
+
+def _unit_factor(unit: str, quantity: str, where: str) -> float:
+    """The factor taking a map in ``unit`` to µK (``quantity`` 'temperature') or µK² ('variance')."""
+    text = unit.strip().replace(" ", "")
+    if quantity == "variance":
+        for suffix in ("^2", "**2", "2"):
+            if text.endswith(suffix) and text[: -len(suffix)].lower() in _TEMPERATURE_UNITS:
+                return _TEMPERATURE_UNITS[text[: -len(suffix)].lower()] ** 2
+        allowed = "K^2, mK^2, uK^2 (also K2, K**2, ...)"
+    else:
+        if text.lower() in _TEMPERATURE_UNITS:
+            return _TEMPERATURE_UNITS[text.lower()]
+        allowed = "K, mK, uK (K_CMB, uK_CMB, ... thermodynamic)"
+    raise ValueError(
+        f"{where} has unit {unit!r}, which lensrec cannot convert to "
+        f"{'uK^2' if quantity == 'variance' else 'uK'}; allowed: {allowed}. Convert the map, or pass "
+        "unit= (CLI: --map-unit) if the header is wrong"
+    )
+
+
+def _choice(value, allowed, name: str):
+    if value is None:
+        return None
+    if not isinstance(value, str) or value.strip().upper() not in allowed:
+        raise ValueError(f"{name} must be one of {allowed} (or None to read it from the header), got {value!r}")
+    return value.strip().upper()
+
+
+def write_maps(
+    path, maps, force: bool = False, column_names=("T", "Q", "U"), unit: str | None = "uK", masked: bool | None = None
+) -> None:
+    """Write HEALPix maps in healpy's standard FITS layout, atomically, with the keys :func:`read_maps` reads.
+
+    The header always carries ORDERING = 'RING', POLCCONV = 'COSMO' (HEALPix's convention, which healpy
+    uses) and TUNITn = ``unit`` for every column ('uK' for sky maps; ``None`` for masks or hit counts).
+    ``masked`` (True/False) records in the key LRMASKED whether a mask has already multiplied the maps,
+    so that a filter does not apply it a second time.
+    """
     maps = as_finite_array(maps, "maps", ndim=(1, 2))
     maps2 = np.atleast_2d(maps)
     check_nside(_nside_of(maps2.shape[1], "maps"), "nside of maps")
     names = list(column_names)[: maps2.shape[0]] if maps2.shape[0] > 1 else None
+    extra = [("POLCCONV", "COSMO", "Q/U convention: COSMO (HEALPix)")]
+    if masked is not None:
+        if not isinstance(masked, (bool, np.bool_)):
+            raise TypeError(f"masked must be True, False or None, got {masked!r}")
+        extra.append(("LRMASKED", bool(masked), "a mask already multiplies these maps"))
     with atomic_path(path, force=force, suffix=".fits") as tmp:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
@@ -159,9 +232,10 @@ def write_maps(path, maps, force: bool = False, column_names=("T", "Q", "U")) ->
                 tmp,
                 maps if maps.ndim == 1 else list(maps2),
                 column_names=names,
-                column_units="uK",
+                column_units=unit,
                 dtype=np.float64,
                 overwrite=True,
+                extra_header=extra,
             )
 
 
@@ -192,29 +266,151 @@ def _check_fits_readable(path: str, what: str) -> None:
         ) from None
 
 
-def read_maps(path, fields=(0, 1, 2)) -> np.ndarray:
-    """Read HEALPix maps from FITS (returned in RING order), validating shape and finiteness."""
+def map_header(path) -> dict:
+    """The HEALPix keys of a map file's first table extension: ordering, per-column units, POLCCONV, masked.
+
+    Returns ``{"ordering": str | None, "units": [str | None, ...], "names": [...], "polarization_convention":
+    str | None, "masked": bool | None, "columns": int}`` (None where the key is absent).
+    """
+    from astropy.io import fits
+
     path = os.fspath(path)
     if not os.path.isfile(path):
         raise ValueError(f"map file {path!r} does not exist")
     _check_fits_readable(path, "map file")
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            maps = _healpy().read_map(path, field=fields, dtype=np.float64)
-    except Exception as exc:  # astropy raises many kinds for truncated or corrupted files
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        with fits.open(path, memmap=False) as hdul:
+            header = hdul[1].header
+            columns = int(header.get("TFIELDS", 0))
+            ordering = header.get("ORDERING")
+            convention = header.get("POLCCONV")
+            masked = header.get("LRMASKED")
+            return {
+                "ordering": str(ordering).strip().upper() if ordering is not None else None,
+                "units": [header.get(f"TUNIT{k + 1}") for k in range(columns)],
+                "names": [header.get(f"TTYPE{k + 1}") for k in range(columns)],
+                "polarization_convention": str(convention).strip().upper() if convention is not None else None,
+                "masked": bool(masked) if masked is not None else None,
+                "columns": columns,
+            }
+
+
+def read_maps(
+    path,
+    fields=(0, 1, 2),
+    quantity: str = "temperature",
+    unit: str | None = None,
+    polarization_convention: str | None = None,
+    ordering: str | None = None,
+) -> np.ndarray:
+    """Read HEALPix maps from FITS, returned in RING order, µK (or µK²) and the COSMO Q/U convention.
+
+    The FITS header decides what the numbers mean, and what it cannot settle is refused:
+
+    - ORDERING: 'NESTED' maps are reordered to RING (healpy.reorder). A file without ORDERING is refused
+      unless ``ordering`` says which it is.
+    - TUNITn (``quantity='temperature'``): K, mK or µK (thermodynamic CMB units) are converted to µK; a
+      column without TUNIT, or with a unit that needs a bandpass (K_RJ, MJy/sr), is refused unless
+      ``unit`` says what the numbers are. ``quantity='variance'``: K², mK², µK² are converted to µK².
+      ``quantity='none'`` (masks, hit counts): units are not used.
+    - POLCCONV: Q/U in the IAU convention (polarization angle measured from north through east) are
+      converted to COSMO, HEALPix's convention which lensrec uses internally, by flipping the sign of U
+      (Górski et al. 2005, ApJ 622, 759; HEALPix documentation on polarization conventions). An absent
+      POLCCONV means COSMO, the HEALPix convention that healpy writes. ``polarization_convention`` forces
+      either, whatever the header says. U is taken to be the third column of the file.
+
+    Parameters
+    ----------
+    path : str or path
+    fields : int or sequence of int
+        Columns to read (0-based).
+    quantity : {'temperature', 'variance', 'none'}
+    unit : str, optional
+        Unit of every read column, overriding the header (e.g. 'K', 'mK', 'uK'; 'K^2' for variances).
+    polarization_convention : {'COSMO', 'IAU'}, optional
+        Force the Q/U convention of the file (default: POLCCONV from the header, COSMO when absent).
+    ordering : {'RING', 'NESTED'}, optional
+        Force the pixel ordering (default: ORDERING from the header; refused when absent).
+
+    Raises
+    ------
+    ValueError
+        Missing, truncated or corrupted file; unknown or missing ordering or unit; unknown POLCCONV;
+        UNSEEN or non-finite pixels; a pixel count that is no HEALPix nside.
+    """
+    path = os.fspath(path)
+    if quantity not in MAP_QUANTITIES:
+        raise ValueError(f"quantity must be one of {MAP_QUANTITIES}, got {quantity!r}")
+    forced_convention = _choice(polarization_convention, POLARIZATION_CONVENTIONS, "polarization_convention")
+    forced_ordering = _choice(ordering, ORDERINGS + ("NEST",), "ordering")
+    if unit is not None and not isinstance(unit, str):
+        raise TypeError(f"unit must be a string such as 'uK', 'mK' or 'K', got {unit!r}")
+    keys = map_header(path)  # checks existence and readability first
+    single = np.ndim(fields) == 0
+    wanted = [int(fields)] if single else [int(k) for k in fields]
+    for column in wanted:
+        if column < 0 or column >= keys["columns"]:
+            raise ValueError(
+                f"map file {path!r} has {keys['columns']} column(s); column {column} was asked for (fields={fields!r})"
+            )
+    order = forced_ordering or keys["ordering"]
+    if order is None:
         raise ValueError(
-            f"map file {path!r} is unreadable, truncated or corrupted ({type(exc).__name__}: {exc})"
-        ) from None
-    maps = np.asarray(maps, dtype=np.float64)
+            f"map file {path!r} does not say its pixel ordering (no ORDERING key); pass ordering='RING' or "
+            "'NESTED' (CLI: --map-ordering) if you know it"
+        )
+    if order not in ("RING", "NESTED", "NEST"):
+        raise ValueError(f"map file {path!r} has ORDERING={order!r}; lensrec reads RING or NESTED maps")
+    factors = np.ones(len(wanted))
+    if quantity != "none":
+        for k, column in enumerate(wanted):
+            column_unit = unit if unit is not None else keys["units"][column]
+            where = f"column {column} of map file {path!r}"
+            if column_unit is None or not str(column_unit).strip():
+                raise ValueError(
+                    f"{where} has no unit (no TUNIT{column + 1} key); pass unit= (CLI: --map-unit), e.g. "
+                    f"'uK', 'mK' or 'K'{' squared' if quantity == 'variance' else ''}, if you know it"
+                )
+            factors[k] = _unit_factor(str(column_unit), quantity, where)
+    convention = forced_convention or keys["polarization_convention"] or "COSMO"
+    if convention not in POLARIZATION_CONVENTIONS:
+        raise ValueError(
+            f"map file {path!r} has POLCCONV={keys['polarization_convention']!r}; allowed: "
+            f"{POLARIZATION_CONVENTIONS} (pass polarization_convention= to force one)"
+        )
+    from astropy.io import fits
+
+    # healpy reads from the HDU we opened, so the file is closed by this block whatever healpy does
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        with fits.open(path, memmap=False) as hdul:
+            try:
+                maps = _healpy().read_map(hdul[1], field=wanted, dtype=np.float64, nest=None)
+            except Exception as exc:  # astropy raises many kinds for truncated or corrupted files
+                raise ValueError(
+                    f"map file {path!r} is unreadable, truncated or corrupted ({type(exc).__name__}: {exc})"
+                ) from None
+            maps = np.array(np.atleast_2d(maps), dtype=np.float64)
     bad_pixels = np.isclose(maps, _healpy().UNSEEN)
     if np.any(bad_pixels):
         raise ValueError(
             f"map file {path!r} has {int(bad_pixels.sum())} UNSEEN pixels; fill them (lensrec applies masks explicitly)"
         )
-    nside = _nside_of(np.atleast_2d(maps).shape[1], f"map file {path!r}")
+    nside = _nside_of(maps.shape[1], f"map file {path!r}")
     check_nside(nside, f"nside of {path!r}")
-    return as_finite_array(maps, f"maps in {path!r}")
+    maps = as_finite_array(maps, f"maps in {path!r}")
+    if order in ("NESTED", "NEST"):
+        maps = np.array(_healpy().reorder(maps, n2r=True), dtype=np.float64, ndmin=2)
+    maps *= factors[:, None]
+    if quantity == "temperature" and convention == "IAU" and 2 in wanted:
+        maps[wanted.index(2)] *= -1.0  # IAU -> COSMO flips U
+    return maps[0] if single else maps
+
+
+def map_is_masked(path) -> bool | None:
+    """Whether a map file says a mask already multiplies it (LRMASKED key); None if it does not say."""
+    return map_header(path)["masked"]
 
 
 def write_alm(path, alm, lmax: int | None = None, force: bool = False) -> None:

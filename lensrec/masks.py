@@ -256,7 +256,7 @@ def load_mask(path, nside: int | None = None) -> np.ndarray:
 
     path = os.fspath(path)
     try:
-        mask = read_maps(path, fields=0)
+        mask = read_maps(path, fields=0, quantity="none")
     except ValueError as exc:
         raise ValueError(f"mask file {path!r} cannot be used: {exc}") from None
     return check_mask(mask, nside, name=f"mask in {path!r}")

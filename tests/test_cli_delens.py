@@ -172,7 +172,7 @@ def _write_nan_copy(source, target, kind):
         if kind == "maps":
             maps = np.array(read_maps(source))
             maps[1, 10] = np.nan
-            healpy.write_map(str(target), list(maps), dtype=np.float64, overwrite=True)
+            healpy.write_map(str(target), list(maps), dtype=np.float64, overwrite=True, column_units="uK")
         else:
             alm = np.array(read_alm(source))
             alm[5] = np.nan

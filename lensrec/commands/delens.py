@@ -27,9 +27,10 @@ SUMMARY_BANDS = ((30, 100), (100, 300), (300, 1000), (1000, 2000), (2000, 3000))
 
 
 def add_arguments(parser) -> None:
-    from .options import add_common
+    from .options import add_common, add_map_reading
 
     add_common(parser, experiment=True, out=True)
+    add_map_reading(parser)
     parser.add_argument("--maps", required=True, help="observed T, Q, U maps (HEALPix FITS, uK, RING)")
     parser.add_argument(
         "--phi", required=True, help="normalised phi reconstruction (healpy alm FITS) with its n0.json beside it"
@@ -137,7 +138,9 @@ def run(args) -> int:
     start = time.perf_counter()
     experiment = lensrec.load_experiment(args.experiment)
     spectra = lensrec.fiducial_spectra()
-    maps = read_maps(args.maps)
+    from .options import map_reading_options
+
+    maps = read_maps(args.maps, **map_reading_options(args))
     if maps.ndim != 2 or maps.shape[0] != 3:
         raise InputError(f"--maps {args.maps!r} must hold three maps T, Q, U, got shape {maps.shape}")
     nside = harmonics.npix_to_nside(maps.shape[1], f"--maps {args.maps!r}")

@@ -24,9 +24,10 @@ OUTPUTS = ("phi_alm.fits", "curl_alm.fits", "n0.json", "run.json")
 
 
 def add_arguments(parser) -> None:
-    from .options import add_common
+    from .options import add_common, add_map_reading
 
     add_common(parser, experiment=True, out=True)
+    add_map_reading(parser)
     parser.add_argument(
         "--maps", required=True, help="HEALPix FITS file with T, Q, U in uK (e.g. from 'lensrec simulate')"
     )
@@ -99,7 +100,9 @@ def run(args) -> int:
     columns = _column_count(args.maps)
     if columns < 3:
         raise ValueError(f"map file {args.maps!r} must hold three maps (T, Q, U), found {columns} column(s)")
-    maps = read_maps(args.maps)
+    from .options import map_reading_options
+
+    maps = read_maps(args.maps, **map_reading_options(args))
     nside = lensrec.harmonics.npix_to_nside(maps.shape[1], f"maps in {args.maps!r}")
     mask = lensrec.load_mask(args.mask, nside) if args.mask else None
     inputs = {

@@ -82,7 +82,7 @@ def run(args) -> int:
 
     start = time.perf_counter()
     os.makedirs(args.out, exist_ok=True)
-    write_maps(paths["maps.fits"], result.maps, force=args.force)
+    write_maps(paths["maps.fits"], result.maps, force=args.force, masked=mask is not None)
     write_alm(paths["phi_input_alm.fits"], result.phi_alm, force=args.force)
     extra_settings = {}
     if tracer_set is not None:

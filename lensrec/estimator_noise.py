@@ -32,7 +32,17 @@ from .estimator_weights import (
     spectrum_name,
 )
 from .experiment import Experiment, load_experiment
-from .labels import COMBINED_ESTIMATORS, COMPONENTS, ESTIMATOR_FIELDS, ESTIMATORS, parse_components, parse_estimators
+from .labels import (
+    COMBINED_ESTIMATORS,
+    COMPONENTS,
+    ESTIMATOR_FIELDS,
+    ESTIMATORS,
+    FIELDS,
+    JOINT_ESTIMATORS,
+    parse_components,
+    parse_estimators,
+)
+from .filtering import joint_inverse_spectra
 from .spectra import Spectra, fiducial_spectra
 
 __all__ = [
@@ -45,6 +55,9 @@ __all__ = [
     "minimum_variance",
 ]
 
+# the joint estimator ("GMV") and the nine ordered field pairs (p, q) it sums over
+(JOINT_ESTIMATOR,) = tuple(JOINT_ESTIMATORS)
+JOINT_PAIRS = tuple((p, q) for p in FIELDS for q in FIELDS)
 # Imaginary parts of sums that are real by symmetry must cancel to rounding; anything larger is a defect.
 _IMAGINARY_TOLERANCE = 1e-9
 
@@ -58,12 +71,15 @@ def standard_factors(
     total_prefix: str = "total",
     filter_prefix: str = "inverse",
     spectra_prefix: str = "cmb",
+    joint_prefix: str = "joint",
 ) -> FactorTable:
     """The factor table lensrec's estimators use.
 
     ``"cmb:XY"``: CMB spectra in the weights and response (lensed unless ``lensed_weights=False``);
     ``"total:XY"``: total spectra C_tot = lensed CMB + beam-deconvolved noise, set to 0 outside the ℓ cuts
-    (where every filter vanishes); ``"inverse:X"``: the diagonal filters 1/C^XX_tot (0 outside the cuts).
+    (where every filter vanishes); ``"inverse:X"``: the diagonal filters 1/C^XX_tot (0 outside the cuts);
+    ``"joint:XY"``: elements of the inverse 3×3 total covariance C_tot⁻¹ (the joint filter,
+    :func:`lensrec.filtering.joint_inverse_spectra`; "joint:TB" and "joint:EB" are zero).
 
     Parameters
     ----------
@@ -72,7 +88,7 @@ def standard_factors(
     lmax : int
         Highest CMB multipole (≤ ``spectra.lmax``).
     lensed_weights : bool
-    total_prefix, filter_prefix, spectra_prefix : str
+    total_prefix, filter_prefix, spectra_prefix, joint_prefix : str
         Name prefixes (change them to hold several sets in one table).
     """
     lmax = as_int(lmax, "lmax", minimum=2, maximum=spectra.lmax)
@@ -83,6 +99,8 @@ def standard_factors(
         table.add(f"{spectra_prefix}:{key}", as_finite_array(signal[key][: lmax + 1], f"spectra {key}"))
         values = np.where(np.isfinite(total[key]), total[key], 0.0)
         table.add(f"{total_prefix}:{key}", values)
+    for key, values in joint_inverse_spectra(total).items():
+        table.add(f"{joint_prefix}:{key}", values)
     for field_name in "TEB":
         auto = total[field_name * 2]
         usable = np.isfinite(auto) & (auto > 0)
@@ -113,6 +131,74 @@ def _register_noise(sums: KernelSums, a: QuadraticEstimator, b: QuadraticEstimat
         scale=scale,
     )
     return first, second
+
+
+def joint_estimator_parts(component: str = "gradient", spectra: str = "cmb") -> dict:
+    """The joint (GMV) estimator as a sum over ordered field pairs of jointly filtered fields.
+
+    ḡ^GMV_LM = ½ Σ_{p,q ∈ {T,E,B}} Σ_{ℓ1m1ℓ2m2} (−1)^M (ℓ1 ℓ2 L; m1 m2 −M) [f^pq_{ℓ1Lℓ2}]* X̄^p_ℓ1m1 X̄^q_ℓ2m2 ,
+
+    with X̄ = C_tot⁻¹ X the jointly filtered fields (3×3 total covariance per ℓ, TE correlation included) and
+    f^pq the response functions of :func:`lensrec.estimator_weights.response_kernel` for all nine ordered
+    pairs (f^BB ∝ C^BB is kept). Returns {(p, q): QuadraticEstimator with weight [f^pq]* on (X̄^p, X̄^q)}
+    (symmetry 1; the ½ is applied by the sums below).
+
+    References
+    ----------
+    Maniyar, Ali-Haïmoud, Carron, Lewis & Madhavacheril 2021, PRD 103, 083524 (generalised minimum-variance
+    estimator); Okamoto & Hu 2003, PRD 67, 083002 (the response functions f).
+    """
+    return {
+        (p, q): QuadraticEstimator(
+            JOINT_ESTIMATOR, component, response_kernel((p, q), component, spectra).conjugate(), 1
+        )
+        for p, q in JOINT_PAIRS
+    }
+
+
+def _register_joint_response(sums: KernelSums, component: str, joint: str = "joint") -> list[int]:
+    """R^GMV_L = 1/(2(2L+1)) Σ_{pq,ij} [f^pq]* (C⁻¹)^pi_ℓ1 (C⁻¹)^qj_ℓ2 f^ij (the response of ½ Σ f* X̄ X̄)."""
+    parts = joint_estimator_parts(component)
+    out = []
+    for (p, q), estimator in parts.items():
+        for i in "TEB":
+            first = spectrum_name(joint, p, i)
+            if sums.factors.is_zero(first):
+                continue
+            for j in "TEB":
+                second = spectrum_name(joint, q, j)
+                if sums.factors.is_zero(second):
+                    continue
+                source = response_kernel((i, j), component)
+                out.append(sums.add(estimator.weight, source, first=(first,), second=(second,), scale=0.5))
+    return out
+
+
+def _register_joint_noise(sums: KernelSums, component: str, filtered: str = "joint") -> list[tuple[int, float]]:
+    """Gaussian noise of ḡ^GMV: ¼ Σ over ordered pairs of pairs of the two Wick terms, filtered-field spectra.
+
+    ``filtered`` names the spectra of the filtered fields, ⟨X̄^p X̄^r*⟩ = (C⁻¹ C_data C⁻¹)^pr; when the data
+    have the filter's total spectra that is C⁻¹ itself ("joint"). Returns (sum index, multiplicity) with
+    multiplicity 2 for the off-diagonal pairs of pairs (their Hermitian partners give the complex conjugate,
+    so twice the real part is used).
+    """
+    parts = list(joint_estimator_parts(component).values())
+    out = []
+    for a_index, a in enumerate(parts):
+        for b_index in range(a_index, len(parts)):
+            b = parts[b_index]
+            x, y = a.fields
+            z, v = b.fields
+            weight = 1.0 if a_index == b_index else 2.0
+            names = (
+                (spectrum_name(filtered, x, z), spectrum_name(filtered, y, v), b.weight.conjugate()),
+                (spectrum_name(filtered, x, v), spectrum_name(filtered, y, z), b.weight.swapped().conjugate()),
+            )
+            for first, second, right in names:
+                if sums.factors.is_zero(first) or sums.factors.is_zero(second):
+                    continue
+                out.append((sums.add(a.weight, right, first=(first,), second=(second,), scale=0.25), weight))
+    return out
 
 
 def estimator_responses(estimators, sources, factors: FactorTable, lmax: int, lmax_L: int, nthreads=None):
@@ -427,7 +513,7 @@ def reconstruction_noise(
                 f"spectra to l={spectra.lmax}); drop {label} from estimators"
             )
     base = tuple(usable)  # a combination combines those of its estimators that are defined
-    if not base:
+    if not base and (JOINT_ESTIMATOR not in labels or all(factors.is_zero(f"inverse:{f}") for f in "TEB")):
         raise ValueError("no estimator has usable multipoles: every field is cut")
 
     sums = KernelSums(factors, lmax, lmax, lmax_L, nthreads)
@@ -442,20 +528,23 @@ def reconstruction_noise(
             for i in range(len(base))
             for j in range(i, len(base))
         }
+        if JOINT_ESTIMATOR in labels:
+            registry[component, "joint response"] = _register_joint_response(sums, component)
+            registry[component, "joint noise"] = _register_joint_noise(sums, component)
     values = sums.evaluate()
 
     L = np.arange(lmax_L + 1)
     low = L < 2
     n0, response, covariance, mv_weights = {}, {}, {}, {}
     for component in components:
-        responses = np.array([values[k] for k in registry[component, "response"]])
+        responses = np.array([values[k] for k in registry[component, "response"]]).reshape(len(base), lmax_L + 1)
         _check_real(responses, np.abs(responses), "response")
         responses = responses.real
         noise = np.zeros((len(base), len(base), lmax_L + 1), dtype=np.complex128)
         for (i, j), (p, q) in registry[component, "noise"].items():
             noise[i, j] = values[p] + values[q]
             noise[j, i] = np.conj(noise[i, j])
-        diag = np.abs(np.array([noise[i, i] for i in range(len(base))]))
+        diag = np.abs(np.einsum("iil->il", noise))
         _check_real(noise, np.sqrt(diag[:, None] * diag[None, :]), "noise covariance")
         noise = noise.real
         with np.errstate(divide="ignore", invalid="ignore"):
@@ -480,6 +569,19 @@ def reconstruction_noise(
                 response.setdefault(label, {})[component] = _frozen_array(1.0 / combined_n0)
             if label == "MV":  # MV combines every defined estimator: its weights run over covariance_labels
                 mv_weights[component] = _frozen_array(weights)
+        if JOINT_ESTIMATOR in labels:
+            joint_response = sum(values[k] for k in registry[component, "joint response"])
+            _check_real(joint_response, np.abs(joint_response), "joint response")
+            joint_response = joint_response.real
+            joint_noise = np.zeros(lmax_L + 1, dtype=np.complex128)
+            for k, multiplicity in registry[component, "joint noise"]:
+                joint_noise += values[k] if multiplicity == 1 else 2.0 * values[k].real
+            _check_real(joint_noise, np.abs(joint_noise), "joint noise")
+            with np.errstate(divide="ignore", invalid="ignore"):
+                defined = (joint_response > 0) & ~low
+                joint_n0 = np.where(defined, joint_noise.real / np.where(defined, joint_response, 1.0) ** 2, np.nan)
+            n0.setdefault(JOINT_ESTIMATOR, {})[component] = _frozen_array(joint_n0)
+            response.setdefault(JOINT_ESTIMATOR, {})[component] = _frozen_array(np.where(low, np.nan, joint_response))
     ordered = {label: MappingProxyType(n0[label]) for label in labels}
     settings = {
         "lmax": lmax,

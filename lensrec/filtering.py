@@ -39,6 +39,7 @@ mean-field into the lensing estimate. The sky-fraction moments ⟨wⁿ⟩, n = 1
 
 from __future__ import annotations
 
+import warnings
 from collections.abc import Mapping
 from dataclasses import dataclass
 from dataclasses import field as dataclass_field
@@ -54,7 +55,7 @@ from .harmonics import ell_of_alm, nalm, npix_to_nside, truncate_alm
 from .masks import apodize_binary_mask, check_mask, sky_fraction_moments
 from .spectra import Spectra, fiducial_spectra
 
-__all__ = ["FIELDS", "FilteredFields", "FieldFilter", "IsotropicFilter"]
+__all__ = ["FIELDS", "FilteredFields", "FieldFilter", "IsotropicFilter", "joint_inverse_spectra"]
 
 FIELDS = ("T", "E", "B")
 _SIGNAL_KEYS = ("TT", "EE", "BB", "TE")
@@ -64,6 +65,66 @@ def _readonly(array: np.ndarray) -> np.ndarray:
     array = np.array(array, copy=True)
     array.setflags(write=False)
     return array
+
+
+def joint_inverse_spectra(total: Mapping) -> dict[str, np.ndarray]:
+    """Elements of the inverse of the 3×3 total (T, E, B) covariance per ℓ: the joint inverse-variance filter.
+
+    With C_ℓ = [[C^TT, C^TE, 0], [C^TE, C^EE, 0], [0, 0, C^BB]] (total = lensed CMB + beam-deconvolved noise),
+    returns (C_ℓ⁻¹)^TT, (C_ℓ⁻¹)^TE, (C_ℓ⁻¹)^EE and (C_ℓ⁻¹)^BB (the TB and EB elements vanish). Where a field is
+    cut (auto-spectrum ``inf``, not positive or not finite) it drops out of the block: e.g. with E cut at ℓ,
+    (C⁻¹)^TT = 1/C^TT and (C⁻¹)^TE = (C⁻¹)^EE = 0, so the filter reduces to the diagonal one there.
+
+    Parameters
+    ----------
+    total : mapping
+        'TT', 'EE', 'BB' and 'TE' total spectra on ℓ = 0 … lmax, as :meth:`lensrec.Experiment.total_spectra`.
+
+    Returns
+    -------
+    dict 'TT', 'TE', 'EE', 'BB' → ndarray (µK⁻²)
+
+    Raises
+    ------
+    ValueError
+        Spectra of different lengths, or a T–E block that is not positive definite where both fields are used.
+
+    References
+    ----------
+    Maniyar, Ali-Haïmoud, Carron, Lewis & Madhavacheril 2021, PRD 103, 083524 (the joint filter C⁻¹ of the
+    generalised minimum-variance estimator).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> inv = joint_inverse_spectra({"TT": np.array([2.0]), "EE": np.array([1.0]), "BB": np.array([4.0]),
+    ...                              "TE": np.array([1.0])})
+    >>> [float(inv[k][0]) for k in ("TT", "TE", "EE", "BB")]
+    [1.0, -1.0, 2.0, 0.25]
+    """
+    arrays = {key: np.asarray(total[key], dtype=np.float64) for key in _SIGNAL_KEYS}
+    size = arrays["TT"].size
+    if any(array.shape != (size,) for array in arrays.values()):
+        raise ValueError(
+            f"total spectra must be 1-D arrays of one length, got { {k: v.shape for k, v in arrays.items()} }"
+        )
+    use = {x: np.isfinite(arrays[x + x]) & (arrays[x + x] > 0) for x in "TEB"}
+    out = {key: np.zeros(size) for key in ("TT", "TE", "EE", "BB")}
+    both = use["T"] & use["E"]
+    te = np.where(both, arrays["TE"], 0.0)
+    if not np.all(np.isfinite(te)):
+        raise ValueError("the total TE spectrum must be finite where T and E are both used")
+    tt = np.where(use["T"], arrays["TT"], 1.0)
+    ee = np.where(use["E"], arrays["EE"], 1.0)
+    determinant = tt * ee - te**2
+    if np.any(determinant[both] <= 0):
+        bad = int(np.flatnonzero(both & (determinant <= 0))[0])
+        raise ValueError(f"the total T-E covariance is not positive definite at l={bad} (C^TE^2 >= C^TT C^EE)")
+    out["TT"] = np.where(both, ee / np.where(both, determinant, 1.0), np.where(use["T"], 1.0 / tt, 0.0))
+    out["EE"] = np.where(both, tt / np.where(both, determinant, 1.0), np.where(use["E"], 1.0 / ee, 0.0))
+    out["TE"] = np.where(both, -te / np.where(both, determinant, 1.0), 0.0)
+    out["BB"] = np.where(use["B"], 1.0 / np.where(use["B"], arrays["BB"], 1.0), 0.0)
+    return out
 
 
 def _field_index(name) -> int:
@@ -90,7 +151,11 @@ class FilteredFields:
         ⟨wⁿ⟩ of the mask (``"w1"`` … ``"w4"``, ``"fsky"``, ``"fsky_spectra"``; see
         :func:`lensrec.masks.sky_fraction_moments`), None for a full, unmasked sky.
     settings : mapping
-        How the fields were filtered (filter name, experiment, nside, iterations, …).
+        How the fields were filtered (filter name, experiment, nside, Jacobi iterations, …).
+    joint : bool
+        False (default): each field filtered by its own total spectrum, X̄ = X / C^XX_tot (the pair
+        estimators' filter). True: T, E, B filtered jointly, X̄ = C_tot⁻¹ X with the 3×3 total covariance
+        per ℓ (TE correlation kept, :func:`joint_inverse_spectra`), the filter of the joint "GMV" estimator.
 
     Examples
     --------
@@ -107,8 +172,12 @@ class FilteredFields:
     signal: Mapping
     mask_moments: Mapping | None = None
     settings: Mapping = dataclass_field(default_factory=dict)
+    joint: bool = False
 
     def __post_init__(self):
+        if not isinstance(self.joint, (bool, np.bool_)):
+            raise TypeError(f"joint must be True or False, got {self.joint!r}")
+        object.__setattr__(self, "joint", bool(self.joint))
         lmax = as_int(self.lmax, "lmax", minimum=1)
         alm = as_finite_array(self.alm, "alm", shape=(3, nalm(lmax)), dtype=np.complex128)
         object.__setattr__(self, "lmax", lmax)
@@ -153,13 +222,18 @@ class FilteredFields:
         return self.alm[_field_index(name)]
 
     def wiener(self, name: str) -> np.ndarray:
-        """The Wiener-filtered field C^XX · X̄ (µK) of ``name`` ('T', 'E' or 'B'), a new array.
+        """The Wiener-filtered field (µK) of ``name`` ('T', 'E' or 'B'), a new array.
 
-        For the diagonal isotropic filter this is C^XX/(C^XX + N^XX) · X of that field alone.
+        Per-field filter (``joint`` False): C^XX · X̄, i.e. C^XX/(C^XX + N^XX) · X of that field alone. Joint
+        filter: Σ_Y C^XY · Ȳ = (C C_tot⁻¹ X)_X, so the Wiener-filtered E also draws on T through C^TE.
         """
         index = _field_index(name)
         key = FIELDS[index] * 2
-        return harmonics.scale_alm(self.alm[index], self.signal[key], self.lmax)
+        out = harmonics.scale_alm(self.alm[index], self.signal[key], self.lmax)
+        if self.joint and FIELDS[index] in "TE":
+            other = 1 - index  # T <-> E
+            out += harmonics.scale_alm(self.alm[other], self.signal["TE"], self.lmax)
+        return out
 
     def wiener_alm(self) -> np.ndarray:
         """Wiener-filtered T, E, B coefficients, shape (3, nalm(lmax)) (µK)."""
@@ -200,10 +274,16 @@ class IsotropicFilter:
     apodization : float, optional
         Taper width in degrees: apodize a *binary* ``mask`` first (:func:`lensrec.masks.apodize_binary_mask`,
         C2 taper). Default: use ``mask`` as given.
-    iterations : int
+    jacobi_iterations : int
         Jacobi iterations of the HEALPix analysis (default 3, healpy's default; 0 is plain quadrature).
     nthreads : int, optional
         Threads for the transforms (default ``LENSREC_NTHREADS`` or all cores).
+    joint : bool
+        False (default): filter each field by its own total spectrum, X̄ = X / (b_ℓ C^XX_tot). True: filter
+        T, E, B jointly with the inverse 3×3 total covariance per ℓ, X̄ = C_tot⁻¹ X / b_ℓ (the filter of the
+        joint "GMV" estimator; Maniyar et al. 2021, PRD 103, 083524). Both cost the same transforms.
+    iterations : int, optional
+        Deprecated name of ``jacobi_iterations`` (kept for one release; gives a DeprecationWarning).
 
     Attributes
     ----------
@@ -228,11 +308,24 @@ class IsotropicFilter:
     lmax: int | None = None
     mask: np.ndarray | None = None
     apodization: float | None = None
-    iterations: int = 3
+    jacobi_iterations: int = 3
     nthreads: int | None = None
+    joint: bool = False
+    iterations: int | None = None
 
     def __post_init__(self):
         set_ = object.__setattr__
+        if self.iterations is not None:
+            warnings.warn(
+                "IsotropicFilter(iterations=...) is deprecated; use jacobi_iterations=...",
+                DeprecationWarning,
+                stacklevel=3,
+            )
+            set_(self, "jacobi_iterations", self.iterations)
+            set_(self, "iterations", None)
+        if not isinstance(self.joint, (bool, np.bool_)):
+            raise TypeError(f"joint must be True or False, got {self.joint!r}")
+        set_(self, "joint", bool(self.joint))
         experiment = load_experiment(self.experiment)
         spectra = fiducial_spectra() if self.spectra is None else self.spectra
         if not isinstance(spectra, Spectra):
@@ -252,7 +345,7 @@ class IsotropicFilter:
         set_(self, "experiment", experiment)
         set_(self, "spectra", spectra)
         set_(self, "lmax", lmax)
-        set_(self, "iterations", as_int(self.iterations, "iterations", minimum=0, maximum=100))
+        set_(self, "jacobi_iterations", as_int(self.jacobi_iterations, "jacobi_iterations", minimum=0, maximum=100))
         if self.nthreads is not None:
             set_(self, "nthreads", resolve_nthreads(self.nthreads))
         if self.mask is not None:
@@ -280,6 +373,14 @@ class IsotropicFilter:
                 )
             factors.append(factor)
         set_(self, "_factors", _readonly(np.array(factors)))
+        inverse = joint_inverse_spectra(total)
+        with np.errstate(divide="ignore"):
+            unbeam = np.where(beam > 0, 1.0 / np.where(beam > 0, beam, 1.0), 0.0)
+        # rows T̄, Ē, B̄; columns T, E, B: (C_tot⁻¹)^XY / b_ℓ
+        matrix = np.zeros((3, 3, lmax + 1))
+        for (i, j), key in {(0, 0): "TT", (0, 1): "TE", (1, 0): "TE", (1, 1): "EE", (2, 2): "BB"}.items():
+            matrix[i, j] = inverse[key] * unbeam
+        set_(self, "_joint_matrix", _readonly(matrix))
 
     @property
     def mask_moments(self) -> dict | None:
@@ -287,14 +388,23 @@ class IsotropicFilter:
         return None if self.mask is None else sky_fraction_moments(self.mask)
 
     def inverse_variance(self, field: str) -> np.ndarray:
-        """The filter 1/(b_ℓ C^XX_tot,ℓ) applied to the observed X_ℓm of ``field`` (0 outside the cuts)."""
+        """The filter 1/(b_ℓ C^XX_tot,ℓ) applied to the observed X_ℓm of ``field`` (0 outside the cuts).
+
+        This is the per-field filter; with ``joint=True`` the fields are filtered by
+        :meth:`joint_inverse_variance` instead.
+        """
         return np.array(self._factors[_field_index(field)])
+
+    def joint_inverse_variance(self, output: str, observed: str) -> np.ndarray:
+        """(C_tot⁻¹)^XY / b_ℓ: how the observed Y_ℓm enters the jointly filtered X̄_ℓm (0 between B and T or E)."""
+        return np.array(self._joint_matrix[_field_index(output), _field_index(observed)])
 
     def _settings(self, **extra) -> dict:
         settings = {
             "filter": "isotropic",
+            "joint": self.joint,
             "lmax": self.lmax,
-            "iterations": self.iterations,
+            "jacobi_iterations": self.jacobi_iterations,
             "experiment": self.experiment.to_dict(),
             "spectra": dict(self.spectra.metadata),
             "apodization_deg": self.apodization,
@@ -337,7 +447,7 @@ class IsotropicFilter:
                 )
             array = array * self.mask
             moments = sky_fraction_moments(self.mask)
-        alm = harmonics.map2alm_tqu(array, self.lmax, iterations=self.iterations, nthreads=self.nthreads)
+        alm = harmonics.map2alm_tqu(array, self.lmax, iterations=self.jacobi_iterations, nthreads=self.nthreads)
         return self._finish(alm, moments, nside=nside, source="maps")
 
     def filter_alm(self, alm) -> FilteredFields:
@@ -367,8 +477,17 @@ class IsotropicFilter:
         return self._finish(array, None, source="alm")
 
     def _finish(self, alm: np.ndarray, moments, **extra) -> FilteredFields:
-        alm = alm * self._factors[:, ell_of_alm(self.lmax)]
-        return FilteredFields(alm, self.lmax, self._signal(), moments, self._settings(**extra))
+        ell = ell_of_alm(self.lmax)
+        if self.joint:
+            matrix = self._joint_matrix
+            out = np.empty_like(alm)
+            out[0] = alm[0] * matrix[0, 0, ell] + alm[1] * matrix[0, 1, ell]
+            out[1] = alm[0] * matrix[1, 0, ell] + alm[1] * matrix[1, 1, ell]
+            out[2] = alm[2] * matrix[2, 2, ell]
+            alm = out
+        else:
+            alm = alm * self._factors[:, ell]
+        return FilteredFields(alm, self.lmax, self._signal(), moments, self._settings(**extra), joint=self.joint)
 
 
 def _check_maps(maps) -> np.ndarray:

@@ -9,8 +9,8 @@ here. Adding an estimator means one entry in one of the tables below plus its we
 - :data:`COMBINED_ESTIMATORS`: a label -> the pair estimators it combines, each normalised, with weights
   from the inverse of their N0 covariance (Okamoto & Hu 2003, §III). "MV" combines all five.
 - :data:`JOINT_ESTIMATORS`: a label -> the pair estimators whose weights are derived jointly from the full
-  T, E, B covariance rather than combined after normalisation (e.g. a global minimum-variance estimator,
-  Maniyar et al. 2021, PRD 103, 083524). Empty until such an estimator is implemented.
+  T, E, B covariance rather than combined after normalisation. "GMV", the joint ("generalised")
+  minimum-variance estimator (Maniyar et al. 2021, PRD 103, 083524), spans all five pairs.
 
 :data:`ESTIMATORS` is every label, in display order (pairs, then combinations, then joint estimators).
 The rules (which fields a label reads, whether it uses B modes, whether its two legs are interchangeable)
@@ -62,7 +62,7 @@ PAIR_ESTIMATORS = tuple(ESTIMATOR_FIELDS)
 COMBINED_ESTIMATORS = MappingProxyType({"MV": PAIR_ESTIMATORS})
 
 # label -> pair estimators whose weights are derived jointly from the full T, E, B covariance.
-JOINT_ESTIMATORS = MappingProxyType({})
+JOINT_ESTIMATORS = MappingProxyType({"GMV": PAIR_ESTIMATORS})
 
 ESTIMATORS = PAIR_ESTIMATORS + tuple(COMBINED_ESTIMATORS) + tuple(JOINT_ESTIMATORS)
 

@@ -70,8 +70,15 @@ from types import MappingProxyType
 import numpy as np
 
 from ._checks import as_float, as_int, resolve_nthreads
-from .estimator_noise import ReconstructionNoise, reconstruction_noise
-from .estimator_weights import COMPONENTS, ESTIMATOR_FIELDS, FactorTable, quadratic_estimator
+from .estimator_noise import JOINT_ESTIMATOR, ReconstructionNoise, reconstruction_noise
+from .estimator_weights import (
+    COMPONENTS,
+    ESTIMATOR_FIELDS,
+    FactorTable,
+    lensing_operator,
+    quadratic_estimator,
+    spectrum_name,
+)
 from .experiment import Experiment, load_experiment
 from .filtering import FieldFilter, FilteredFields, IsotropicFilter
 from .harmonics import ell_of_alm, gl_grid_for_band_limits, nalm
@@ -88,8 +95,10 @@ __all__ = [
     "mean_field",
 ]
 
-ESTIMATORS = ("TT", "TE", "EE", "TB", "EB", "MV")
+ESTIMATORS = ("TT", "TE", "EE", "TB", "EB", "MV", "GMV")
 BASE_ESTIMATORS = ("TT", "TE", "EE", "TB", "EB")
+# labels quadratic_estimates computes directly (MV is a weighted sum of the five pair estimates)
+_POSITION_LABELS = BASE_ESTIMATORS + (JOINT_ESTIMATOR,)
 _FIELD_INDEX = {"T": 0, "E": 1, "B": 2}
 # Work space for one block of rings (legs and products); bounds the peak memory at any size.
 _WORKSPACE_BYTES = 1024 * 2**20
@@ -114,9 +123,9 @@ def _check_label(estimator, allowed=ESTIMATORS) -> str:
 def _check_labels(estimators) -> tuple[str, ...]:
     if isinstance(estimators, str):
         estimators = [part.strip() for part in estimators.split(",")]
-    labels = tuple(_check_label(label, BASE_ESTIMATORS) for label in estimators)
+    labels = tuple(_check_label(label, _POSITION_LABELS) for label in estimators)
     if not labels or len(set(labels)) != len(labels):
-        raise ValueError(f"estimators must be distinct labels from {BASE_ESTIMATORS}, got {estimators!r}")
+        raise ValueError(f"estimators must be distinct labels from {_POSITION_LABELS}, got {estimators!r}")
     return labels
 
 
@@ -155,19 +164,128 @@ def _products(label: str, component: str, factors: FactorTable, shared: bool) ->
     return {key: value for key, value in out.items() if abs(value) > 1e-15}
 
 
+def _joint_products(component: str, factors: FactorTable, shared: bool) -> dict:
+    """{((leg, spin), (leg, spin)): coefficient} of H for the joint estimator (module docstring, "Joint").
+
+    ḡ^GMV = ½ Σ_pq ḡ^pq over the nine ordered pairs of jointly filtered fields. The swapped half of f^qp
+    gives the same products as the direct half of f^pq with the inputs exchanged, so
+    H = ½ [D(a, b) + D(b, a)] (η = 1), D(x, y) = Σ_{p,z,q} [direct terms of f^pq]*: X̄^p of x unweighted times
+    the ladder-weighted C^zq X̄^q of y. For one input that is D(a, a). Legs are (side, field, names, |spin|).
+    """
+    sides = ((0, 0),) if shared else ((0, 1), (1, 0))
+    scale = 1.0 if shared else 0.5
+    out: dict = {}
+    for side_a, side_b in sides:
+        for p in "TEB":
+            for z in "TEB":
+                terms = lensing_operator(p, z, component)
+                for q in "TEB":
+                    name = spectrum_name("cmb", z, q)
+                    if not terms or factors.is_zero(name):
+                        continue
+                    for term in terms:
+                        term = term.conjugate()
+                        s1, s_l, s2 = term.spins
+                        if term.first or term.lensing != ("ladder(0)",):
+                            raise RuntimeError(f"internal error: unexpected factors in the kernel of {p}{z}")
+                        if s_l == -1:
+                            coefficient, spin_a, spin_b = complex(term.coefficient), s1, s2
+                        else:  # −conj(c A B) = conj(c)·A_{−s1} B_{−s2} (see _products)
+                            coefficient, spin_a, spin_b = complex(term.coefficient).conjugate(), -s1, -s2
+                        leg_a = ((side_a, p, (), abs(spin_a)), spin_a)
+                        leg_b = ((side_b, q, tuple(sorted(term.second + (name,))), abs(spin_b)), spin_b)
+                        out[leg_a, leg_b] = out.get((leg_a, leg_b), 0.0) + scale * coefficient
+    return {key: value for key, value in out.items() if abs(value) > 1e-15}
+
+
 def _plan(labels, factors: FactorTable, shared: bool) -> dict:
     """Per estimator: its products (gradient form) and η; checks H^curl = −i H^grad term by term."""
     plan = {}
     for label in labels:
-        gradient = _products(label, "gradient", factors, shared)
-        curl = _products(label, "curl", factors, shared)
+        build = _joint_products if label == JOINT_ESTIMATOR else functools.partial(_products, label)
+        gradient = build("gradient", factors, shared)
+        curl = build("curl", factors, shared)
         if set(gradient) != set(curl) or any(
             abs(curl[k] + 1j * gradient[k]) > 1e-12 * abs(gradient[k]) for k in gradient
         ):
             raise RuntimeError(f"internal error: the curl weights of {label} are not i·sigma times the gradient ones")
-        x, y = ESTIMATOR_FIELDS[label]
-        plan[label] = (gradient, 2 if x == y else 1)
+        if label == JOINT_ESTIMATOR:
+            plan[label] = (gradient, 1)
+        else:
+            x, y = ESTIMATOR_FIELDS[label]
+            plan[label] = (gradient, 2 if x == y else 1)
     return plan
+
+
+def _key_number(value: complex) -> complex:
+    """A coefficient rounded for use in dictionary keys (the plan's coefficients are exact small numbers)."""
+    return complex(round(value.real, 13) + 0.0, round(value.imag, 13) + 0.0)
+
+
+def _normalised(combination: dict) -> tuple[tuple, complex]:
+    """(key, scale) with combination = scale · key; the key's first coefficient is one."""
+    items = sorted(combination.items())
+    scale = items[0][1]
+    return tuple((leg, _key_number(value / scale)) for leg, value in items), scale
+
+
+def _combined_plan(plan: dict, merge: set) -> tuple[list, list]:
+    """Synthesis legs and per-estimator products, merging legs into linear combinations where possible.
+
+    A leg of the engine is (|spin|, ((base leg, weight), …)): one spin-|s| synthesis of Σ weight·base, with
+    base = (side, field, ℓ-weight names) and complex weights (real part → gradient, imaginary → curl
+    coefficients). For estimators in ``merge`` the products H = Σ c A B are regrouped: per (A kind, B kind)
+    block (side, |spin|, conjugation of each leg), rows A_i with proportional B combinations share one
+    combined A leg, and each distinct B combination is one combined B leg. That turns the joint estimator's
+    per-field legs into T̄, P̄ = Ē + iB̄ and the ladder-weighted Wiener-filtered T and P (5 syntheses for one
+    input). Other estimators keep one base leg per synthesis.
+
+    Returns (legs sorted by spin, products: per estimator a list of (leg a, conj a, leg b, conj b, c)).
+    """
+    legs: dict = {}
+    per_label = []
+
+    def leg_index(spin, combination: dict, conj: bool) -> tuple[int, complex]:
+        # Σ w_i conj(L_i) = conj(Σ conj(w_i) L_i): synthesise the conjugated weights, conjugate the scale back
+        synth = {leg: (np.conj(value) if conj else value) for leg, value in combination.items()}
+        key, scale = _normalised(synth)
+        index = legs.setdefault((spin, key), len(legs))
+        return index, (np.conj(scale) if conj else scale)
+
+    for label, (products, _eta) in plan.items():
+        items = []
+        # a leg at spin −s is (−1)^s conj(leg at +s)
+        signed = []
+        for ((leg_a, spin_a), (leg_b, spin_b)), coefficient in products.items():
+            conj_a, conj_b = spin_a < 0, spin_b < 0
+            sign = (-1) ** (abs(spin_a) * conj_a + abs(spin_b) * conj_b)
+            signed.append((leg_a, conj_a, leg_b, conj_b, complex(sign * coefficient)))
+        if label not in merge:
+            for leg_a, conj_a, leg_b, conj_b, coefficient in signed:
+                ia, sa = leg_index(leg_a[3], {leg_a[:3]: 1.0}, conj_a)
+                ib, sb = leg_index(leg_b[3], {leg_b[:3]: 1.0}, conj_b)
+                items.append((ia, conj_a, ib, conj_b, coefficient * sa * sb))
+            per_label.append(items)
+            continue
+        blocks: dict = {}
+        for leg_a, conj_a, leg_b, conj_b, coefficient in signed:
+            kind = (leg_a[0], leg_a[3], conj_a, leg_b[0], leg_b[3], conj_b)
+            row = blocks.setdefault(kind, {}).setdefault(leg_a[:3], {})
+            row[leg_b[:3]] = row.get(leg_b[:3], 0.0) + coefficient
+        for (_sa, spin_a, conj_a, _sb, spin_b, conj_b), rows in blocks.items():
+            grouped: dict = {}
+            for base_a, combination in rows.items():
+                key, scale = _normalised(combination)  # row = scale · B_key
+                grouped.setdefault(key, {})[base_a] = scale
+            for key, a_combination in grouped.items():
+                ia, scale_a = leg_index(spin_a, a_combination, conj_a)
+                ib, scale_b = leg_index(spin_b, dict(key), conj_b)
+                items.append((ia, conj_a, ib, conj_b, scale_a * scale_b))
+        per_label.append(items)
+    order = sorted(legs, key=lambda item: (item[0], item[1]))
+    position = {legs[item]: k for k, item in enumerate(order)}
+    products = [[(position[a], ca, position[b], cb, c) for a, ca, b, cb, c in items] for items in per_label]
+    return order, products
 
 
 # ------------------------------------------------------------------------------------------- result
@@ -210,7 +328,7 @@ class Reconstruction:
     curl_alm : complex ndarray
         Ω̂_LM from the curl weights (a null test: no curl signal is expected from lensing).
     estimator : str
-        "TT", "TE", "EE", "TB", "EB" or "MV".
+        "TT", "TE", "EE", "TB", "EB", "MV" or "GMV".
     lmax_L : int
     n0 : mapping component → ndarray
         Analytic Gaussian N0 of ``phi_alm`` ("gradient") and ``curl_alm`` ("curl"), C_L units, NaN below L = 2.
@@ -301,26 +419,57 @@ def _spin_groups(legs) -> list[tuple[int, int, int]]:
     """(spin, first row, count) of the runs of equal |spin| in the sorted leg list (one ducc0 call each)."""
     groups = []
     for row, leg in enumerate(legs):
-        if groups and groups[-1][0] == leg[3]:
+        if groups and groups[-1][0] == leg[0]:
             spin, first, count = groups[-1]
             groups[-1] = (spin, first, count + 1)
         else:
-            groups.append((leg[3], row, 1))
+            groups.append((leg[0], row, 1))
     return groups
 
 
-def _leg_coefficients(legs, fields, factors: FactorTable, lmax: int) -> np.ndarray:
-    """−u(ℓ) X̄_ℓm for every leg (rows, legs sorted by spin), then zero rows for the curl parts of the
-    batched "STANDARD" spin-s syntheses (as many as the largest such batch)."""
+def _has_curl(leg) -> bool:
+    return any(weight.imag != 0 for _, weight in leg[1])
+
+
+def _synthesis_layout(legs) -> dict:
+    """Per spin group: (mode, first row of its curl rows or None). Groups with a curl part get their own
+    curl rows (after the gradient rows); the others share zero rows (as many as the largest such group)."""
+    layout = {}
+    row = len(legs)
+    for spin, _first, count in _spin_groups(legs):
+        curl = any(_has_curl(leg) for leg in legs if leg[0] == spin)
+        if spin == 0:
+            if curl:
+                raise RuntimeError("internal error: a spin-0 leg with a complex combination")
+            layout[spin] = ("", None)
+        elif curl:
+            layout[spin] = ("STANDARD", row)
+            row += count
+        else:
+            layout[spin] = (_SYNTHESIS_MODE[spin], None)
+    zeros = max([count for spin, _, count in _spin_groups(legs) if layout[spin] == ("STANDARD", None)], default=0)
+    layout["zero_row"] = row
+    layout["rows"] = row + zeros
+    return layout
+
+
+def _leg_coefficients(legs, fields, factors: FactorTable, lmax: int) -> tuple[np.ndarray, dict]:
+    """Gradient rows −Σ Re(w) u(ℓ) X̄_ℓm for every leg (legs sorted by spin), curl rows −Σ Im(w) u X̄ for the
+    spin groups that have any, then zero rows for the curl parts of the other batched "STANDARD" syntheses."""
     ell = ell_of_alm(lmax)
-    zeros = max(
-        [count for spin, _, count in _spin_groups(legs) if spin and _SYNTHESIS_MODE[spin] == "STANDARD"], default=0
-    )
-    out = np.zeros((len(legs) + zeros, nalm(lmax)), dtype=np.complex128)
-    for row, (side, name, weights, _spin) in enumerate(legs):
-        u = factors.product(weights, lmax)
-        np.multiply(fields[side].alm[_FIELD_INDEX[name]], -u[ell], out=out[row])
-    return out
+    layout = _synthesis_layout(legs)
+    out = np.zeros((layout["rows"], nalm(lmax)), dtype=np.complex128)
+    for spin, first, count in _spin_groups(legs):
+        curl_row = layout[spin][1]
+        for k in range(count):
+            for (side, name, weights), weight in legs[first + k][1]:
+                u = factors.product(weights, lmax)[ell]
+                alm = fields[side].alm[_FIELD_INDEX[name]]
+                if weight.real:
+                    out[first + k] -= (weight.real * u) * alm
+                if weight.imag:
+                    out[curl_row + k] -= (weight.imag * u) * alm
+    return out, layout
 
 
 class _Workspace:
@@ -360,8 +509,8 @@ class _Workspace:
         return self.products[:, :npix, :].transpose(0, 2, 1)
 
 
-def _synthesise_legs(legs, coefficients, lmax, geometry, npix, nthreads, workspace: _Workspace) -> None:
-    """Leg maps on the rings of ``geometry`` into the workspace: Σ u X̄ ₛY (real for spin 0).
+def _synthesise_legs(legs, coefficients, layout, lmax, geometry, npix, nthreads, workspace: _Workspace) -> None:
+    """Leg maps on the rings of ``geometry`` into the workspace: Σ w u X̄ ₛY (real for spin 0).
 
     Legs of one spin are synthesised in one batched ducc0 call (one set-up of the recursions per call).
     """
@@ -369,7 +518,6 @@ def _synthesise_legs(legs, coefficients, lmax, geometry, npix, nthreads, workspa
     from numpy.lib.stride_tricks import as_strided
 
     row_bytes, item_bytes = coefficients.strides
-    zero_row = len(legs)
     for spin, first, count in workspace.groups:
         rows = coefficients[first : first + count]
         out = workspace.leg_output(spin, npix)
@@ -377,14 +525,15 @@ def _synthesise_legs(legs, coefficients, lmax, geometry, npix, nthreads, workspa
             ducc0.sht.synthesis(alm=rows[:, None, :], lmax=lmax, spin=0, nthreads=nthreads, map=out, **geometry)
             out *= -1.0  # the stored coefficients are −u X̄
             continue
-        mode = _SYNTHESIS_MODE[spin]
+        mode, curl_row = layout[spin]
         if mode == "GRAD_ONLY":
             alm = rows[:, None, :]
-        else:  # each gradient row with its own zero row as curl, as one (count, 2, nalm) array without a copy
+        else:  # each gradient row with its curl row (own or zero), as one (count, 2, nalm) array without a copy
+            curl_row = layout["zero_row"] if curl_row is None else curl_row
             alm = as_strided(
                 coefficients[first],
                 shape=(count, 2, coefficients.shape[1]),
-                strides=(row_bytes, (zero_row - first) * row_bytes, item_bytes),
+                strides=(row_bytes, (curl_row - first) * row_bytes, item_bytes),
             )
         ducc0.sht.synthesis(alm=alm, lmax=lmax, spin=spin, nthreads=nthreads, map=out, mode=mode, **geometry)
 
@@ -504,19 +653,8 @@ def quadratic_estimates(
     plan = _plan(labels, factors, shared)
     fields = (first, second)
 
-    legs = sorted(
-        {leg for products, _ in plan.values() for key in products for leg, _ in key}, key=lambda leg: (leg[3], leg)
-    )  # by |spin|: each spin is one batched synthesis
-    index = {leg: i for i, leg in enumerate(legs)}
-    products = []
-    for label in labels:
-        items = []
-        for ((leg_a, spin_a), (leg_b, spin_b)), coefficient in plan[label][0].items():
-            # a leg at spin −s is (−1)^s conj(leg at +s)
-            conj_a, conj_b = spin_a < 0, spin_b < 0
-            sign = (-1) ** (abs(spin_a) * conj_a + abs(spin_b) * conj_b)
-            items.append((index[leg_a], conj_a, index[leg_b], conj_b, complex(sign * coefficient)))
-        products.append(items)
+    # legs sorted by |spin|: each spin is one batched synthesis
+    legs, products = _combined_plan(plan, {JOINT_ESTIMATOR})
 
     grid = gl_grid_for_band_limits(lmax_L, 2 * lmax)
     theta = ducc0.misc.GL_thetas(grid.ntheta)
@@ -525,10 +663,10 @@ def quadratic_estimates(
         workspace_bytes = _WORKSPACE_BYTES
     else:
         workspace_bytes = int(as_float(workspace_mb, "workspace_mb", minimum=0.0, strict_minimum=True) * 2**20)
-    n_complex = sum(1 for leg in legs if leg[3] > 0) + len(labels)
+    n_complex = sum(1 for leg in legs if leg[0] > 0) + len(labels)
     ring_bytes = grid.nphi * (16 * n_complex + 8 * (len(legs) + len(labels) - n_complex))
     blocks = _ring_blocks(grid.ntheta, max(2, workspace_bytes // max(ring_bytes, 1)))
-    coefficients = _leg_coefficients(legs, fields, factors, lmax)
+    coefficients, layout = _leg_coefficients(legs, fields, factors, lmax)
     workspace = _Workspace(legs, len(labels), max(rings.size for rings in blocks) * grid.nphi, lmax_L)
     result = np.zeros((len(labels), 2, nalm(lmax_L)), dtype=np.complex128)
     pool = concurrent.futures.ThreadPoolExecutor(nthreads) if nthreads > 1 else None
@@ -553,7 +691,7 @@ def quadratic_estimates(
                 "phi0": np.zeros(rings.size),
                 "ringstart": (np.arange(rings.size) * grid.nphi).astype(np.uintp),
             }
-            _synthesise_legs(legs, coefficients, lmax, geometry, npix, nthreads, workspace)
+            _synthesise_legs(legs, coefficients, layout, lmax, geometry, npix, nthreads, workspace)
             seconds["legs"] += time.perf_counter() - clock
             clock = time.perf_counter()
             leg_maps, h = workspace.leg_maps(npix), workspace.product_maps(npix)
@@ -590,7 +728,7 @@ def quadratic_estimates(
         curl[label] = _readonly(result[k, 1] * (root / eta))
     spins = {}
     for leg in legs:
-        spins[str(leg[3])] = spins.get(str(leg[3]), 0) + 1
+        spins[str(leg[0])] = spins.get(str(leg[0]), 0) + 1
     settings = {
         "lmax": lmax,
         "lmax_L": lmax_L,
@@ -630,12 +768,30 @@ def _check_mean_field(mean_field, estimator: str, lmax_L: int):
     return mean_field
 
 
+def _check_filter_kind(estimator: str, *inputs) -> None:
+    """The joint estimator needs jointly filtered fields, the others per-field filtered ones (their
+    normalisations assume it); a mismatch would silently give a wrongly normalised estimate."""
+    for item in inputs:
+        if item is None or not isinstance(item, FilteredFields):
+            continue
+        if estimator == JOINT_ESTIMATOR and not item.joint:
+            raise ValueError(
+                f"estimator {JOINT_ESTIMATOR} needs jointly filtered fields (FilteredFields.joint=True, e.g. "
+                "IsotropicFilter(..., joint=True)); these were filtered field by field"
+            )
+        if estimator != JOINT_ESTIMATOR and item.joint:
+            raise ValueError(
+                f"estimator {estimator} needs fields filtered field by field (joint=False); these were filtered "
+                f"jointly, which only the {JOINT_ESTIMATOR} estimator is normalised for"
+            )
+
+
 def reconstruct_filtered(
     first: FilteredFields,
     experiment,
     second: FilteredFields | None = None,
     spectra: Spectra | None = None,
-    estimator: str = "MV",
+    estimator: str | None = None,
     lmax_L: int | None = None,
     mean_field: MeanField | None = None,
     lensed_weights: bool = True,
@@ -655,7 +811,9 @@ def reconstruct_filtered(
         Input b (second field of the label); default ``first``.
     spectra : Spectra, optional
         Theory spectra (weights, total spectra, response); default the fiducial cosmology.
-    estimator : {'TT', 'TE', 'EE', 'TB', 'EB', 'MV'}
+    estimator : {'TT', 'TE', 'EE', 'TB', 'EB', 'MV', 'GMV'}, optional
+        "GMV" needs jointly filtered fields (``joint=True``), the others per-field filtered ones. Default:
+        "GMV" for jointly filtered fields, "MV" otherwise.
     lmax_L : int, optional
         Highest L (default and maximum: the fields' lmax).
     mean_field : MeanField, optional
@@ -675,12 +833,14 @@ def reconstruct_filtered(
     ----------
     Okamoto & Hu 2003, PRD 67, 083002, §III (normalisation and minimum-variance combination).
     """
+    if not isinstance(first, FilteredFields):
+        raise TypeError(f"first must be FilteredFields, got {type(first).__name__}")
+    if estimator is None:
+        estimator = JOINT_ESTIMATOR if first.joint else "MV"
     estimator = _check_label(estimator)
     experiment = load_experiment(experiment)
     if not isinstance(experiment, Experiment):
         raise TypeError(f"experiment must be an Experiment, got {type(experiment).__name__}")
-    if not isinstance(first, FilteredFields):
-        raise TypeError(f"first must be FilteredFields, got {type(first).__name__}")
     largest = max(experiment.ell_max_temperature, experiment.ell_max_polarization)
     if largest > first.lmax:
         raise ValueError(
@@ -698,11 +858,12 @@ def reconstruct_filtered(
     mean_field = _check_mean_field(mean_field, estimator, lmax_L)
     spectra = fiducial_spectra() if spectra is None else spectra
     labels = BASE_ESTIMATORS if estimator == "MV" else (estimator,)
+    _check_filter_kind(estimator, first, second)
     if noise is None:
         noise = reconstruction_noise(
             experiment,
             spectra,
-            estimators=ESTIMATORS if estimator == "MV" else labels,
+            estimators=BASE_ESTIMATORS + ("MV",) if estimator == "MV" else labels,
             lmax_L=lmax_L,
             lensed_weights=lensed_weights,
             nthreads=nthreads,
@@ -779,7 +940,7 @@ def reconstruct(
     maps,
     experiment,
     spectra: Spectra | None = None,
-    estimator: str = "MV",
+    estimator: str = "GMV",
     lmax_L: int | None = None,
     mask=None,
     mean_field: MeanField | None = None,
@@ -801,8 +962,11 @@ def reconstruct(
         Noise, beam and multipole cuts (or a shipped name / TOML path).
     spectra : Spectra, optional
         Theory spectra (default: the fiducial cosmology).
-    estimator : {'TT', 'TE', 'EE', 'TB', 'EB', 'MV'}
-        Default "MV" (all five, minimum-variance weights with the full N0 covariance).
+    estimator : {'TT', 'TE', 'EE', 'TB', 'EB', 'MV', 'GMV'}
+        "GMV" (the joint estimator: T, E, B filtered together with the TE correlation, one spin-1 estimate;
+        Maniyar et al. 2021, PRD 103, 083524) or "MV" (the five pair estimators combined with their full N0
+        covariance) or one pair. Default "GMV": unbiased on full-sky simulations and its N0 is at most the
+        MV's at every L, for one spin-1 analysis instead of five.
     lmax_L : int, optional
         Highest lensing multipole (default and maximum: the CMB lmax).
     mask : array, optional
@@ -847,7 +1011,9 @@ def reconstruct(
     estimator = _check_label(estimator)
     experiment = load_experiment(experiment)
     if field_filter is None:
-        field_filter = IsotropicFilter(experiment, spectra, lmax=lmax, mask=mask, nthreads=nthreads)
+        field_filter = IsotropicFilter(
+            experiment, spectra, lmax=lmax, mask=mask, nthreads=nthreads, joint=estimator == JOINT_ESTIMATOR
+        )
         experiment = field_filter.experiment
     else:
         if mask is not None or lmax is not None:

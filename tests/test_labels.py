@@ -46,7 +46,9 @@ def test_rules():
     assert estimator_pairs("MV") == PAIR_ESTIMATORS
     assert estimator_fields("TE") == ("T", "E") and estimator_fields("MV") == ("T", "E", "B")
     # B modes enter TB, EB and any combination holding them; TT, TE, EE read no B
-    assert [label for label in ESTIMATORS if uses_b_modes(label)] == ["TB", "EB", "MV"]
+    assert [label for label in ESTIMATORS if uses_b_modes(label)] == ["TB", "EB", "MV", "GMV"]
+    # the joint estimator filters T, E, B together (Maniyar et al. 2021, PRD 103, 083524)
+    assert estimator_fields("GMV") == ("T", "E", "B")
     assert [label for label in PAIR_ESTIMATORS if is_symmetric(label)] == ["TT", "EE"]
     with pytest.raises(ValueError, match="unknown estimator 'MV'"):
         is_symmetric("MV")  # only pair estimators have legs

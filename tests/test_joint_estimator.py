@@ -377,3 +377,36 @@ def test_gmv_cross_with_input_over_input_power_is_one_at_l_2048():
     sky = lensrec.simulate_sky(experiment, nside=1024, lmax=2048, lmax_margin=500, seed=2026, noise=False, nthreads=2)
     edges = np.array([20, 50, 100, 150, 200, 300, 400, 550, 700, 850, 1000])
     _assert_unbiased(_cross_ratio_checks(sky, experiment, 2048, 1000, edges, 2), edges)
+
+
+def test_estimators_refuse_fields_filtered_the_other_way(tiny):
+    lmax, cl, spectra, a, _b = tiny
+    experiment = lensrec.Experiment(
+        name="tiny", noise_temperature=1.0, beam_fwhm=1.0, ell_min=2, ell_max_temperature=lmax,
+        ell_max_polarization=lmax,
+    )  # fmt: skip
+    joint, diagonal = FilteredFields(a, lmax, cl, joint=True), FilteredFields(a, lmax, cl)
+    with pytest.raises(ValueError, match="jointly filtered"):
+        reconstruct_filtered(diagonal, experiment, spectra=spectra, estimator="GMV")
+    with pytest.raises(ValueError, match="field by field"):
+        reconstruct_filtered(joint, experiment, spectra=spectra, estimator="MV")
+    # the default follows the filter: GMV for joint fields, MV otherwise
+    assert reconstruct_filtered(joint, experiment, spectra=spectra, lmax_L=6).estimator == "GMV"
+    assert reconstruct_filtered(diagonal, experiment, spectra=spectra, lmax_L=6).estimator == "MV"
+
+
+def test_forecast_document_reuses_a_given_noise_object(fiducial):
+    from lensrec.commands.forecast import forecast_document
+
+    experiment = lensrec.Experiment(
+        name="reuse", noise_temperature=5.0, beam_fwhm=5.0, ell_max_temperature=200, ell_max_polarization=200
+    )
+    noise = reconstruction_noise(experiment, fiducial, estimators=("EB", "GMV"), lmax_L=150, nthreads=1)
+    document, result = forecast_document(experiment, noise=noise)
+    assert result is noise and list(document["n0"]) == ["EB", "GMV"]
+    fresh, _ = forecast_document(experiment, estimators="EB,GMV", lmax_L=150, spectra=fiducial)
+    assert np.allclose(document["n0"]["GMV"]["gradient"][2:], fresh["n0"]["GMV"]["gradient"][2:], rtol=1e-12)
+    with pytest.raises(TypeError, match="ReconstructionNoise"):
+        forecast_document(experiment, noise={"n0": {}})
+    with pytest.raises(ValueError, match="lmax_L"):
+        forecast_document(experiment, noise=noise, lmax_L=100)

@@ -59,23 +59,38 @@ def add_arguments(parser) -> None:
 
 
 def forecast_document(
-    experiment, estimators=ESTIMATORS, lmax_L=None, lensed_weights=True, nthreads=None, spectra=None
+    experiment,
+    estimators=ESTIMATORS,
+    lmax_L=None,
+    lensed_weights=True,
+    nthreads=None,
+    spectra=None,
+    noise=None,
 ) -> tuple[dict, object]:
     """Compute N0 and S/N and return (the JSON document without provenance, the ReconstructionNoise).
 
     Parameters are those of :func:`lensrec.reconstruction_noise`; the document holds "L", "n0" (NaN below
-    L = 2, written as null) and "snr".
+    L = 2, written as null) and "snr". Pass ``noise`` (a :class:`lensrec.ReconstructionNoise` already
+    computed for ``experiment``, e.g. ``Reconstruction.noise``) to write its N0 without recomputing it; the
+    document then lists the estimators it holds, and ``lmax_L``, if given, must be its lmax_L.
     """
-    from ..estimator_noise import reconstruction_noise
+    from ..estimator_noise import ReconstructionNoise, reconstruction_noise
 
-    result = reconstruction_noise(
-        experiment,
-        spectra=spectra,
-        estimators=estimators,
-        lmax_L=lmax_L,
-        lensed_weights=lensed_weights,
-        nthreads=nthreads,
-    )
+    if noise is None:
+        result = reconstruction_noise(
+            experiment,
+            spectra=spectra,
+            estimators=estimators,
+            lmax_L=lmax_L,
+            lensed_weights=lensed_weights,
+            nthreads=nthreads,
+        )
+    else:
+        if not isinstance(noise, ReconstructionNoise):
+            raise TypeError(f"noise must be a ReconstructionNoise (or None), got {type(noise).__name__}")
+        if lmax_L is not None and int(lmax_L) != int(noise.L[-1]):
+            raise ValueError(f"lmax_L={lmax_L} differs from the lmax_L={int(noise.L[-1])} of the given noise")
+        result = noise
     document = {
         "L": result.L.astype(int).tolist(),
         "n0": {

@@ -9,7 +9,7 @@ from ..labels import ESTIMATORS, parse_estimator
 
 HELP = "reconstruct the lensing potential phi (and the curl null test) from T, Q, U maps with a quadratic estimator"
 EXAMPLES = """examples:
-  lensrec reconstruct --experiment deep_highland --maps sky/maps.fits --estimator MV --lmax-L 2000 --out rec/
+  lensrec reconstruct --experiment deep_highland --maps sky/maps.fits --estimator GMV --lmax-L 2000 --out rec/
   lensrec reconstruct --experiment my_survey.toml --maps sky/maps.fits --estimator EB --lmax 3000 \\
       --lmax-L 2000 --mask mask.fits --out rec_eb/ --force
 
@@ -31,7 +31,11 @@ def add_arguments(parser) -> None:
     parser.add_argument(
         "--maps", required=True, help="HEALPix FITS file with T, Q, U in uK (e.g. from 'lensrec simulate')"
     )
-    parser.add_argument("--estimator", default="MV", help=f"one of {', '.join(ESTIMATORS)} (default: %(default)s)")
+    parser.add_argument(
+        "--estimator",
+        default="GMV",
+        help=f"one of {', '.join(ESTIMATORS)} (default: %(default)s, the joint estimator)",
+    )
     parser.add_argument(
         "--lmax-L",
         dest="lmax_L",
@@ -72,15 +76,9 @@ def _column_count(path: str) -> int:
 
 def n0_document(result) -> dict:
     """The N0 document of a :class:`lensrec.Reconstruction`, in the layout of ``lensrec forecast``'s JSON."""
-    noise = result.noise
-    return {
-        "L": noise.L.astype(int).tolist(),
-        "n0": {
-            label: {component: values.tolist() for component, values in parts.items()}
-            for label, parts in noise.n0.items()
-        },
-        "snr": noise.lensing_snr(),
-    }
+    from .forecast import forecast_document
+
+    return forecast_document(result.noise.experiment, noise=result.noise)[0]
 
 
 def run(args) -> int:

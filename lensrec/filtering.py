@@ -23,10 +23,18 @@ the signal after 3 steps, measured at nside 512); towards 3·nside it degrades q
 near ℓ_max = 2.9·nside, which lowered the measured EB response by 2% in a test at nside 512, ℓ_max 1500),
 so keep ℓ_max ≤ 2·nside for lensing reconstruction.
 
+Joint filter (``IsotropicFilter(..., joint=True)``): the same analysis, then X̄_ℓm = (C_ℓ⁻¹ X_ℓm) / b_ℓ with
+C_ℓ the 3×3 total (T, E, B) covariance (TE correlation kept; :func:`joint_inverse_spectra`), so Ē draws on
+T and T̄ on E. These are the inputs of the joint "GMV" estimator (Maniyar et al. 2021, PRD 103, 083524),
+which is normalised for exactly this filter; :attr:`FilteredFields.joint` records which filter was used and
+the estimators refuse fields filtered the other way. This is the seam a conjugate-gradient filter of the
+full pixel covariance plugs into: it too returns C⁻¹-filtered T̄, Ē, B̄ with ``joint=True``.
+
 Wiener filter: :meth:`FilteredFields.wiener` returns C^XX · X̄ (lensed C^XX), which for this diagonal
 filter is the Wiener-filtered field C^XX/(C^XX + N^XX) · X of each field separately (the TE correlation is
 not used: e.g. the Wiener-filtered E does not borrow from T). That is the E-mode template delensing
-needs, and the "gradient" leg of the estimators.
+needs, and the "gradient" leg of the estimators. For jointly filtered fields it is Σ_Y C^XY Ȳ, the joint
+Wiener filter C C_tot⁻¹ X.
 
 Masks
 =====

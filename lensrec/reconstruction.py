@@ -50,6 +50,18 @@ second input: TE[a, b] uses T̄ of a and Ē of b; TB[a, b] T̄ of a and B̄ of b
 TT and EE are symmetric, ḡ[a, b] = ḡ[b, a]. Mixed pairs (data × simulation, simulation i × j) are what
 realization-dependent N0 and N1 need (Namikawa, Hanson & Takahashi 2013, MNRAS 431, 609).
 
+Joint
+=====
+The joint estimator "GMV" (Maniyar, Ali-Haïmoud, Carron, Lewis & Madhavacheril 2021, PRD 103, 083524;
+weights in :func:`lensrec.estimator_noise.joint_estimator_parts`) is ½ Σ_pq ḡ^pq over the nine ordered pairs
+of *jointly* filtered fields (X̄ = C_tot⁻¹ X). Summed over all pairs, the swapped half of f^qp repeats the
+direct half of f^pq with the inputs exchanged, so H = ½ [D(a, b) + D(b, a)] with
+D(x, y) = Σ_{p,z} X̄^p_x · (ladder-weighted W^z_y at the partner spin), W^z = Σ_q C^zq X̄^q the Wiener-filtered
+field z. Regrouping these products (one combined leg per block of proportional rows) leaves five legs for
+one input: T̄ (spin 0), P̄ = Ē + iB̄ (spin 2), and √(ℓ(ℓ+1)) W^T (spin 1), and W^E + iW^B at spins 1 and 3
+with the spin-2 ladder weights: 5 syntheses + 1 spin-1 analysis (10 + 1 for a mixed pair), against 11 + 5
+for MV. It is checked against brute-force 3j sums of its definition in tests/test_joint_estimator.py.
+
 Normalisation: φ̂_LM = A_L ḡ_LM with A_L = 1/R_L from :func:`lensrec.reconstruction_noise` (full sky,
 lensed weights by default); the MV estimate is Σ_i w_i(L) φ̂^i_LM with the MV weights of the N0
 covariance. On a masked sky the same full-sky normalisation is used, so φ̂ ≈ w²φ locally; correct

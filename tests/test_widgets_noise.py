@@ -34,8 +34,8 @@ def test_plotted_n0_equals_the_library_result(app):
     section = app["noise"]
     expected = lensrec.reconstruction_noise(SMALL, nthreads=2)
     plotted = section.plotted()
-    assert set(plotted) == {"signal", "TT", "TE", "EE", "TB", "EB", "MV"}
-    for label in ("TT", "EE", "EB", "MV"):
+    assert set(plotted) == {"signal", "TT", "TE", "EE", "TB", "EB", "MV", "GMV"}
+    for label in ("TT", "EE", "EB", "MV", "GMV"):
         x, y = plotted[label]
         np.testing.assert_array_equal(x, np.arange(2, 1001))
         # same computation, same inputs: equal to rounding of the units conversion
@@ -85,7 +85,7 @@ def test_experiment_change_recomputes_n0_live(app):
 
 def test_estimator_choice_and_lmax_L(app):
     section = app["noise"]
-    for label in ("TT", "TE", "TB"):
+    for label in ("TT", "TE", "TB", "GMV"):
         section.estimator_boxes[label].value = False
     section.lmax_L.value = 600
     assert section.wait(30)

@@ -62,6 +62,7 @@ ESTIMATOR_COLORS = {
     "TB": "#ca6f1e",
     "EB": "#b03a2e",
     "MV": "#17202a",
+    "GMV": "#7f8c8d",
 }
 
 

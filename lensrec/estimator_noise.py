@@ -32,6 +32,7 @@ from .estimator_weights import (
     spectrum_name,
 )
 from .experiment import Experiment, load_experiment
+from .filtering import joint_inverse_spectra
 from .labels import (
     COMBINED_ESTIMATORS,
     COMPONENTS,
@@ -42,7 +43,6 @@ from .labels import (
     parse_components,
     parse_estimators,
 )
-from .filtering import joint_inverse_spectra
 from .spectra import Spectra, fiducial_spectra
 
 __all__ = [

@@ -94,6 +94,7 @@ from .estimator_weights import (
 from .experiment import Experiment, load_experiment
 from .filtering import FieldFilter, FilteredFields, IsotropicFilter
 from .harmonics import ell_of_alm, gl_grid_for_band_limits, nalm
+from .labels import ESTIMATORS, PAIR_ESTIMATORS
 from .spectra import Spectra, fiducial_spectra
 
 __all__ = [
@@ -107,8 +108,7 @@ __all__ = [
     "mean_field",
 ]
 
-ESTIMATORS = ("TT", "TE", "EE", "TB", "EB", "MV", "GMV")
-BASE_ESTIMATORS = ("TT", "TE", "EE", "TB", "EB")
+BASE_ESTIMATORS = PAIR_ESTIMATORS
 # labels quadratic_estimates computes directly (MV is a weighted sum of the five pair estimates)
 _POSITION_LABELS = BASE_ESTIMATORS + (JOINT_ESTIMATOR,)
 _FIELD_INDEX = {"T": 0, "E": 1, "B": 2}

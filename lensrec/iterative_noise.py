@@ -113,6 +113,37 @@ class IterativeNoise:
         with np.errstate(invalid="ignore", divide="ignore"):
             return self.quadratic_n0[label][component] / self.n0[label][component]
 
+    @property
+    def delensing_estimator(self) -> str:
+        """The estimator whose iterative noise delenses in :meth:`delensing_forecast`: MV if computed, else EB."""
+        return "MV" if "MV" in self.n0 else next(iter(self.n0))
+
+    def delensing_forecast(self, label=None, spectra=None, **options):
+        """:func:`lensrec.delensing_forecast` with the converged gradient N0 of ``label``.
+
+        Parameters
+        ----------
+        label : str, optional
+            One of the computed estimators (default :attr:`delensing_estimator`).
+        spectra : Spectra, optional
+            The spectra of the forecast (default the embedded fiducial cosmology).
+        **options
+            Passed on (lmax, ell_min_b, r, template_e_noise, ell_margin, nthreads, …).
+
+        Returns
+        -------
+        DelensingForecast
+            Residual BB, A_lens^res and σ(r) with the iterative reconstruction. The delensing-bias caveat of
+            :func:`lensrec.delensing_forecast` applies with more force: the iterated EB estimate reuses the
+            same B modes at every step.
+        """
+        from .tensor_forecast import delensing_forecast
+
+        label = self.delensing_estimator if label is None else label
+        if label not in self.n0:
+            raise ValueError(f"estimator {label!r} was not computed; computed: {', '.join(self.n0)}")
+        return delensing_forecast(self.experiment, spectra=spectra, n0=self.n0[label]["gradient"], **options)
+
     def to_dict(self, include_history: bool = True) -> dict:
         """Plain lists and dicts for JSON (NaN stays NaN; ``lensrec.io.write_json`` writes null)."""
         document = {

@@ -118,3 +118,43 @@ def test_forecast_with_a_tracer_reports_each_input_and_their_combination(tmp_pat
     assert "combined" in capsys.readouterr().out
     assert main(args + ["--tracer", str(tmp_path / "none.toml"), "--out", str(out), "--force"]) == 2
     assert "not found; shipped tracers" in capsys.readouterr().err
+
+
+def deep_experiment(tmp_path):
+    path = tmp_path / "deep.toml"
+    lensrec.Experiment(
+        name="Deep Test Patch",
+        noise_temperature=0.7,
+        noise_polarization=1.0,
+        beam_fwhm=1.0,
+        ell_max_temperature=1500,
+        ell_max_polarization=1500,
+    ).to_toml(path)
+    return str(path)
+
+
+def test_forecast_iterative_adds_the_converged_noise_and_its_delensing(tmp_path, capsys):
+    # At 1 µK-arcmin the iterated EB noise lies below the quadratic one and delensing with it leaves less
+    # lensing B (Smith et al. 2012, JCAP 06, 014; Seljak & Hirata 2004, PRD 69, 043005).
+    out = tmp_path / "fc.json"
+    args = ["forecast", "--experiment", deep_experiment(tmp_path), "--lmax-L", "500", "--estimators", "EB,MV"]
+    assert main(args + ["--iterative", "--delensing", "--out", str(out), "--nthreads", "2"]) == 0
+    document = json.loads(out.read_text())
+    block = document["iterative"]
+    assert set(block["n0"]) == {"EB", "MV"}
+    for label, parts in block["n0"].items():
+        assert set(parts) == set(document["n0"][label])  # same layout as the top-level n0
+        assert len(parts["gradient"]) == len(document["L"]) and parts["gradient"][:2] == [None, None]
+        iterative, quadratic = np.array(parts["gradient"][2:]), np.array(document["n0"][label]["gradient"][2:])
+        assert np.all(iterative < quadratic)
+        steps = block["lensing_iterations"][label]
+        assert steps >= 1 and len(block["n0_per_iteration"][label]) == steps + 1
+        assert block["n0_per_iteration"][label][0]["gradient"][2:] == document["n0"][label]["gradient"][2:]
+    assert block["n0_estimator"] == "MV"
+    assert 0.0 < block["alens_residual"] < document["delensing"]["alens_residual"] < 1.0
+    assert block["sigma_r_delensed"] < document["delensing"]["sigma_r_delensed"]
+    assert len(block["residual_bb"]) == len(document["delensing"]["residual_bb"])
+    assert "iterative estimator" in capsys.readouterr().out
+    # no estimator with an iterative form: a clear refusal naming the ones that have one
+    assert main(args[:-1] + ["TT,EE", "--iterative", "--out", str(out), "--force"]) == 2
+    assert "--iterative forecasts EB, MV" in capsys.readouterr().err

@@ -19,7 +19,11 @@ null below L = 2; snr is the Fisher S/N of C_L^phiphi over 2 <= L <= lmax_L with
 delensing, from lensrec.delensing_forecast with the MV gradient N0 (see its notes on the delensing bias).
 --tracer FILE (a tracer TOML or a shipped name such as diffuse_glow) adds "tracers": the correlation rho_L of
 each tracer, of the internal MV reconstruction and of their optimal combination (Sherwin & Schmittfull 2015),
-and the delensing forecast (A_lens^res, sigma(r) conditional and marginalized) with each of them."""
+and the delensing forecast (A_lens^res, sigma(r) conditional and marginalized) with each of them.
+--iterative adds "iterative": the converged noise of the iterative estimator (EB and MV among --estimators):
+"n0" in the layout of the top-level "n0", "lensing_iterations" (steps to converge per estimator),
+"n0_per_iteration" (every step, 0 = quadratic), "residual_bb" and "alens_residual" of delensing with it (MV if
+present, else EB), and with --delensing its sigma(r) (lensrec.iterative_reconstruction_noise)."""
 
 TABLE_L = (30, 100, 300, 1000, 2000, 3000)
 
@@ -49,6 +53,11 @@ def add_arguments(parser) -> None:
         "--delensing",
         action="store_true",
         help="also forecast delensing with the MV gradient N0: residual BB, A_lens^res, sigma(r)",
+    )
+    parser.add_argument(
+        "--iterative",
+        action="store_true",
+        help="also forecast the iterative estimator (EB, MV): converged N0, steps, residual BB, A_lens^res",
     )
     parser.add_argument(
         "--tracer",
@@ -166,6 +175,62 @@ def format_tracers(block: dict) -> str:
     return "\n".join(lines)
 
 
+def iterative_block(experiment, estimators, lmax_L=None, delensing=False, nthreads=None, spectra=None):
+    """The iterative forecast and its JSON block (see EXAMPLES) for the iterative ones among ``estimators``.
+
+    Returns (IterativeNoise, dict). Raises ValueError naming the estimators if none has an iterative form.
+    """
+    from ..iterative_noise import iterative_reconstruction_noise
+    from ..labels import ITERATIVE_ESTIMATORS, parse_estimators
+
+    labels = [label for label in parse_estimators(estimators) if label in ITERATIVE_ESTIMATORS]
+    if not labels:
+        raise ValueError(
+            f"--iterative forecasts {', '.join(ITERATIVE_ESTIMATORS)}: include one of them in --estimators "
+            f"(got {estimators!r})"
+        )
+    result = iterative_reconstruction_noise(experiment, spectra, estimators=labels, lmax_L=lmax_L, nthreads=nthreads)
+    forecast = result.delensing_forecast(spectra=spectra, nthreads=nthreads)
+    document = result.to_dict()
+    block = {
+        "n0": document["n0"],
+        "lensing_iterations": document["lensing_iterations"],
+        "changes": document["changes"],
+        "n0_per_iteration": document["n0_per_iteration"],
+        "tolerance": result.settings["tolerance"],
+        "delensed_spectra": result.settings["delensed_spectra"],
+        "n0_estimator": result.delensing_estimator,
+        "residual_bb": forecast.residual_bb.tolist(),
+        "alens_residual": forecast.alens_residual,
+    }
+    if delensing:
+        block["sigma_r_delensed"] = forecast.sigma_r_delensed
+        block["sigma_r_delensed_marginalized"] = forecast.sigma_r_delensed_marginalized
+    block["notes"] = list(forecast.notes)
+    return result, block
+
+
+def format_iterative(result, block: dict) -> str:
+    """Converged iterative N0 against the quadratic one at a few L, steps, and A_lens^res with it."""
+    lmax_L = int(result.L[-1])
+    columns = [L for L in TABLE_L if L <= lmax_L] or [lmax_L]
+    lines = [
+        "iterative estimator (converged; gain = quadratic N0 / iterative N0):",
+        "estimator " + "".join(f"{'gain(L=' + str(L) + ')':>14s}" for L in columns) + f"{'steps':>7s}",
+    ]
+    for label in result.n0:
+        gain = result.gain(label)
+        values = "".join(f"{gain[L]:14.3f}" for L in columns)
+        lines.append(f"{label:9s} {values}{result.lensing_iterations[label]:7d}")
+    line = f"delensing with the iterative {block['n0_estimator']} N0: A_lens^res = {block['alens_residual']:.3f}"
+    if "sigma_r_delensed" in block:
+        line += (
+            f", sigma(r) = {block['sigma_r_delensed']:.4e} (marginalized {block['sigma_r_delensed_marginalized']:.4e})"
+        )
+    lines.append(line)
+    return "\n".join(lines)
+
+
 def run(args) -> int:
     import numpy as np
 
@@ -198,6 +263,14 @@ def run(args) -> int:
         delensing = delensing_forecast(experiment, n0=result.n0["MV"]["gradient"], nthreads=args.nthreads)
         document["delensing"] = {"n0_estimator": "MV", **delensing.to_dict()}
         timings["delensing"] = time.perf_counter() - start
+    iterative = None
+    if args.iterative:
+        start = time.perf_counter()
+        iterative, block = iterative_block(
+            experiment, args.estimators, lmax_L=args.lmax_L, delensing=args.delensing, nthreads=args.nthreads
+        )
+        document["iterative"] = block
+        timings["iterative"] = time.perf_counter() - start
     tracer_forecasts = None
     if args.tracer:
         from ..tracers import load_tracers, tracer_delensing_forecasts
@@ -235,6 +308,7 @@ def run(args) -> int:
         "estimators": args.estimators,
         "unlensed_weights": bool(args.unlensed_weights),
         "delensing": bool(args.delensing),
+        "iterative": bool(args.iterative),
         "nthreads": args.nthreads,
     }
     document["provenance"] = provenance(
@@ -252,6 +326,8 @@ def run(args) -> int:
     print(format_table(result, document["snr"]))
     if delensing is not None:
         print(format_delensing(delensing))
+    if iterative is not None:
+        print(format_iterative(iterative, document["iterative"]))
     if tracer_forecasts is not None:
         print(format_tracers(document["tracers"]))
     print(f"wrote {args.out}")

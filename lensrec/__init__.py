@@ -7,27 +7,26 @@ All results describe simulations of idealised surveys, not survey-ready measurem
 from __future__ import annotations
 
 from ._version import __version__
-from .bandpowers import LensingBandpowers, bias_budget_table, lensing_bandpowers, plot_bias_budget
-from .delensing import DelensingResult, delens, delensing_spectra, lensing_b_template, wiener_filter_phi
+from .bandpowers import LensingBandpowers, lensing_bandpowers
+from .delensing import DelensingResult, delens, delensing_spectra
+from .estimator_engine import quadratic_estimates
 from .estimator_noise import ReconstructionNoise, reconstruction_noise
 from .experiment import Experiment, available_experiments, load_experiment
 from .filtering import FieldFilter, FilteredFields, IsotropicFilter
 from .io import OutputExistsError
 from .iterative_noise import IterativeNoise, iterative_reconstruction_noise
 from .lensed_spectra import delensed_spectra, first_order_lensed_bb, lensed_cmb_spectra
+from .lensing_templates import lensing_b_template
 from .masks import apodize_binary_mask, cap_mask, latitude_mask, load_mask, sky_fraction_moments
+from .mean_field_average import MeanField, mean_field
 from .power import auto_spectrum, bin_spectrum, binned_cross_spectrum, cross_spectrum, mask_corrected
-from .reconstruction import (
-    MeanField,
-    Reconstruction,
-    mean_field,
-    quadratic_estimates,
-    reconstruct,
-    reconstruct_filtered,
-)
-from .sky import SimulatedSky, deflection_maps, lens_alm, lens_tqu_alm, simulate_sky
+from .reconstruction import Reconstruction, reconstruct, reconstruct_filtered
+from .remapping import deflection_maps, lens_alm, lens_tqu_alm
+from .report_bandpowers import bias_budget_table, plot_bias_budget
+from .sky import SimulatedSky, simulate_sky
 from .spectra import Spectra, fiducial_spectra, spectra_from_camb
-from .suites import LensingSuite, lensing_suite_settings, open_lensing_suite, run_lensing_suite
+from .suite_settings import lensing_suite_settings
+from .suites import LensingSuite, open_lensing_suite, run_lensing_suite
 from .tensor_forecast import TensorFisher, delensing_forecast, power_law_foreground_bb, sigma_r, tensor_fisher
 from .tracers import (
     Tracer,
@@ -41,6 +40,7 @@ from .tracers import (
     tracer_delensing_forecasts,
     tracer_set,
 )
+from .wiener_filters import wiener_filter_phi
 
 __all__ = [
     "__version__",

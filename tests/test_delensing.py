@@ -1,18 +1,17 @@
-"""Delensing: Wiener filters, the two lensing B-mode templates, residual spectra, efficiency and A_lens^res.
+"""Delensing: the two lensing B-mode templates on simulations, residual spectra, efficiency and A_lens^res
+(the filters alone: tests/test_wiener_filters.py; template signs and input checks: tests/test_lensing_templates.py).
 
 Cosmic variance of a full-sky band power over a band of ν = Σ(2ℓ+1) modes (common practice, Knox 1995,
 PRD 52, 4307): σ/C ≈ √(2/ν). The bands used below, ℓ ∈ [30, 100], [100, 300], [300, 600], [600, 1000],
 hold ν ≈ 9.3e3, 8.0e4, 2.7e5, 6.4e5 modes: σ/C ≈ 1.5%, 0.50%, 0.27%, 0.18%.
 """
 
-import healpy
 import numpy as np
 import pytest
 
 import lensrec
 from lensrec import delensing
 from lensrec.harmonics import nalm, truncate_alm
-from lensrec.sky import gaussian_alm
 
 BANDS = ((30, 100), (100, 300), (300, 600), (600, 1000))
 LMAX = 1000  # band limit of the B-mode templates tested
@@ -250,68 +249,6 @@ def test_reusing_the_b_modes_biases_the_measured_residual_low(sky, experiment, t
     assert "delensing bias" in apparent.notes[0].lower()
 
 
-# ------------------------------------------------------------------------------ first-order signs
-def test_first_order_template_is_the_small_deflection_limit_of_the_remapping(fiducial):
-    # The first-order template is the linear term of the remapping (Taylor expansion of P(n + d) with the
-    # covariant derivative; Hu 2000, PRD 62, 043007), so for φ → ε φ the two templates differ by the
-    # second-order term: |B_first - B_remap| / |B_remap| ∝ ε. A wrong sign of either spin term gives an O(1)
-    # difference that does not shrink with ε. Remapping at epsilon 1e-12 (numerical precision ~1e-12).
-    rng = np.random.default_rng(5)
-    e_alm = gaussian_alm(fiducial.unlensed["EE"], 300, rng)
-    phi_alm = gaussian_alm(fiducial.phi, 300, rng)
-    differences = []
-    for scale in (1e-2, 5e-3):
-        first = delensing.lensing_b_template(e_alm, scale * phi_alm, 200, method="first_order", nthreads=2)
-        exact = delensing.lensing_b_template(e_alm, scale * phi_alm, 200, method="remap", epsilon=1e-12, nthreads=2)
-        differences.append(np.linalg.norm(first - exact) / np.linalg.norm(exact))
-    assert differences[0] < 5e-3  # the second-order term; measured 1.08e-3 at ε = 0.01
-    # halving ε halves the relative difference (linear in ε) to 1%: the next term is O(ε²)
-    assert differences[1] / differences[0] == pytest.approx(0.5, rel=0.01)
-
-
-def test_azimuthally_symmetric_inputs_make_no_b_modes():
-    # m = 0 E and m = 0 φ are both symmetric about the z axis, and parity keeps a pure-E field lensed by a
-    # parity-even, axisymmetric deflection free of B modes (common practice, no source): both templates vanish.
-    e_alm = np.zeros(nalm(60), complex)
-    phi_alm = np.zeros(nalm(60), complex)
-    e_alm[10], e_alm[23], phi_alm[5], phi_alm[12] = 1.0, -0.5, 3e-4, 1e-4
-    for method in delensing.TEMPLATE_METHODS:
-        template = delensing.lensing_b_template(e_alm, phi_alm, 40, method=method, nthreads=1)
-        assert np.abs(template).max() < 1e-9 * np.abs(e_alm).max(), method  # numerical precision
-
-
-# ------------------------------------------------------------------------------- Wiener filters
-def test_wiener_filter_phi_weights(fiducial):
-    # φ^WF = C^φφ/(C^φφ + N0) φ̂ (Smith et al. 2012, JCAP 06, 014, the Wiener filter of a reconstruction)
-    lmax = 50
-    n0 = np.linspace(1e-8, 1e-6, lmax + 1)
-    n0[:2] = np.nan
-    n0[40:] = np.inf
-    phi_hat = np.ones(nalm(lmax), complex)
-    out = delensing.wiener_filter_phi(phi_hat, n0, fiducial.phi)
-    ell = lensrec.harmonics.ell_of_alm(lmax)
-    signal = fiducial.phi[ell]
-    expected = np.where((ell >= 2) & (ell < 40), signal / (signal + n0[ell]), 0.0)
-    assert np.allclose(out, expected, rtol=1e-14, atol=0)  # numerical precision
-
-
-def test_wiener_filter_e_removes_the_beam_and_weights_by_signal_over_total(fiducial):
-    # E^WF = C^EE/(C^EE + N^EE) E / b_l for full-sky isotropic noise (Smith et al. 2012); checked on the
-    # coefficients of a beam-convolved E directly
-    experiment = lensrec.load_experiment("deep_highland")
-    lmax = 300
-    e_alm = gaussian_alm(fiducial.lensed["EE"], lmax, np.random.default_rng(2))
-    beam = experiment.beam(lmax)
-    observed = lensrec.harmonics.scale_alm(e_alm, beam)
-    out = delensing.wiener_filter_e(observed, experiment, fiducial)
-    noise = experiment.noise_spectrum("E", lmax)
-    signal = fiducial.lensed["EE"][: lmax + 1]
-    factor = np.where(np.isfinite(noise), signal / (signal + noise), 0.0)
-    factor[:2] = 0.0
-    assert np.allclose(out, lensrec.harmonics.scale_alm(e_alm, factor), rtol=1e-12, atol=0)
-    assert np.all(out[lensrec.harmonics.ell_of_alm(lmax) < experiment.ell_min] == 0)  # cut multipoles
-
-
 # ------------------------------------------------------------------------------ efficiency, A_lens
 def test_efficiency_and_alens_definitions():
     # efficiency: lensing power removed over lensing power present, noise subtracted (hand-computed values)
@@ -348,60 +285,6 @@ def small_fields():
     return e_alm, phi_alm
 
 
-@pytest.mark.parametrize(
-    ("change", "error", "match"),
-    [
-        ({"lmax": 41}, ValueError, "exceeds the band limit of e_alm"),
-        ({"lmax": 1}, ValueError, "lmax must be >= 2"),
-        ({"method": "second_order"}, ValueError, "method must be one of 'remap', 'first_order'"),
-        ({"method": None}, ValueError, "method must be one of"),
-        ({"e_alm": "nan"}, ValueError, "e_alm contains 1 non-finite"),
-        ({"phi_alm": "nan"}, ValueError, "phi_alm contains 1 non-finite"),
-        ({"e_alm": "2d"}, ValueError, "e_alm must be one set of harmonic coefficients"),
-        ({"e_alm": "short"}, ValueError, "not \\(lmax\\+1\\)\\(lmax\\+2\\)/2"),
-        ({"e_alm": "text"}, TypeError, "e_alm must be a numeric array"),
-    ],
-)
-def test_template_input_errors(small_fields, change, error, match):
-    e_alm, phi_alm = (np.array(a) for a in small_fields)
-    kwargs = {"e_alm": e_alm, "phi_alm": phi_alm, "lmax": 30, "method": "remap"}
-    for key, value in change.items():
-        if value == "nan":
-            kwargs[key] = kwargs[key].copy()
-            kwargs[key][7] = np.nan
-        elif value == "2d":
-            kwargs[key] = np.stack([kwargs[key], kwargs[key]])
-        elif value == "short":
-            kwargs[key] = kwargs[key][:-1]
-        elif value == "text":
-            kwargs[key] = "E.fits"
-        else:
-            kwargs[key] = value
-    with pytest.raises(error, match=match):
-        delensing.lensing_b_template(
-            kwargs["e_alm"], kwargs["phi_alm"], kwargs["lmax"], method=kwargs["method"], nthreads=1
-        )
-
-
-def test_wiener_filter_phi_input_errors(small_fields, fiducial):
-    _, phi_alm = small_fields
-    n0 = np.full(31, 1e-7)
-    n0[:2] = np.nan
-    with pytest.raises(ValueError, match="n0 must cover exactly the L range of phi_alm"):
-        delensing.wiener_filter_phi(phi_alm, n0[:-1], fiducial.phi)
-    bad = n0.copy()
-    bad[10] = np.nan
-    with pytest.raises(ValueError, match="n0 is NaN at L = 10"):
-        delensing.wiener_filter_phi(phi_alm, bad, fiducial.phi)
-    bad[10] = -1.0
-    with pytest.raises(ValueError, match="non-negative"):
-        delensing.wiener_filter_phi(phi_alm, bad, fiducial.phi)
-    with pytest.raises(ValueError, match="phi_spectrum has 20 entries"):
-        delensing.wiener_filter_phi(phi_alm, n0, fiducial.phi[:20])
-    with pytest.raises(TypeError, match="n0 must be a numeric array"):
-        delensing.wiener_filter_phi(phi_alm, None, fiducial.phi)
-
-
 def test_delensing_spectra_input_errors(small_fields):
     e_alm, _ = small_fields
     template = e_alm[: nalm(30)]
@@ -413,36 +296,3 @@ def test_delensing_spectra_input_errors(small_fields):
         delensing.delensing_spectra(e_alm, template, lensed_bb=np.ones(10))
     with pytest.raises(ValueError, match="noise_bb is infinite at every l >= 2"):
         delensing.delensing_spectra(e_alm, template, noise_bb=np.full(41, np.inf), lensed_bb=np.ones(41))
-
-
-def test_template_inputs_match_healpy_analysis(fiducial):
-    # Reference: healpy.map2alm (iter 3, the lensrec filter's analysis) of the same maps, divided by the beam;
-    # E Wiener-filtered with C^EE/(C^EE + N^EE) (Smith et al. 2012), B in sky units, both zero outside the
-    # polarization cuts. Tolerance: healpy and ducc0 agree to ~1e-10 of the largest coefficient.
-    experiment = lensrec.Experiment(
-        name="small",
-        noise_temperature=3.0,
-        beam_fwhm=30.0,
-        ell_min=4,
-        ell_max_temperature=120,
-        ell_max_polarization=100,
-    )
-    sky = lensrec.simulate_sky(experiment, nside=64, lmax=150, lmax_margin=50, seed=4, nthreads=1)
-    e_wiener, b_observed, fields = delensing.template_inputs(sky.maps, experiment, fiducial, lmax=120, nthreads=1)
-    reference = healpy.map2alm(np.array(sky.maps), lmax=120, iter=3, use_weights=False)
-    ell = lensrec.harmonics.ell_of_alm(120)
-    beam = experiment.beam(120)[ell]
-    noise = experiment.noise_spectrum("E", 120)[ell]
-    signal = fiducial.lensed["EE"][ell]
-    inside = np.isfinite(noise)  # the cuts exclude l < 4, where signal + noise could vanish
-    factor = np.zeros(ell.size)
-    factor[inside] = signal[inside] / (signal[inside] + noise[inside]) / beam[inside]
-    expected_e = factor * reference[1]
-    expected_b = np.where(inside, reference[2] / beam, 0.0)
-    assert np.allclose(e_wiener, expected_e, rtol=0, atol=1e-9 * np.abs(expected_e).max())
-    assert np.allclose(b_observed, expected_b, rtol=0, atol=1e-9 * np.abs(expected_b).max())
-    assert fields.lmax == 120 and not fields.masked
-    with pytest.raises(ValueError, match="maps must have shape \\(3, npix\\)"):
-        delensing.template_inputs(sky.maps[1:], experiment, fiducial)
-    with pytest.raises(ValueError, match="exceeds 3\\*nside-1"):
-        delensing.template_inputs(sky.maps, experiment, fiducial, lmax=200)

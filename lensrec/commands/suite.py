@@ -183,8 +183,9 @@ def _run_suite(args) -> int:
 
 
 def _report(args) -> int:
-    from ..bandpowers import default_binning, lensing_bandpowers, write_bias_report
+    from ..bandpowers import default_binning, lensing_bandpowers
     from ..io import check_outputs_free, provenance, write_json
+    from ..report_bandpowers import write_bias_report
     from ..suites import open_lensing_suite
 
     start = time.perf_counter()

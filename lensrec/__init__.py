@@ -7,6 +7,7 @@ All results describe simulations of idealised surveys, not survey-ready measurem
 from __future__ import annotations
 
 from ._version import __version__
+from .analytic_n1 import AnalyticN1, analytic_n1
 from .bandpowers import LensingBandpowers, lensing_bandpowers
 from .delensing import DelensingResult, delens, delensing_spectra
 from .estimator_engine import quadratic_estimates
@@ -83,6 +84,8 @@ __all__ = [
     "reconstruction_noise",
     "IterativeNoise",
     "iterative_reconstruction_noise",
+    "AnalyticN1",
+    "analytic_n1",
     "DelensingResult",
     "lensing_b_template",
     "delens",

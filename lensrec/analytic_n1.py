@@ -51,7 +51,7 @@ import scipy.fft
 from scipy.interpolate import PchipInterpolator
 
 from ._checks import as_finite_array, as_int, resolve_nthreads
-from .estimator_noise import ESTIMATORS, _parse_components, _parse_estimators, reconstruction_noise, standard_factors
+from .estimator_noise import joint_estimator_parts, minimum_variance, reconstruction_noise, standard_factors
 from .estimator_weights import _LADDER as _LADDER_NAME
 from .estimator_weights import (
     COMPONENTS,
@@ -60,12 +60,15 @@ from .estimator_weights import (
     QuadraticEstimator,
     quadratic_estimator,
     response_kernel,
+    spectrum_name,
 )
 from .experiment import Experiment, load_experiment
+from .labels import COMBINED_ESTIMATORS, ESTIMATORS, JOINT_ESTIMATORS, parse_components, parse_estimators
 from .spectra import Spectra, fiducial_spectra
 
 __all__ = ["AnalyticN1", "analytic_n1", "default_n1_L_grid", "pair_n1"]
 
+(JOINT_LABEL,) = tuple(JOINT_ESTIMATORS)
 _LEG_PREFIX = "leg"  # spectra in the lensing response of the legs (always lensed)
 DEFAULT_GRID_SIZE = 128
 
@@ -329,6 +332,22 @@ def _estimators_for(labels, component, spectra_prefix="cmb", filters="inverse"):
     return [quadratic_estimator(label, component, spectra_prefix, filters) for label in labels]
 
 
+def _joint_raw_estimators(component: str) -> list[QuadraticEstimator]:
+    """The joint estimator ½ Σ_pq f^pq* X̄^p X̄^q (X̄ = C_tot⁻¹ X) as nine estimators on the raw field pairs (i, j):
+    W^ij = Σ_pq f^pq* (C⁻¹)^pi_ℓ1 (C⁻¹)^qj_ℓ2 with symmetry factor 2 (the ½), so their sum is the joint ḡ."""
+    parts = joint_estimator_parts(component)
+    out = []
+    for i in "TEB":
+        for j in "TEB":
+            terms = []
+            for (p, q), part in parts.items():
+                first = spectrum_name("joint", p, i)
+                second = spectrum_name("joint", q, j)
+                terms.extend(part.weight.times(first=(first,), second=(second,)).terms)
+            out.append(QuadraticEstimator(f"{JOINT_LABEL}:{i}{j}", component, PairKernel((i, j), tuple(terms)), 2))
+    return out
+
+
 def _swap(estimator: QuadraticEstimator) -> QuadraticEstimator:
     return QuadraticEstimator(
         estimator.label + "~", estimator.component, estimator.weight.swapped(), estimator.symmetry
@@ -445,6 +464,8 @@ def pair_n1(
     with np.errstate(divide="ignore", invalid="ignore"):
         norm = np.where(response > 0, 1.0 / response, np.nan)
     out = {
+        "n1_raw": n1,
+        "n0_raw": n0,
         "n1": n1 * norm[:, None, :] * norm[None, :, :],
         "n0": n0 * norm[:, None, :] * norm[None, :, :],
         "response": response,
@@ -452,6 +473,7 @@ def pair_n1(
         "fft_count": fft_count,
     }
     if matrix is not None:
+        out["matrix_raw"] = matrix
         out["matrix"] = matrix * (norm[:, None, :] * norm[None, :, :])[..., None]
     return out
 
@@ -584,8 +606,9 @@ def analytic_n1(
     spectra : Spectra, optional
         Theory spectra (default: the embedded fiducial cosmology).
     estimators : sequence of str or str
-        Any of "TT", "TE", "EE", "TB", "EB", "MV" (default all). "MV" combines every pair term N1^αβ with the
-        per-L MV weights of the exact full-sky N0 covariance.
+        Labels of :mod:`lensrec.labels` (default all). A combined estimator ("MV") combines every pair term
+        N1^αβ with its per-L weights from the exact full-sky N0 covariance; the joint estimator ("GMV") is
+        evaluated from its own separable weights on the raw field pairs (nine parts, all cross terms).
     lmax_L : int, optional
         Highest lensing multipole (default: the CMB ℓ_max).
     components : sequence of str
@@ -631,8 +654,8 @@ def analytic_n1(
     spectra = fiducial_spectra() if spectra is None else spectra
     if not isinstance(spectra, Spectra):
         raise TypeError(f"spectra must be a lensrec Spectra object, got {type(spectra).__name__}")
-    labels = _parse_estimators(estimators)
-    components = _parse_components(components)
+    labels = parse_estimators(estimators)
+    components = parse_components(components)
     weights = _parse_weights(weights)
     lmax = max(experiment.ell_max_temperature, experiment.ell_max_polarization)
     if spectra.lmax < lmax:
@@ -671,7 +694,8 @@ def analytic_n1(
     phi = np.asarray(spectra.phi, dtype=np.float64)
     basis = _hat_basis(L_grid, phi.size) if matrix else None
     n1, n1_grid, n0_grid, covariance, matrices = {}, {}, {}, {}, {}
-    total_steps = len(components) * L_grid.size
+    joint_count = sum(label in JOINT_ESTIMATORS for label in labels)
+    total_steps = len(components) * L_grid.size * ((1 if base else 0) + joint_count)
     done = [0]
 
     def step(_done, _total):
@@ -679,43 +703,69 @@ def analytic_n1(
         if progress is not None:
             progress(done[0], total_steps)
 
+    joint = [label for label in labels if label in JOINT_ESTIMATORS]
     for component in components:
-        estimators_c = _estimators_for(base, component)
-        result = pair_n1(
-            estimators_c,
-            factors,
-            phi,
-            lmax,
-            L_grid,
-            grid_size,
-            box=3.0,
-            phi_basis=basis,
-            nthreads=nthreads,
-            progress=step,
-        )
-        cov = result["n1"].real
-        covariance[component] = _frozen(cov)
-        per_label = {}
-        per_label_n0 = {}
-        per_label_matrix = {}
-        for i, label in enumerate(base):
-            per_label[label] = cov[i, i]
-            per_label_n0[label] = result["n0"][i, i].real
+        per_label, per_label_n0, per_label_matrix = {}, {}, {}
+        if base:
+            result = pair_n1(
+                _estimators_for(base, component),
+                factors,
+                phi,
+                lmax,
+                L_grid,
+                grid_size,
+                box=3.0,
+                phi_basis=basis,
+                nthreads=nthreads,
+                progress=step,
+            )
+            cov = result["n1"].real
+            covariance[component] = _frozen(cov)
+            for i, label in enumerate(base):
+                per_label[label] = cov[i, i]
+                per_label_n0[label] = result["n0"][i, i].real
+                if matrix:
+                    per_label_matrix[label] = result["matrix"][i, i].real
+            n0_cov = np.asarray(noise.covariance[component])[:, :, L_grid]
+            for label in labels:
+                if label not in COMBINED_ESTIMATORS:
+                    continue
+                index = [i for i, pair in enumerate(base) if pair in COMBINED_ESTIMATORS[label]]
+                part = n0_cov[np.ix_(index, index)]
+                _, w = minimum_variance(np.where(np.isnan(part), np.inf, part))
+                w = np.nan_to_num(w)
+                sub = np.ix_(index, index)
+                per_label[label] = np.einsum("il,ijl,jl->l", w, cov[sub], w)
+                per_label_n0[label] = np.einsum("il,ijl,jl->l", w, result["n0"].real[sub], w)
+                if matrix:
+                    per_label_matrix[label] = np.einsum("il,ijlk,jl->lk", w, result["matrix"].real[sub], w)
+        for label in joint:
+            parts = _joint_raw_estimators(component)
+            result = pair_n1(
+                parts,
+                factors,
+                phi,
+                lmax,
+                L_grid,
+                grid_size,
+                box=3.0,
+                phi_basis=basis,
+                nthreads=nthreads,
+                progress=step,
+            )
+            response = result["response"].sum(axis=0)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                norm = np.where(response > 0, 1.0 / response, np.nan) ** 2
+            per_label[label] = result["n1_raw"].real.sum(axis=(0, 1)) * norm
+            per_label_n0[label] = result["n0_raw"].real.sum(axis=(0, 1)) * norm
             if matrix:
-                per_label_matrix[label] = result["matrix"][i, i].real / phi[L_grid][None, :]
-        if "MV" in labels:
-            w = np.nan_to_num(noise.mv_weights[component][:, L_grid])
-            per_label["MV"] = np.einsum("il,ijl,jl->l", w, cov, w)
-            per_label_n0["MV"] = np.einsum("il,ijl,jl->l", w, result["n0"].real, w)
-            if matrix:
-                m = np.einsum("il,ijlk,jl->lk", w, result["matrix"].real, w)
-                per_label_matrix["MV"] = m / phi[L_grid][None, :]
+                per_label_matrix[label] = result["matrix_raw"].real.sum(axis=(0, 1)) * norm[:, None]
         for label in labels:
             n1.setdefault(label, {})[component] = _frozen(_interpolate(L_grid, per_label[label], lmax_L))
             n1_grid.setdefault(label, {})[component] = _frozen(per_label[label])
             n0_grid.setdefault(label, {})[component] = _frozen(per_label_n0[label])
             if matrix:
-                matrices.setdefault(label, {})[component] = _frozen(per_label_matrix[label])
+                matrices.setdefault(label, {})[component] = _frozen(per_label_matrix[label] / phi[L_grid][None, :])
     settings = {
         "lmax": lmax,
         "lmax_L": lmax_L,

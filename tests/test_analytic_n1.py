@@ -18,20 +18,21 @@ def small_experiment():
 
 @pytest.fixture(scope="module")
 def all_pairs(small_experiment):
-    return analytic_n1(small_experiment, estimators=PAIRS + ("MV",), L_grid=[100, 300, 700], nthreads=1)
+    return analytic_n1(small_experiment, estimators=PAIRS + ("MV", "GMV"), L_grid=[100, 300, 700], nthreads=1)
 
 
 def test_grid_n0_matches_the_exact_full_sky_n0(small_experiment, all_pairs):
-    """The flat-sky translation of the separable weights (every spin phase, both Wick terms) reproduces N0.
+    """The flat-sky translation of the separable weights (every spin phase, both Wick terms, the joint
+    estimator's nine parts) reproduces N0.
 
     Reference: the exact full-sky N0 (Okamoto & Hu 2003, PRD 67, 083002) of lensrec.reconstruction_noise; the
     flat-sky limit agrees with it to O(1%) at L ≥ 100 (Hu & Okamoto 2002, ApJ 574, 566). Tolerance 3%: that
     approximation plus the grid's cell size (3·1001/128 ≈ 23 multipoles). A wrong sign of one spin-2 term
     changes TE, EE or EB by tens of percent.
     """
-    exact = lensrec.reconstruction_noise(small_experiment, estimators=PAIRS + ("MV",), nthreads=1)
+    exact = lensrec.reconstruction_noise(small_experiment, estimators=PAIRS + ("MV", "GMV"), nthreads=1)
     grid = all_pairs.L_grid
-    for label in PAIRS + ("MV",):
+    for label in PAIRS + ("MV", "GMV"):
         for component in ("gradient", "curl"):
             ratio = all_pairs.n0_grid[label][component] / exact.n0[label][component][grid]
             np.testing.assert_allclose(ratio, 1.0, atol=0.03, err_msg=f"{label} {component}")
@@ -46,6 +47,9 @@ def test_n1_signs_and_mv(all_pairs):
         bound = np.max(np.abs(all_pairs.covariance[component]), axis=(0, 1))
         mv = all_pairs.n1_grid["MV"][component]
         assert np.all(np.isfinite(mv)) and np.all(np.abs(mv) <= bound * (1 + 1e-9))
+        # the joint estimator uses the same modes as MV with better weights: its N1 is of the same size
+        ratio = all_pairs.n1_grid["GMV"][component] / mv
+        assert np.all((ratio > 0.5) & (ratio < 2.0)), ratio
     cov = all_pairs.covariance["gradient"]
     np.testing.assert_allclose(cov, np.transpose(cov, (1, 0, 2)), rtol=1e-10, atol=1e-30)
 

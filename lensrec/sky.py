@@ -336,16 +336,10 @@ def _pixel_window(pixel_window, nside: int, lmax: int):
     if pixel_window is False or pixel_window is None:
         return None
     if pixel_window is True:
-        import healpy
+        from .pixel_noise import pixel_window as compute_window
 
-        try:
-            window_t, window_p = healpy.pixwin(nside, pol=True, lmax=lmax)
-        except Exception as exc:  # healpy fetches its window tables from the network when not installed
-            raise ValueError(
-                f"pixel_window=True needs healpy's pixel-window table for nside={nside}, which is not available "
-                f"({type(exc).__name__}); pass pixel_window=(window_T, window_P) arrays instead"
-            ) from None
-        return np.asarray(window_t), np.asarray(window_p)
+        window = compute_window(nside, lmax)
+        return window, window
     if isinstance(pixel_window, (tuple, list)) and len(pixel_window) == 2:
         return tuple(_spectrum(w, f"pixel_window[{k}]", lmax) for k, w in enumerate(pixel_window))
     raise TypeError("pixel_window must be True, False or a pair of arrays (window_T, window_P)")
@@ -364,6 +358,7 @@ def simulate_sky(
     mask=None,
     hits=None,
     pixel_window=False,
+    pixel_noise=None,
     epsilon: float = DEFAULT_EPSILON,
     allow_high_lmax: bool = False,
     nthreads: int | None = None,
@@ -409,8 +404,12 @@ def simulate_sky(
         √(⟨hits⟩ / hits), the mean taken over the used pixels (mask > 0, or all). Zero hits are allowed only
         where the mask is 0.
     pixel_window : bool or (array, array)
-        Multiply by the HEALPix pixel window (healpy's table; needs its data files) or by the given
-        (T, polarization) windows; default False.
+        Multiply by the HEALPix pixel window (computed offline by :func:`lensrec.pixel_noise.pixel_window`)
+        or by the given (T, polarization) windows; default False.
+    pixel_noise : PixelNoise, optional
+        Noise that follows a per-pixel variance map (:class:`lensrec.pixel_noise.PixelNoise`, from a
+        variance or hit map), white or, with the experiment's 1/f knee, 1/f modulated by the map; replaces
+        the experiment's uniform noise. Not together with ``hits``.
     epsilon : float
         Accuracy of the non-uniform synthesis at the displaced points; default 1e-7.
     allow_high_lmax : bool
@@ -483,6 +482,15 @@ def simulate_sky(
                 f"hits is zero in {int(empty.sum())} pixel(s) that the mask keeps (or no mask was given); "
                 "mask those pixels (mask = 0) or give them hits > 0"
             )
+    if pixel_noise is not None:
+        from .pixel_noise import PixelNoise
+
+        if not isinstance(pixel_noise, PixelNoise):
+            raise TypeError(f"pixel_noise must be a lensrec PixelNoise, got {type(pixel_noise).__name__}")
+        if pixel_noise.nside != nside:
+            raise ValueError(f"pixel_noise has nside {pixel_noise.nside} but the maps have nside {nside}")
+        if hits is not None:
+            raise ValueError("give hits or pixel_noise, not both (PixelNoise.from_hits makes one from hits)")
     windows = _pixel_window(pixel_window, nside, lmax)
     nthreads = resolve_nthreads(nthreads)
 
@@ -500,7 +508,11 @@ def simulate_sky(
     maps = harmonics.alm2map_tqu(observed, nside, lmax, nthreads=nthreads)
     del observed
     noise_model = None
-    if noise:
+    if noise and pixel_noise is not None:
+        maps += pixel_noise.simulate(experiment, lmax, rng_for(seed, index, "noise"), nthreads=nthreads)
+        has_knee = experiment.ell_knee_temperature > 0 or experiment.ell_knee_polarization > 0
+        noise_model = "pixel_variance_one_over_f" if has_knee else "pixel_variance_white"
+    elif noise:
         scale = None
         if hits is not None:
             used = mask > 0 if mask is not None else np.ones(hits.size, dtype=bool)
@@ -529,6 +541,7 @@ def simulate_sky(
         "spectra": dict(spectra.metadata),
         "mask_sha256": _digest(mask),
         "hits_sha256": _digest(hits),
+        "noise_variance_sha256": _digest(pixel_noise.variance) if pixel_noise is not None else None,
     }
     return SimulatedSky(
         maps=_readonly(maps),

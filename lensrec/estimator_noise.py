@@ -16,7 +16,7 @@ its response to another source (the curl, unlensed spectra, …) or for its N0 u
 from __future__ import annotations
 
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from types import MappingProxyType
 
 import numpy as np
@@ -347,6 +347,9 @@ class ReconstructionNoise:
     covariance_labels : tuple of str
     mv_weights : mapping component → ndarray, shape (n_est, lmax_L+1)
         Per-L MV weights over ``covariance_labels`` (only when "MV" was requested).
+    combined_weights : mapping label → component → ndarray, shape (n_est, lmax_L+1)
+        Per-L weights over ``covariance_labels`` of every requested combined label (of
+        :data:`lensrec.labels.COMBINED_ESTIMATORS`; 0 for the estimators it does not combine).
     experiment : Experiment
     phi_spectrum : ndarray
         C_L^φφ of the spectra used (for :meth:`lensing_snr`).
@@ -363,6 +366,7 @@ class ReconstructionNoise:
     experiment: Experiment
     phi_spectrum: np.ndarray
     settings: Mapping
+    combined_weights: Mapping = field(default_factory=lambda: MappingProxyType({}))
 
     def lensing_snr(self, sky_fraction=None, L_min=2, L_max=None) -> dict[str, float]:
         """Fisher signal-to-noise of the lensing power spectrum for each estimator.
@@ -535,7 +539,7 @@ def reconstruction_noise(
 
     L = np.arange(lmax_L + 1)
     low = L < 2
-    n0, response, covariance, mv_weights = {}, {}, {}, {}
+    n0, response, covariance, mv_weights, combined_weights = {}, {}, {}, {}, {}
     for component in components:
         responses = np.array([values[k] for k in registry[component, "response"]]).reshape(len(base), lmax_L + 1)
         _check_real(responses, np.abs(responses), "response")
@@ -567,6 +571,10 @@ def reconstruction_noise(
             n0.setdefault(label, {})[component] = _frozen_array(combined_n0)
             with np.errstate(divide="ignore"):
                 response.setdefault(label, {})[component] = _frozen_array(1.0 / combined_n0)
+            full = np.zeros((len(base), lmax_L + 1))
+            full[index] = weights
+            full[:, low] = np.nan
+            combined_weights.setdefault(label, {})[component] = _frozen_array(full)
             if label == "MV":  # MV combines every defined estimator: its weights run over covariance_labels
                 mv_weights[component] = _frozen_array(weights)
         if JOINT_ESTIMATOR in labels:
@@ -600,6 +608,7 @@ def reconstruction_noise(
         covariance=MappingProxyType(covariance),
         covariance_labels=tuple(base),
         mv_weights=MappingProxyType(mv_weights),
+        combined_weights=MappingProxyType({k: MappingProxyType(v) for k, v in combined_weights.items()}),
         experiment=experiment,
         phi_spectrum=_frozen_array(spectra.phi[: lmax_L + 1]),
         settings=MappingProxyType(settings),

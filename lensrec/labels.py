@@ -7,7 +7,9 @@ here. Adding an estimator means one entry in one of the tables below plus its we
 - :data:`ESTIMATOR_FIELDS`: the quadratic estimators built on one pair of fields (Okamoto & Hu 2003, PRD 67,
   083002), label -> (first field, second field). :data:`PAIR_ESTIMATORS` lists them in display order.
 - :data:`COMBINED_ESTIMATORS`: a label -> the pair estimators it combines, each normalised, with weights
-  from the inverse of their N0 covariance (Okamoto & Hu 2003, §III). "MV" combines all five.
+  from the inverse of their N0 covariance (Okamoto & Hu 2003, §III). "MV" combines all five; "TT+TE+EE"
+  combines the three that read no B modes, so that delensing the same maps' B modes with it carries no
+  B-mode reuse bias (Namikawa 2017, PRD 95, 103514; Baleato Lizancos, Challinor & Carron 2021, JCAP 03, 016).
 - :data:`JOINT_ESTIMATORS`: a label -> the pair estimators whose weights are derived jointly from the full
   T, E, B covariance rather than combined after normalisation. "GMV", the joint ("generalised")
   minimum-variance estimator (Maniyar et al. 2021, PRD 103, 083524), spans all five pairs.
@@ -59,7 +61,7 @@ ESTIMATOR_FIELDS = MappingProxyType(
 PAIR_ESTIMATORS = tuple(ESTIMATOR_FIELDS)
 
 # label -> pair estimators combined with inverse-N0-covariance weights after normalisation.
-COMBINED_ESTIMATORS = MappingProxyType({"MV": PAIR_ESTIMATORS})
+COMBINED_ESTIMATORS = MappingProxyType({"MV": PAIR_ESTIMATORS, "TT+TE+EE": ("TT", "TE", "EE")})
 
 # label -> pair estimators whose weights are derived jointly from the full T, E, B covariance.
 JOINT_ESTIMATORS = MappingProxyType({"GMV": PAIR_ESTIMATORS})

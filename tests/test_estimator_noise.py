@@ -556,3 +556,21 @@ def test_bad_input_is_refused(fiducial):
     assert polarization_only.covariance_labels == ("EE", "EB")
     mv, eb = polarization_only.n0["MV"]["gradient"][2:], polarization_only.n0["EB"]["gradient"][2:]
     assert np.all(np.isfinite(mv)) and np.all(mv <= eb * (1 + 1e-12))
+
+
+def test_b_free_combination_is_the_minimum_variance_of_tt_te_ee():
+    # Okamoto & Hu 2003, PRD 67, 083002, §III: N0 of the MV combination of unit-response estimators is
+    # 1 / (1^T C^-1 1) over their N0 covariance; here over TT, TE, EE only, written out with numpy's inverse.
+    result = lensrec.reconstruction_noise("deep_highland", estimators=("TT", "TE", "EE", "TT+TE+EE", "MV"), lmax_L=300)
+    order = list(result.covariance_labels)
+    index = [order.index(label) for label in ("TT", "TE", "EE")]
+    for L in (10, 100, 300):
+        block = result.covariance["gradient"][np.ix_(index, index)][:, :, L]
+        expected = 1.0 / np.sum(np.linalg.inv(block))
+        assert result.n0["TT+TE+EE"]["gradient"][L] == pytest.approx(expected, rel=1e-10)  # rounding of the inverse
+        weights = result.combined_weights["TT+TE+EE"]["gradient"][:, L]
+        assert weights[order.index("EB")] == 0.0 and weights[order.index("TB")] == 0.0
+        assert np.sum(weights) == pytest.approx(1.0, rel=1e-12)  # unit response
+        # a subset of MV's inputs: never below MV, never above its best member (common practice)
+        assert result.n0["MV"]["gradient"][L] <= result.n0["TT+TE+EE"]["gradient"][L]
+        assert result.n0["TT+TE+EE"]["gradient"][L] <= min(result.n0[x]["gradient"][L] for x in ("TT", "TE", "EE"))

@@ -49,6 +49,9 @@ def test_rules():
     assert [label for label in ESTIMATORS if uses_b_modes(label)] == ["TB", "EB", "MV", "GMV"]
     # the joint estimator filters T, E, B together (Maniyar et al. 2021, PRD 103, 083524)
     assert estimator_fields("GMV") == ("T", "E", "B")
+    # the B-free minimum-variance combination: TT, TE and EE only (no B-mode reuse when delensing)
+    assert estimator_pairs("TT+TE+EE") == ("TT", "TE", "EE") and not uses_b_modes("TT+TE+EE")
+    assert estimator_fields("TT+TE+EE") == ("T", "E")
     assert [label for label in PAIR_ESTIMATORS if is_symmetric(label)] == ["TT", "EE"]
     with pytest.raises(ValueError, match="unknown estimator 'MV'"):
         is_symmetric("MV")  # only pair estimators have legs

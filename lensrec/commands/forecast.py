@@ -15,11 +15,14 @@ EXAMPLES = """examples:
 writes one JSON file: {"L": [0..lmax_L], "n0": {"TT": {"gradient": [...], "curl": [...]}, ...},
 "snr": {"TT": ..., ...}, "provenance": {...}}; N0 in C_L^phiphi units (C_L^OmegaOmega for the curl),
 null below L = 2; snr is the Fisher S/N of C_L^phiphi over 2 <= L <= lmax_L with the experiment's sky fraction.
---delensing adds "delensing": the lensed and forecast residual BB, A_lens^res and sigma(r) with and without
-delensing, from lensrec.delensing_forecast with the MV gradient N0 (see its notes on the delensing bias).
+--delensing adds "delensing": the lensed and forecast residual BB, A_lens^res and sigma(r) (lensing amplitude
+fixed, and marginalized) with and without delensing, from lensrec.delensing_forecast with the gradient N0 of
+--delensing-estimator (default MV) under --bias-treatment: b_free for labels without B modes (TT+TE+EE),
+exclude_delensed_b (default for B-using labels: the reconstruction leaves out the delensed B modes,
+Baleato Lizancos, Challinor & Carron 2021) or none (B modes reused: a measured residual is biased low).
 --tracer FILE (a tracer TOML or a shipped name such as diffuse_glow) adds "tracers": the correlation rho_L of
-each tracer, of the internal MV reconstruction and of their optimal combination (Sherwin & Schmittfull 2015),
-and the delensing forecast (A_lens^res, sigma(r) conditional and marginalized) with each of them.
+each tracer, of the same internal reconstruction and of their optimal combination (Sherwin & Schmittfull
+2015), and the delensing forecast (A_lens^res, sigma(r) conditional and marginalized) with each of them.
 --iterative adds "iterative": the converged noise of the iterative estimator (EB and MV among --estimators):
 "n0" in the layout of the top-level "n0", "lensing_iterations" (steps to converge per estimator),
 "n0_per_iteration" (every step, 0 = quadratic), "residual_bb" and "alens_residual" of delensing with it (MV if
@@ -58,6 +61,17 @@ def add_arguments(parser) -> None:
         "--iterative",
         action="store_true",
         help="also forecast the iterative estimator (EB, MV): converged N0, steps, residual BB, A_lens^res",
+    )
+    parser.add_argument(
+        "--delensing-estimator",
+        default="MV",
+        help=f"estimator whose N0 delenses, one of {', '.join(ESTIMATORS)} (default: %(default)s)",
+    )
+    parser.add_argument(
+        "--bias-treatment",
+        choices=("b_free", "exclude_delensed_b", "none"),
+        default=None,
+        help="treatment of the B-mode reuse bias (default: b_free for B-free labels, else exclude_delensed_b)",
     )
     parser.add_argument(
         "--tracer",
@@ -123,11 +137,12 @@ def format_table(result, snr: dict) -> str:
     return "\n".join(lines)
 
 
-def format_delensing(forecast) -> str:
+def format_delensing(forecast, summary=None) -> str:
     """Lensed and forecast residual BB at a few l, A_lens^res and sigma(r), without and with delensing."""
     columns = [ell for ell in (30, 100, 300, 1000) if forecast.ell_min <= ell <= forecast.ell_max]
     lines = [
-        f"delensing with the MV gradient N0 (l = {forecast.ell_min}-{forecast.ell_max}, "
+        f"delensing with the {'MV' if summary is None else summary['estimator']} gradient N0 "
+        f"(l = {forecast.ell_min}-{forecast.ell_max}, "
         f"f_sky = {forecast.sky_fraction:g}, r = {forecast.r:g}):",
         f"{'':12s}"
         + "".join(f"{'BB(l=' + str(ell) + ')':>12s}" for ell in columns)
@@ -149,10 +164,7 @@ def format_delensing(forecast) -> str:
             + f"{alens:12.3f}{sigma:12.4e}{marginal:12.4e}"
         )
     lines.append("sigma(r): lensing amplitude fixed (conditional); marginal.: lensing amplitude marginalized (Fisher)")
-    lines.append(
-        "BB in uK^2. Caution: MV reuses the B modes; a residual measured on the same maps comes out lower "
-        "than this forecast (delensing bias, see the notes in the JSON)"
-    )
+    lines.append("BB in uK^2. " + (forecast.notes[0] if summary is not None else ""))
     return "\n".join(lines)
 
 
@@ -160,7 +172,8 @@ def format_tracers(block: dict) -> str:
     """rho_L at a few L and the delensing forecast with each input and with their combination."""
     columns = [L for L in (30, 100, 300, 1000) if L < len(block["L"])]
     lines = [
-        "delensing with tracers (internal = MV reconstruction; combined = optimal combination):",
+        f"delensing with tracers (internal = {block['internal_estimator']} reconstruction, bias treatment "
+        f"{block['bias_treatment']}; combined = optimal combination):",
         f"{'input':18s}"
         + "".join(f"{'rho(L=' + str(L) + ')':>12s}" for L in columns)
         + f"{'A_lens^res':>12s}{'sigma(r)':>12s}{'marginal.':>12s}",
@@ -238,10 +251,12 @@ def run(args) -> int:
     from ..io import check_outputs_free, provenance, write_json
 
     check_outputs_free([args.out], force=args.force)  # refuse before any work
-    if (args.delensing or args.tracer) and "MV" not in [label.strip() for label in args.estimators.split(",")]:
-        raise ValueError(
-            f"--delensing and --tracer use the MV gradient N0: include MV in --estimators (got {args.estimators!r})"
-        )
+    from ..delensing_bias import resolve_bias_treatment
+    from ..labels import parse_estimator
+
+    if args.delensing or args.tracer:
+        args.delensing_estimator = parse_estimator(args.delensing_estimator)
+        resolve_bias_treatment(args.delensing_estimator, args.bias_treatment)  # refuse before any work
     timings = {}
     start = time.perf_counter()
     experiment = load_experiment(args.experiment)
@@ -255,13 +270,25 @@ def run(args) -> int:
         nthreads=args.nthreads,
     )
     timings["reconstruction_noise"] = time.perf_counter() - start
-    delensing = None
-    if args.delensing:
-        from ..tensor_forecast import delensing_forecast
+    delensing = summary = None
+    if args.delensing or args.tracer:
+        from ..delensing_bias import internal_delensing_forecast
 
         start = time.perf_counter()
-        delensing = delensing_forecast(experiment, n0=result.n0["MV"]["gradient"], nthreads=args.nthreads)
-        document["delensing"] = {"n0_estimator": "MV", **delensing.to_dict()}
+        delensing, summary = internal_delensing_forecast(
+            experiment,
+            args.delensing_estimator,
+            args.bias_treatment,
+            lmax_L=int(result.L[-1]),
+            nthreads=args.nthreads,
+        )
+        if args.delensing:
+            document["delensing"] = {
+                "n0_estimator": summary["estimator"],
+                "bias_treatment": summary["bias_treatment"],
+                "ell_max_delensed": summary["ell_max_delensed"],
+                **delensing.to_dict(),
+            }
         timings["delensing"] = time.perf_counter() - start
     iterative = None
     if args.iterative:
@@ -278,12 +305,13 @@ def run(args) -> int:
         start = time.perf_counter()
         tracer_set = load_tracers(args.tracer)
         combination, tracer_forecasts = tracer_delensing_forecasts(
-            experiment, tracer_set, n0=result.n0["MV"]["gradient"], nthreads=args.nthreads
+            experiment, tracer_set, n0=summary["n0"], nthreads=args.nthreads
         )
         document["tracers"] = {
             "source": tracer_set.source,
             "inputs": list(combination.inputs),
-            "internal_estimator": "MV",
+            "internal_estimator": summary["estimator"],
+            "bias_treatment": summary["bias_treatment"],
             "L": list(range(combination.lmax_L + 1)),
             "rho": {
                 **{name: np.sqrt(value).tolist() for name, value in combination.rho2_single.items()},
@@ -324,8 +352,8 @@ def run(args) -> int:
         f"{timings['reconstruction_noise']:.2f} s; N0 in C_L^phiphi units"
     )
     print(format_table(result, document["snr"]))
-    if delensing is not None:
-        print(format_delensing(delensing))
+    if args.delensing:
+        print(format_delensing(delensing, summary))
     if iterative is not None:
         print(format_iterative(iterative, document["iterative"]))
     if tracer_forecasts is not None:

@@ -38,7 +38,7 @@ from .estimator_weights import COMPONENTS
 from .experiment import Experiment, load_experiment
 from .filtering import FieldFilter, FilteredFields, IsotropicFilter
 from .harmonics import ell_of_alm, nalm
-from .labels import ESTIMATORS
+from .labels import COMBINED_ESTIMATORS, ESTIMATORS
 from .mean_field_average import MeanField, _check_mean_field, mean_field
 from .spectra import Spectra, fiducial_spectra
 
@@ -201,13 +201,14 @@ def reconstruct_filtered(
         )
     mean_field = _check_mean_field(mean_field, estimator, lmax_L)
     spectra = fiducial_spectra() if spectra is None else spectra
-    labels = BASE_ESTIMATORS if estimator == "MV" else (estimator,)
+    combined = estimator in COMBINED_ESTIMATORS
+    labels = tuple(COMBINED_ESTIMATORS[estimator]) if combined else (estimator,)
     _check_filter_kind(estimator, first, second)
     if noise is None:
         noise = reconstruction_noise(
             experiment,
             spectra,
-            estimators=BASE_ESTIMATORS + ("MV",) if estimator == "MV" else labels,
+            estimators=labels + (estimator,) if combined else labels,
             lmax_L=lmax_L,
             lensed_weights=lensed_weights,
             nthreads=nthreads,
@@ -226,8 +227,8 @@ def reconstruct_filtered(
     out = {}
     for component in COMPONENTS:
         parts = estimates.gradient if component == "gradient" else estimates.curl
-        if estimator == "MV":
-            weights = noise.mv_weights[component]
+        if combined:
+            weights = noise.combined_weights[estimator][component]
             order = list(noise.covariance_labels)
             total = np.zeros(nalm(lmax_L), dtype=np.complex128)
             for label in labels:

@@ -439,3 +439,21 @@ def test_masked_sky_mean_field_dominates_low_L_and_its_subtraction_removes_it(ma
     for k in range(len(edges) - 1):
         assert abs(ratio[k] - 1.0) <= 3 * sigma[k] + 0.03, (label, edges[k], ratio[k], sigma[k])
     assert runs[0].mask_moments["w2"] == pytest.approx(moments["w2"])
+
+
+def test_b_free_combination_has_unit_response_on_a_simulation():
+    # DEVELOPERS.md: each estimator's cross-spectrum with the input phi over the input's own power is one.
+    # TT+TE+EE is the minimum-variance combination of the three B-free estimators (Okamoto & Hu 2003, PRD 67,
+    # 083002, §III); same bound as the other labels (3 sigma + 1%, see above).
+    experiment = lensrec.Experiment(**{**MODERATE, "ell_max_temperature": 512, "ell_max_polarization": 512})
+    sky = lensrec.simulate_sky(experiment, nside=256, lmax=512, lmax_margin=300, seed=78, nthreads=2)
+    result = reconstruct(sky.maps, experiment, estimator="TT+TE+EE", lmax_L=300, nthreads=2)
+    assert result.estimator == "TT+TE+EE" and set(result.unnormalised) == {"TT", "TE", "EE"}
+    phi = harmonics.truncate_alm(sky.phi_alm, 300, sky.lmax_unlensed)
+    edges = np.array([20, 50, 100, 150, 200, 300])
+    n0 = result.n0["gradient"]
+    input_power = cross_spectrum(phi)
+    ratio = binned_ratios(cross_spectrum(result.phi_alm, phi), input_power, edges)
+    sigma = cross_sigma(n0, input_power, edges)
+    for k in range(len(edges) - 1):
+        assert abs(ratio[k] - 1.0) <= 3 * sigma[k] + 0.01, (edges[k], ratio[k], sigma[k])

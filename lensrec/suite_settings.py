@@ -12,6 +12,7 @@ import os
 import numpy as np
 
 from ._checks import as_float, as_int, check_lmax_for_nside, check_nside
+from .labels import COMBINED_ESTIMATORS, PAIR_ESTIMATORS, is_symmetric
 
 __all__ = ["lensing_suite_settings", "estimate_key"]
 
@@ -20,8 +21,10 @@ SUITE_FORMAT = 1
 SUITE_FILE = "suite.json"
 STAGES = ("data", "simulations", "pairs")
 COMPONENTS = ("gradient", "curl")
-ESTIMATORS = ("TT", "TE", "EE", "TB", "EB", "MV")
-SYMMETRIC_ESTIMATORS = ("TT", "EE")  # φ̂[a, b] = φ̂[b, a] (lensrec.reconstruction, leg order)
+# every pair estimator and every combination of them (lensrec.labels); joint estimators need joint filters
+ESTIMATORS = PAIR_ESTIMATORS + tuple(COMBINED_ESTIMATORS)
+# φ̂[a, b] = φ̂[b, a] (lensrec.reconstruction, leg order)
+SYMMETRIC_ESTIMATORS = tuple(label for label in PAIR_ESTIMATORS if is_symmetric(label))
 MIN_SIMS = 4  # RDN0 needs two data × sim and two sim × sim pairs; each simulation's half-split needs two others
 DEFAULT_LMAX_MARGIN = 1000
 
@@ -93,7 +96,8 @@ def lensing_suite_settings(
     lmax_L : int, optional
         Highest lensing multipole (default and maximum: the capped CMB ℓ_max).
     estimators : str or sequence of str
-        Labels from "TT", "TE", "EE", "TB", "EB", "MV" (default "MV"); "TT,EB" works too.
+        Labels of pair or combined estimators (:data:`lensrec.labels.PAIR_ESTIMATORS`,
+        :data:`lensrec.labels.COMBINED_ESTIMATORS`: "TT", …, "MV", "TT+TE+EE"; default "MV"); "TT,EB" works too.
     n_sims : int
         Number of simulations (≥ 4); may grow later without recomputing anything.
     seed : int

@@ -382,3 +382,20 @@ def test_a_masked_suite_with_user_maps_as_data(tmp_path):
     write_maps(tmp_path / "mask.fits", np.clip(mask + 0.01, 0, 1), force=True)
     with pytest.raises(ValueError, match="changed since the suite was set up"):
         run_lensing_suite(dict(settings, n_sims=5), tmp_path / "suite", progress=False)
+
+
+def test_suites_reconstruct_the_b_free_combination_without_b_modes(tiny_serial):
+    # TT+TE+EE combines only estimators built on T and E (lensrec.labels): zeroing the filtered B modes leaves
+    # its estimate unchanged to the last bit, while MV (which holds EB and TB) changes.
+    from lensrec.suites import _context, _fields_from_alm, _reconstruct
+
+    settings = dict(tiny_serial.settings, role="simulation")
+    context = _context(settings)
+    stored = np.array(tiny_serial.simulation(0)["filtered"])
+    no_b = stored.copy()
+    no_b[2] = 0.0
+    a, a_no_b = (_fields_from_alm(x, context, settings) for x in (stored, no_b))
+    for label, unchanged in (("TT+TE+EE", True), ("MV", False)):
+        full = _reconstruct(a, a, label, context, settings)["gradient"]
+        cut = _reconstruct(a_no_b, a_no_b, label, context, settings)["gradient"]
+        assert np.array_equal(full, cut) is unchanged, label

@@ -20,6 +20,7 @@ from .lensed_spectra import delensed_spectra, first_order_lensed_bb, lensed_cmb_
 from .lensing_templates import lensing_b_template
 from .masks import apodize_binary_mask, cap_mask, latitude_mask, load_mask, sky_fraction_moments
 from .mean_field_average import MeanField, mean_field
+from .optimal_filter import ConvergenceError, OptimalFilter
 from .pixel_noise import PixelNoise, pixel_window
 from .power import auto_spectrum, bin_spectrum, binned_cross_spectrum, cross_spectrum, mask_corrected
 from .reconstruction import Reconstruction, reconstruct, reconstruct_filtered
@@ -97,6 +98,8 @@ __all__ = [
     "FieldFilter",
     "FilteredFields",
     "IsotropicFilter",
+    "OptimalFilter",
+    "ConvergenceError",
     "Reconstruction",
     "MeanField",
     "reconstruct",

@@ -30,6 +30,11 @@ which is normalised for exactly this filter; :attr:`FilteredFields.joint` record
 the estimators refuse fields filtered the other way. This is the seam a conjugate-gradient filter of the
 full pixel covariance plugs into: it too returns C⁻¹-filtered T̄, Ē, B̄ with ``joint=True``.
 
+Optimal filter (:class:`lensrec.optimal_filter.OptimalFilter`): the conjugate-gradient solution of
+(S⁻¹ + Bᵀ Yᵀ N⁻¹ Y B) x̂ = Bᵀ Yᵀ N⁻¹ d for masked skies with a per-pixel noise variance, returning
+X̄ = S⁻¹ x̂ in this same container (joint or per field); on a full sky with uniform noise it reduces to
+the isotropic filter above.
+
 Wiener filter: :meth:`FilteredFields.wiener` returns C^XX · X̄ (lensed C^XX), which for this diagonal
 filter is the Wiener-filtered field C^XX/(C^XX + N^XX) · X of each field separately (the TE correlation is
 not used: e.g. the Wiener-filtered E does not borrow from T). That is the E-mode template delensing

@@ -56,7 +56,7 @@ from .wiener_filters import _coefficients
 
 __all__ = ["TEMPLATE_METHODS", "lensing_b_template"]
 
-TEMPLATE_METHODS = ("remap", "first_order")
+TEMPLATE_METHODS = ("remap", "first_order", "remap_delensed_e")
 
 
 def _check_method(method) -> str:
@@ -80,10 +80,13 @@ def lensing_b_template(
     lmax : int
         Band limit of the template, 2 ≤ lmax ≤ ℓ_max^E (B modes above the E band limit would miss most of
         their sources).
-    method : {"remap", "first_order"}
+    method : {"remap", "first_order", "remap_delensed_e"}
         ``"remap"`` (default): exact remapping of (E, B = 0) by ∇φ with the simulations' great-circle
         remapping and parallel transport (:func:`lensrec.remapping.lens_alm`), keeping the B part. ``"first_order"``:
-        B part of ∇φ·∇P (see the module docstring for the derivation and signs).
+        B part of ∇φ·∇P (see the module docstring for the derivation and signs). ``"remap_delensed_e"``: the
+        E modes are first delensed (remapped by −φ, E part kept), then remapped by φ: the observed E is
+        already lensed, and remapping it again lenses it twice (Baleato Lizancos, Challinor & Carron 2021,
+        PRD 103, 023518).
     epsilon : float, default 1e-7
         Accuracy of the non-uniform synthesis at the displaced points (``"remap"`` only).
     nthreads : int, optional
@@ -143,6 +146,14 @@ def lensing_b_template(
         raise ValueError(f"phi_alm must reach L >= 1, got L_max = {lmax_phi}")
     epsilon = as_float(epsilon, "epsilon", minimum=2e-13, maximum=0.1)
     nthreads = resolve_nthreads(nthreads)
+    if method == "remap_delensed_e":
+        # the observed E is lensed: undo its lensing first (remapping by -phi, the inverse to first order in
+        # phi; Baleato Lizancos, Challinor & Carron 2021, PRD 103, 023518), keep the E part, then remap forward
+        fields = np.zeros((2, e_alm.size), dtype=np.complex128)
+        fields[0] = e_alm
+        delensed = lens_alm(fields, -phi_alm, lmax_e, spin=2, lmax_in=lmax_e, epsilon=epsilon, nthreads=nthreads)
+        e_alm = delensed[0]
+        method = "remap"
     if method == "remap":
         fields = np.zeros((2, e_alm.size), dtype=np.complex128)
         fields[0] = e_alm

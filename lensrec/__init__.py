@@ -9,7 +9,7 @@ from __future__ import annotations
 from ._version import __version__
 from .analytic_n1 import AnalyticN1, analytic_n1
 from .bandpowers import LensingBandpowers, lensing_bandpowers
-from .delensing import DelensingResult, delens, delensing_spectra
+from .delensing import DelensingResult, delens, delens_maps, delensing_spectra
 from .estimator_engine import quadratic_estimates
 from .estimator_noise import ReconstructionNoise, reconstruction_noise
 from .experiment import Experiment, available_experiments, load_experiment
@@ -23,8 +23,8 @@ from .mean_field_average import MeanField, mean_field
 from .optimal_filter import ConvergenceError, OptimalFilter
 from .pixel_noise import PixelNoise, pixel_window
 from .power import auto_spectrum, bin_spectrum, binned_cross_spectrum, cross_spectrum, mask_corrected
-from .reconstruction import Reconstruction, reconstruct, reconstruct_filtered
-from .remapping import deflection_maps, lens_alm, lens_tqu_alm
+from .reconstruction import InputComparison, Reconstruction, compare_with_input, reconstruct, reconstruct_filtered
+from .remapping import deflection_maps, kappa_map, lens_alm, lens_tqu_alm
 from .report_bandpowers import bias_budget_table, plot_bias_budget
 from .sky import SimulatedSky, simulate_sky
 from .spectra import Spectra, fiducial_spectra, spectra_from_camb
@@ -56,6 +56,7 @@ __all__ = [
     "lens_alm",
     "lens_tqu_alm",
     "deflection_maps",
+    "kappa_map",
     "apodize_binary_mask",
     "cap_mask",
     "latitude_mask",
@@ -93,6 +94,7 @@ __all__ = [
     "DelensingResult",
     "lensing_b_template",
     "delens",
+    "delens_maps",
     "delensing_spectra",
     "wiener_filter_phi",
     "FieldFilter",
@@ -104,6 +106,8 @@ __all__ = [
     "MeanField",
     "reconstruct",
     "reconstruct_filtered",
+    "InputComparison",
+    "compare_with_input",
     "quadratic_estimates",
     "mean_field",
     "cross_spectrum",

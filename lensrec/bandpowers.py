@@ -54,7 +54,7 @@ from .biases import (
     normalisation_correction,
     realization_dependent_n0,
 )
-from .power import cross_spectrum, mask_corrected, mask_moment_order
+from .power import bin_spectrum, binning_matrix, cross_spectrum, mask_corrected, mask_moment_order
 
 __all__ = [
     "Binning",
@@ -74,11 +74,6 @@ TERM_LABELS = {
     "n1": "MC-N1",
     "analytic_n0": "analytic N0",
 }
-
-
-def _lensing_factor(L: np.ndarray) -> np.ndarray:
-    L = L.astype(np.float64)
-    return (L * (L + 1.0)) ** 2 / (2.0 * np.pi)
 
 
 # --------------------------------------------------------------------------------------------- binning
@@ -125,28 +120,19 @@ class Binning:
     @property
     def L_eff(self) -> np.ndarray:
         """(2L+1)-weighted mean L of each bin."""
-        out = []
-        for lo, hi in zip(self.edges[:-1], self.edges[1:], strict=True):
-            L = np.arange(lo, hi)
-            out.append(float(np.sum((2 * L + 1) * L) / np.sum(2 * L + 1)))
-        return np.array(out)
+        return binning_matrix(self.edges, self.lmax_L + 1, weights="modes") @ np.arange(self.lmax_L + 1.0)
 
     def matrix(self, lmax_L: int | None = None) -> np.ndarray:
-        """(n_bins, lmax_L + 1) matrix taking raw C_L to binned [L(L+1)]² C_L/2π."""
+        """(n_bins, lmax_L + 1) matrix taking raw C_L to binned [L(L+1)]² C_L/2π (:func:`lensrec.power.binning_matrix`)."""
         lmax_L = self.lmax_L if lmax_L is None else as_int(lmax_L, "lmax_L", minimum=self.lmax_L)
-        out = np.zeros((self.n_bins, lmax_L + 1))
-        L = np.arange(lmax_L + 1)
-        for b, (lo, hi) in enumerate(zip(self.edges[:-1], self.edges[1:], strict=True)):
-            weights = 2.0 * L[lo:hi] + 1.0
-            out[b, lo:hi] = weights / weights.sum() * _lensing_factor(L[lo:hi])
-        return out
+        return binning_matrix(self.edges, lmax_L + 1, weights="modes", scale="lensing")
 
     def bin(self, spectrum) -> np.ndarray:
-        """Binned [L(L+1)]² C_L/2π of raw spectra (last axis L = 0 … ≥ lmax_L)."""
+        """Binned [L(L+1)]² C_L/2π of raw spectra (last axis L = 0 … ≥ lmax_L; :func:`lensrec.power.bin_spectrum`)."""
         spectrum = np.asarray(spectrum, dtype=np.float64)
         if spectrum.shape[-1] < self.lmax_L + 1:
             raise ValueError(f"spectrum has {spectrum.shape[-1]} multipoles but the bins reach L = {self.lmax_L}")
-        return spectrum[..., : self.lmax_L + 1] @ self.matrix().T
+        return bin_spectrum(spectrum[..., : self.lmax_L + 1], self.edges, weights="modes", scale="lensing")[1]
 
 
 def default_binning(lmax_L: int, L_min: int = 8, n_bins: int = 8) -> Binning:
@@ -347,7 +333,8 @@ def lensing_bandpowers(
     Namikawa, Hanson & Takahashi 2013, MNRAS 431, 609 (RDN0); Kesden, Cooray & Kamionkowski 2003, PRD 67,
     123507 (N1); Hartlap, Simon & Schneider 2007, A&A 464, 399 (inverse sample covariance).
     """
-    from .suites import COMPONENTS, LensingSuite, _context, estimate_key, open_lensing_suite
+    from .suite_tasks import suite_analytic_n0, suite_spectra
+    from .suites import COMPONENTS, LensingSuite, estimate_key, open_lensing_suite
 
     if not isinstance(suite, LensingSuite):
         suite = open_lensing_suite(suite)
@@ -417,13 +404,12 @@ def lensing_bandpowers(
         shared, independent = np.array(shared), np.array(independent)
         binned["n1"] = monte_carlo_n1(shared @ matrix.T, independent @ matrix.T)
         unbinned["n1"] = monte_carlo_n1(shared, independent).value
-    context = _context(settings)
-    analytic = np.nan_to_num(np.asarray(context.noise.n0[estimator][component])[: lmax_L + 1], nan=0.0)
+    analytic = np.nan_to_num(suite_analytic_n0(settings, estimator, component)[: lmax_L + 1], nan=0.0)
     unbinned["analytic_n0"] = analytic
     unbinned["mean_field"] = mf_power
     unbinned["raw"] = raw_data
 
-    spectra = context.spectra
+    spectra = suite_spectra(settings)
     has_signal = component == "gradient" and bool(settings.get("lensing", True))
     if has_signal:
         theory_unbinned = np.array(spectra.phi[: lmax_L + 1])

@@ -69,6 +69,7 @@ __all__ = [
     "template_inputs",
     "lensing_b_template",
     "delens",
+    "delens_maps",
     "delensing_spectra",
     "delensing_efficiency",
     "measured_alens_residual",
@@ -447,3 +448,102 @@ def delens(
     return delensing_spectra(
         observed, template, noise_bb=noise_bb, lensed_bb=lensed_bb, ell_min=ell_min, ell_max=ell_max, method=method
     )
+
+
+# -------------------------------------------------------------------------------------------- recipe
+def delens_maps(
+    maps,
+    reconstruction,
+    experiment,
+    spectra=None,
+    n0=None,
+    lmax: int | None = None,
+    method: str = "remap",
+    mask=None,
+    ell_min: int | None = None,
+    ell_max: int | None = None,
+    epsilon: float = DEFAULT_EPSILON,
+    nthreads: int | None = None,
+    progress=None,
+) -> DelensingResult:
+    """Delens observed maps with a lensing reconstruction: the whole recipe from maps to residual spectra.
+
+    Steps: the Wiener-filtered E and the beam-deconvolved observed B of the maps (:func:`template_inputs`),
+    the Wiener-filtered φ̂ (:func:`wiener_filter_phi`, C^φφ/(C^φφ + N0)), the lensing B template
+    (:func:`lensing_b_template`), then the residual spectra, the efficiency per ℓ and A_lens^res
+    (:func:`delensing_spectra`) with the experiment's B-mode noise power subtracted and the lensed BB of
+    ``spectra`` as the reference. This is what ``lensrec delens``, the demo and the workbench run.
+
+    Parameters
+    ----------
+    maps : array, shape (3, 12·nside²)
+        Observed T, Q, U (µK, RING).
+    reconstruction : Reconstruction or complex array
+        The lensing reconstruction (its ``phi_alm`` and gradient N0 are used), or normalised φ̂_LM with
+        ``n0`` given.
+    experiment : Experiment or str
+        The experiment the maps were observed with (filter, beam, B-mode noise).
+    spectra : Spectra, optional
+        Theory spectra (filters, lensed BB); default the fiducial cosmology.
+    n0 : array, optional
+        Gaussian N0 of φ̂ per L (needed when ``reconstruction`` is an array; default its ``n0["gradient"]``).
+    lmax : int, optional
+        Band limit of E, B and the template; default min(3·nside − 1, ℓ_max of polarization).
+    method : {"remap", "first_order"}
+        Template method (:func:`lensing_b_template`).
+    mask : array, optional
+        Weights applied to the maps before filtering (:func:`template_inputs`).
+    ell_min, ell_max : int, optional
+        Range of A_lens^res (:func:`delensing_spectra`).
+    epsilon : float
+        Accuracy of the remapping's non-uniform synthesis.
+    nthreads : int, optional
+    progress : callable, optional
+        ``progress(fraction, message)`` before each step.
+
+    Returns
+    -------
+    DelensingResult
+
+    Notes
+    -----
+    .. warning:: If φ̂ was reconstructed from these same B modes (EB, TB, MV, GMV), the measured residual,
+       efficiency and A_lens^res are biased low (delensing bias; module docstring and ``result.notes``).
+
+    References
+    ----------
+    Smith, Hanson, LoVerde, Hirata & Zahn 2012, JCAP 06, 014 (Wiener-filtered templates and their residual).
+    """
+    from .experiment import load_experiment
+    from .spectra import fiducial_spectra
+
+    report = progress if progress is not None else (lambda fraction, message: None)
+    experiment = load_experiment(experiment)
+    spectra = fiducial_spectra() if spectra is None else spectra
+    if hasattr(reconstruction, "phi_alm"):
+        phi_alm = reconstruction.phi_alm
+        n0 = reconstruction.n0["gradient"] if n0 is None else n0
+    else:
+        phi_alm = reconstruction
+        if n0 is None:
+            raise ValueError("n0 is needed when the reconstruction is given as phi_alm alone (its Gaussian N0 per L)")
+    report(0.05, "Wiener-filtered E and observed B of the maps")
+    e_wiener, b_observed, fields = template_inputs(maps, experiment, spectra, lmax=lmax, mask=mask, nthreads=nthreads)
+    lmax = fields.lmax
+    phi_wiener = wiener_filter_phi(phi_alm, n0, spectra.phi)
+    report(0.3, f"lensing B template ({method})")
+    result = delens(
+        b_observed,
+        e_wiener,
+        phi_wiener,
+        lmax,
+        method=method,
+        noise_bb=experiment.noise_spectrum("B", lmax),
+        lensed_bb=spectra.lensed["BB"],
+        ell_min=ell_min,
+        ell_max=ell_max,
+        epsilon=epsilon,
+        nthreads=nthreads,
+    )
+    report(1.0, "delensed spectra")
+    return result

@@ -37,6 +37,8 @@ __all__ = [
     "cross_spectrum",
     "auto_spectrum",
     "bin_spectrum",
+    "binning_matrix",
+    "spectrum_scale",
     "binned_cross_spectrum",
     "mask_moment_order",
     "mask_corrected",
@@ -133,57 +135,139 @@ def _check_edges(edges, size: int) -> np.ndarray:
     return values
 
 
-def bin_spectrum(cl, edges, weights=None) -> tuple[np.ndarray, np.ndarray]:
-    """Average a spectrum in bins [edges[i], edges[i+1]) (half-open, integer ℓ).
+def spectrum_scale(scale, size: int) -> np.ndarray:
+    """The per-ℓ factor f_ℓ of a plotted quantity f_ℓ C_ℓ, for ℓ = 0 … size − 1.
+
+    ``None``: 1 (C_ℓ itself); ``"cmb"``: ℓ(ℓ+1)/2π (D_ℓ); ``"lensing"``: [L(L+1)]²/2π (the lensing-potential
+    convention); or an array of ``size`` finite factors.
+
+    Examples
+    --------
+    >>> spectrum_scale("lensing", 3).round(4).tolist()
+    [0.0, 0.6366, 5.7296]
+    """
+    ell = np.arange(size, dtype=np.float64)
+    if scale is None:
+        return np.ones(size)
+    if isinstance(scale, str):
+        if scale == "cmb":
+            return ell * (ell + 1.0) / (2.0 * np.pi)
+        if scale == "lensing":
+            return (ell * (ell + 1.0)) ** 2 / (2.0 * np.pi)
+        raise ValueError(f"scale must be None, 'cmb', 'lensing' or an array of factors, got {scale!r}")
+    factor = as_finite_array(scale, "scale", ndim=1)
+    if factor.size != size:
+        raise ValueError(f"scale must have one factor per multipole ({size}), got {factor.size}")
+    return factor
+
+
+def _bin_weights(weights, size: int) -> np.ndarray:
+    if weights is None:
+        return np.ones(size)
+    if isinstance(weights, str):
+        if weights == "modes":
+            return 2.0 * np.arange(size) + 1.0
+        raise ValueError(f"weights must be None, 'modes' or an array of per-l weights, got {weights!r}")
+    w = as_finite_array(weights, "weights", ndim=1)
+    if w.size != size:
+        raise ValueError(f"weights must have the length of cl ({size}), got {w.size}")
+    if np.any(w < 0):
+        raise ValueError(f"weights must be non-negative, found {w.min():.3g}")
+    return w
+
+
+def binning_matrix(edges, size: int, weights=None, scale=None) -> np.ndarray:
+    """(n_bins, size) matrix B with B @ C = the binned f_ℓ C_ℓ: rows w_ℓ f_ℓ / Σ_bin w_ℓ inside each bin.
+
+    The same weights as :func:`bin_spectrum` (use that for data with NaN entries); a bin of zero total
+    weight has a zero row.
+
+    Examples
+    --------
+    >>> binning_matrix([2, 4], 5, weights="modes").round(3).tolist()
+    [[0.0, 0.0, 0.417, 0.583, 0.0]]
+    """
+    size = as_int(size, "size", minimum=1)
+    edges = _check_edges(edges, size)
+    indicator = _bin_indicator(edges, size) * _bin_weights(weights, size)
+    totals = indicator.sum(axis=1, keepdims=True)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        rows = np.where(totals > 0, indicator / totals, 0.0)
+    return rows * spectrum_scale(scale, size)
+
+
+def _bin_indicator(edges: np.ndarray, size: int) -> np.ndarray:
+    ell = np.arange(size)
+    return ((ell >= edges[:-1, None]) & (ell < edges[1:, None])).astype(np.float64)
+
+
+def bin_spectrum(cl, edges, weights=None, scale=None, skip_nan: bool = False) -> tuple[np.ndarray, np.ndarray]:
+    """Bin a spectrum, or the plotted quantity f_ℓ C_ℓ, in bins [edges[i], edges[i+1]) (half-open, integer ℓ).
+
+    This is lensrec's one binning rule, for data and theory alike: bin exactly the quantity that is plotted
+    (``scale``), weighted within the bin, so a binned theory curve is comparable with binned data. Binning C_ℓ
+    and multiplying by the factor of the bin centre instead overshoots wherever the factor varies across the
+    bin (for [L(L+1)]² C_L^φφ/2π over L = 2–33 by more than an order of magnitude).
 
     Parameters
     ----------
-    cl : array, shape (lmax + 1,)
-        Spectrum indexed by ℓ from 0.
+    cl : array, shape (..., lmax + 1)
+        Spectra indexed by ℓ from 0 along the last axis. NaN marks undefined entries.
     edges : sequence of int
         Strictly increasing bin edges in [0, lmax + 1]; bin i holds edges[i] ≤ ℓ < edges[i+1].
-    weights : array, shape (lmax + 1,), optional
-        Non-negative per-ℓ weights (default: uniform). E.g. 2ℓ+1 for a mode-count average.
+    weights : {None, "modes"} or array, shape (lmax + 1,), optional
+        Non-negative per-ℓ weights w_ℓ: uniform (default), "modes" for 2ℓ + 1, or an array.
+    scale : {None, "cmb", "lensing"} or array, optional
+        The factor f_ℓ of the binned quantity (:func:`spectrum_scale`): C_ℓ (default), D_ℓ = ℓ(ℓ+1)C_ℓ/2π or
+        [L(L+1)]² C_L/2π.
+    skip_nan : bool
+        Leave NaN entries out of their bin (its weights renormalised) instead of making the bin NaN.
 
     Returns
     -------
-    centres : ndarray
-        Weighted mean ℓ of each bin.
-    values : ndarray
-        Σ w_ℓ C_ℓ / Σ w_ℓ in each bin (NaN where a bin has zero total weight or a NaN entry).
+    centres : ndarray, shape (n_bins,)
+        Weighted mean ℓ of each bin (of its finite entries, for one spectrum with ``skip_nan``).
+    values : ndarray, shape (..., n_bins)
+        Σ w_ℓ f_ℓ C_ℓ / Σ w_ℓ in each bin; NaN where a bin has zero total weight, or holds a NaN entry
+        (unless ``skip_nan``).
 
     Examples
     --------
     >>> centres, values = bin_spectrum([0.0, 1.0, 2.0, 3.0, 4.0], [1, 3, 5])
     >>> centres.tolist(), values.tolist()
     ([1.5, 3.5], [1.5, 3.5])
+    >>> bin_spectrum([0.0, 1.0, float("nan"), 3.0], [1, 4], skip_nan=True)[1].tolist()
+    [2.0]
     """
     values = np.asarray(cl, dtype=np.float64)
-    if values.ndim != 1:
-        raise ValueError(f"cl must be one-dimensional, got shape {values.shape}")
+    if values.ndim < 1 or values.shape[-1] == 0:
+        raise ValueError(f"cl must hold at least one multipole along its last axis, got shape {values.shape}")
     if np.any(np.isinf(values)):
         raise ValueError("cl contains infinite values; mask them (NaN marks undefined entries)")
-    edges = _check_edges(edges, values.size)
-    if weights is None:
-        w = np.ones(values.size)
-    else:
-        w = as_finite_array(weights, "weights", ndim=1)
-        if w.size != values.size:
-            raise ValueError(f"weights must have the length of cl ({values.size}), got {w.size}")
-        if np.any(w < 0):
-            raise ValueError(f"weights must be non-negative, found {w.min():.3g}")
-    ell = np.arange(values.size, dtype=np.float64)
-    centres, out = [], []
-    for low, high in zip(edges[:-1], edges[1:], strict=True):
-        part = slice(low, high)
-        total = w[part].sum()
-        if total == 0:
-            centres.append(0.5 * (low + high - 1))
-            out.append(np.nan)
-            continue
-        centres.append(float(np.sum(w[part] * ell[part]) / total))
-        out.append(float(np.sum(w[part] * values[part]) / total))
-    return np.array(centres), np.array(out)
+    size = values.shape[-1]
+    edges = _check_edges(edges, size)
+    weighted = _bin_indicator(edges, size) * _bin_weights(weights, size)
+    factor = spectrum_scale(scale, size)
+    ell = np.arange(size, dtype=np.float64)
+    finite = ~np.isnan(values)
+    totals = (
+        finite.astype(np.float64) @ weighted.T
+        if skip_nan
+        else np.broadcast_to(weighted.sum(axis=1), values.shape[:-1] + (len(edges) - 1,))
+    )
+    with np.errstate(invalid="ignore", divide="ignore"):
+        out = (np.where(finite, values * factor, 0.0) @ weighted.T) / totals
+        if skip_nan and values.ndim == 1:
+            centres = (finite * ell) @ weighted.T / totals
+        else:
+            all_weights = weighted.sum(axis=1)
+            centres = (weighted @ ell) / all_weights
+    out = np.where(totals > 0, out, np.nan)
+    if not skip_nan:
+        out = np.where((~finite).astype(np.float64) @ (weighted > 0).T > 0, np.nan, out)
+    middle = 0.5 * (edges[:-1] + edges[1:] - 1)
+    centres = np.where(np.isfinite(centres), centres, middle)
+    return np.asarray(centres, dtype=np.float64), out
 
 
 def binned_cross_spectrum(alm1, alm2, edges, lmax: int | None = None, weights=None):

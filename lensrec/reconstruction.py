@@ -50,6 +50,8 @@ __all__ = [
     "quadratic_estimates",
     "reconstruct_filtered",
     "reconstruct",
+    "InputComparison",
+    "compare_with_input",
     "mean_field",
 ]
 
@@ -384,4 +386,92 @@ def reconstruct(
         mean_field=mean_field,
         lensed_weights=lensed_weights,
         nthreads=nthreads,
+    )
+
+
+# --------------------------------------------------------------------------------------- validation
+@dataclass(frozen=True, eq=False)
+class InputComparison:
+    """Spectra of a reconstruction of a simulation beside its input φ (per L, mask moments applied).
+
+    Attributes
+    ----------
+    L : ndarray
+        0 … lmax_L.
+    cross, input_auto, auto, curl_auto : ndarray
+        C_L of φ̂ × φ (÷ ⟨w²⟩ on a masked sky), of the input φ, of φ̂ (÷ ⟨w⁴⟩) and of the curl Ω̂ (÷ ⟨w⁴⟩).
+    n0, curl_n0 : ndarray
+        The reconstruction's analytic Gaussian N0 of φ̂ and Ω̂ (NaN below L = 2).
+    """
+
+    L: np.ndarray
+    cross: np.ndarray
+    input_auto: np.ndarray
+    auto: np.ndarray
+    curl_auto: np.ndarray
+    n0: np.ndarray
+    curl_n0: np.ndarray
+
+    @property
+    def cross_over_input(self) -> np.ndarray:
+        """The response check C_L^{φ̂φ} / C_L^{φφ}: one for a unit-response estimate (NaN where C^φφ = 0)."""
+        return np.divide(self.cross, self.input_auto, out=np.full_like(self.cross, np.nan), where=self.input_auto > 0)
+
+    @property
+    def auto_minus_n0(self) -> np.ndarray:
+        """C_L^{φ̂φ̂} − N0_L: the input power plus N1 and the scatter of one realisation."""
+        return self.auto - self.n0
+
+    @property
+    def curl_over_n0(self) -> np.ndarray:
+        """The curl null test C_L^{Ω̂Ω̂} / N0^curl_L: one without a curl signal (NaN below L = 2)."""
+        return self.curl_auto / self.curl_n0
+
+    def mode_weighted_response(self, L_min: int, L_max: int) -> float:
+        """Σ (2L+1) C^{φ̂φ} / Σ (2L+1) C^{φφ} over [L_min, L_max]: one number for the response check."""
+        L_min = as_int(L_min, "L_min", minimum=2)
+        L_max = as_int(L_max, "L_max", minimum=L_min, maximum=int(self.L[-1]))
+        modes = 2.0 * self.L[L_min : L_max + 1] + 1.0
+        return float(np.sum(modes * self.cross[L_min : L_max + 1]) / np.sum(modes * self.input_auto[L_min : L_max + 1]))
+
+
+def compare_with_input(reconstruction: Reconstruction, phi_alm) -> InputComparison:
+    """Spectra that validate a reconstruction of a simulation against the simulation's input φ.
+
+    On a masked sky each spectrum is divided by the mask moment its fields carry (:mod:`lensrec.power`:
+    ⟨w²⟩ for the estimate × the unmasked input, ⟨w⁴⟩ for the estimate's auto-spectra; Hivon et al. 2002,
+    ApJ 567, 2). The input is cut to the reconstruction's lmax_L.
+
+    Parameters
+    ----------
+    reconstruction : Reconstruction
+    phi_alm : complex array
+        The input lensing potential of the simulation (e.g. ``SimulatedSky.phi_alm``), reaching lmax_L.
+
+    Returns
+    -------
+    InputComparison
+    """
+    from .harmonics import lmax_from_nalm, truncate_alm
+    from .power import auto_spectrum, cross_spectrum, mask_corrected, mask_moment_order
+
+    if not isinstance(reconstruction, Reconstruction):
+        raise TypeError(f"reconstruction must be a Reconstruction, got {type(reconstruction).__name__}")
+    lmax_L = reconstruction.lmax_L
+    phi_alm = np.asarray(phi_alm, dtype=np.complex128)
+    lmax_input = lmax_from_nalm(phi_alm.size, "phi_alm")
+    if lmax_input < lmax_L:
+        raise ValueError(f"phi_alm reaches L = {lmax_input}, below the reconstruction's lmax_L = {lmax_L}")
+    phi_input = truncate_alm(phi_alm, lmax_L, lmax_input)
+    moments = reconstruction.mask_moments
+    to_input = mask_moment_order("estimate", "input")
+    to_itself = mask_moment_order("estimate", "estimate")
+    return InputComparison(
+        L=np.arange(lmax_L + 1),
+        cross=mask_corrected(cross_spectrum(reconstruction.phi_alm, phi_input, lmax_L), moments, to_input),
+        input_auto=auto_spectrum(phi_input, lmax_L),
+        auto=mask_corrected(auto_spectrum(reconstruction.phi_alm, lmax_L), moments, to_itself),
+        curl_auto=mask_corrected(auto_spectrum(reconstruction.curl_alm, lmax_L), moments, to_itself),
+        n0=np.asarray(reconstruction.n0["gradient"], dtype=np.float64),
+        curl_n0=np.asarray(reconstruction.n0["curl"], dtype=np.float64),
     )

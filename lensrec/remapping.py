@@ -28,7 +28,7 @@ from . import harmonics
 from ._checks import as_finite_array, as_float, as_int, check_lmax_for_nside, check_nside, resolve_nthreads
 from .harmonics import GLGrid, ell_of_alm, gl_grid_for_band_limits, nalm, truncate_alm
 
-__all__ = ["DeflectionMaps", "lens_alm", "lens_tqu_alm", "deflection_maps", "lensing_grid"]
+__all__ = ["DeflectionMaps", "lens_alm", "lens_tqu_alm", "deflection_maps", "kappa_map", "lensing_grid"]
 
 ARCMIN = math.pi / 10800.0
 DEFAULT_EPSILON = 1e-7
@@ -423,6 +423,18 @@ def deflection_maps(phi_alm, nside: int, lmax: int | None = None, nthreads: int 
     >>> bool(np.all(maps.d_theta <= 0))
     True
     """
+    phi, nside, lmax = _phi_for_maps(phi_alm, nside, lmax)
+    ell = ell_of_alm(lmax).astype(np.float64)
+    gradient = np.zeros((2, nalm(lmax)), dtype=np.complex128)
+    gradient[0] = phi * np.sqrt(ell * (ell + 1.0))
+    d = harmonics.alm2map(gradient, nside, lmax, spin=1, nthreads=nthreads)
+    kappa = _kappa_from_phi(phi, nside, lmax, nthreads)
+    magnitude = np.hypot(d[0], d[1]) / ARCMIN
+    return DeflectionMaps(d_theta=d[0], d_phi=d[1], magnitude_arcmin=magnitude, kappa=kappa)
+
+
+def _phi_for_maps(phi_alm, nside, lmax):
+    """φ truncated to the map band limit (default min(lmax_phi, 3·nside − 1)), with nside and lmax checked."""
     phi_alm, _, lmax_phi = _check_lensing_inputs(phi_alm, None, None)
     nside = check_nside(nside)
     if lmax is None:
@@ -430,11 +442,40 @@ def deflection_maps(phi_alm, nside: int, lmax: int | None = None, nthreads: int 
     lmax = check_lmax_for_nside(lmax, nside)
     if lmax > lmax_phi:
         raise ValueError(f"lmax={lmax} exceeds the band limit of phi_alm ({lmax_phi})")
-    phi = truncate_alm(phi_alm, lmax, lmax_phi)
+    return truncate_alm(phi_alm, lmax, lmax_phi), nside, lmax
+
+
+def _kappa_from_phi(phi: np.ndarray, nside: int, lmax: int, nthreads) -> np.ndarray:
     ell = ell_of_alm(lmax).astype(np.float64)
-    gradient = np.zeros((2, nalm(lmax)), dtype=np.complex128)
-    gradient[0] = phi * np.sqrt(ell * (ell + 1.0))
-    d = harmonics.alm2map(gradient, nside, lmax, spin=1, nthreads=nthreads)
-    kappa = harmonics.alm2map(phi * (0.5 * ell * (ell + 1.0)), nside, lmax, nthreads=nthreads)
-    magnitude = np.hypot(d[0], d[1]) / ARCMIN
-    return DeflectionMaps(d_theta=d[0], d_phi=d[1], magnitude_arcmin=magnitude, kappa=kappa)
+    return harmonics.alm2map(phi * (0.5 * ell * (ell + 1.0)), nside, lmax, nthreads=nthreads)
+
+
+def kappa_map(phi_alm, nside: int, lmax: int | None = None, nthreads: int | None = None) -> np.ndarray:
+    """Map of the convergence κ = −∇²φ/2, i.e. κ_LM = L(L+1) φ_LM / 2 (dimensionless, HEALPix RING).
+
+    The one way lensrec makes a κ map (:func:`deflection_maps` returns the same map beside the deflection).
+
+    Parameters
+    ----------
+    phi_alm : complex array, shape (nalm(lmax_phi),)
+        Lensing potential, e.g. an input φ or a Wiener-filtered reconstruction.
+    nside : int
+    lmax : int, optional
+        Highest L kept (default min(lmax_phi, 3·nside − 1)); higher multipoles of φ are dropped, e.g. to
+        show only the large scales.
+    nthreads : int, optional
+
+    Returns
+    -------
+    numpy.ndarray, shape (12·nside²,)
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from lensrec.harmonics import nalm
+    >>> phi = np.zeros(nalm(8), complex); phi[1] = 1e-3   # L = 1, M = 0: kappa_10 = phi_10
+    >>> bool(np.allclose(kappa_map(phi, 4, nthreads=1), kappa_map(2 * phi, 4, nthreads=1) / 2))
+    True
+    """
+    phi, nside, lmax = _phi_for_maps(phi_alm, nside, lmax)
+    return _kappa_from_phi(phi, nside, lmax, nthreads)

@@ -9,7 +9,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from .bandpowers import TERM_LABELS, LensingBandpowers, _lensing_factor, bias_budget
+from .bandpowers import TERM_LABELS, LensingBandpowers, bias_budget
+from .power import spectrum_scale
 
 __all__ = ["bias_budget_table", "plot_bias_budget", "write_bias_report"]
 
@@ -80,7 +81,7 @@ def plot_bias_budget(result: LensingBandpowers, title: str | None = None):
     axes = figure.add_subplot()
     L_all = np.asarray(result.unbinned["L"])
     keep = L_all >= 2
-    factor = _lensing_factor(L_all)
+    factor = spectrum_scale("lensing", int(L_all.max()) + 1)[L_all.astype(np.int64)]
     L_eff = result.L_eff
     if result.amplitude is not None:
         axes.plot(

@@ -12,14 +12,14 @@ import os
 import numpy as np
 
 from ._checks import as_float, as_int, check_lmax_for_nside, check_nside
-from .labels import COMBINED_ESTIMATORS, PAIR_ESTIMATORS, is_symmetric
+from .labels import COMBINED_ESTIMATORS, PAIR_ESTIMATORS, SUITE_STAGES, is_symmetric
 
 __all__ = ["lensing_suite_settings", "estimate_key"]
 
 SUITE_KIND = "lensing_suite"
 SUITE_FORMAT = 1
 SUITE_FILE = "suite.json"
-STAGES = ("data", "simulations", "pairs")
+STAGES = SUITE_STAGES
 COMPONENTS = ("gradient", "curl")
 # every pair estimator and every combination of them (lensrec.labels); joint estimators need joint filters
 ESTIMATORS = PAIR_ESTIMATORS + tuple(COMBINED_ESTIMATORS)

@@ -26,7 +26,7 @@ from .suite_settings import (
     estimate_key,
 )
 
-__all__ = ["lensing_simulation_task", "lensing_pair_task", "n1_pair_estimates"]
+__all__ = ["lensing_simulation_task", "lensing_pair_task", "n1_pair_estimates", "suite_spectra", "suite_analytic_n0"]
 
 
 # --------------------------------------------------------------------------------------------- context
@@ -50,18 +50,12 @@ def _context(settings: dict) -> _Context:
     from .experiment import Experiment
     from .filtering import IsotropicFilter
     from .masks import load_mask
-    from .spectra import fiducial_spectra
 
     key = settings_fingerprint({k: v for k, v in settings.items() if k not in ("role", "n_sims")})
     with _CONTEXT_LOCK:
         if key in _CONTEXTS:
             return _CONTEXTS[key]
-    spectra = fiducial_spectra()
-    if _jsonable(dict(spectra.metadata)) != settings["spectra"]:
-        raise ValueError(
-            "this suite was made with other spectra than lensrec's fiducial ones; it cannot be "
-            "continued with this version"
-        )
+    spectra = suite_spectra(settings)
     experiment = Experiment.from_dict(dict(settings["experiment"]))
     nthreads = int(settings["threads_per_task"])
     mask = None
@@ -85,6 +79,44 @@ def _context(settings: dict) -> _Context:
             _CONTEXTS.clear()
         _CONTEXTS[key] = context
     return context
+
+
+def suite_spectra(settings: dict):
+    """The theory spectra of a suite (lensrec's fiducial ones; a suite made with others is refused)."""
+    from .spectra import fiducial_spectra
+
+    spectra = fiducial_spectra()
+    if _jsonable(dict(spectra.metadata)) != _check_settings(settings)["spectra"]:
+        raise ValueError(
+            "this suite was made with other spectra than lensrec's fiducial ones; it cannot be "
+            "continued with this version"
+        )
+    return spectra
+
+
+def suite_analytic_n0(settings: dict, estimator: str, component: str = "gradient", nthreads: int | None = None):
+    """Analytic Gaussian N0 (C_L, L = 0 … lmax_L; NaN below L = 2) of one estimator of a suite.
+
+    The full-sky N0 of the normalisation the suite's reconstructions use: the suite's experiment with its
+    multipoles cut at the suite's lmax, the suite's spectra, lensed weights (Okamoto & Hu 2003, PRD 67,
+    083002). Only this estimator is computed (and its pairs, for a combination); no filter or mask is built.
+    """
+    from .estimator_noise import reconstruction_noise
+    from .experiment import Experiment
+    from .filtering import IsotropicFilter
+
+    settings = _check_settings(settings)
+    if component not in COMPONENTS:
+        raise ValueError(f"component must be one of {COMPONENTS}, got {component!r}")
+    spectra = suite_spectra(settings)
+    experiment = IsotropicFilter(
+        Experiment.from_dict(dict(settings["experiment"])), spectra, lmax=settings["lmax"]
+    ).experiment  # its multipoles cut at lmax, as in the suite's filter
+    nthreads = int(settings["threads_per_task"]) if nthreads is None else nthreads
+    noise = reconstruction_noise(
+        experiment, spectra, estimators=(estimator,), lmax_L=settings["lmax_L"], nthreads=nthreads
+    )
+    return np.asarray(noise.n0[estimator][component])
 
 
 def _reconstruct(first, second, estimator: str, context: _Context, settings: dict):

@@ -72,9 +72,11 @@ hits its wall time loses only its running simulations; run the same command agai
 
 from __future__ import annotations
 
+import inspect
 import os
 import shutil
 import threading
+import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -243,7 +245,10 @@ def run_lensing_suite(
     max_workers : int, optional
         Process-pool size (default 2).
     progress : bool or callable
-        tqdm bars per stage (``True``), none (``False``) or ``progress(done, total)``.
+        tqdm bars per stage (``True``), none (``False``) or ``progress(done, total, stage)``, called with the
+        stage that is running (one of :data:`lensrec.labels.SUITE_STAGES`: "data", "simulations", "pairs")
+        and its counts. A callable that takes only ``(done, total)`` still works for one release, with a
+        DeprecationWarning.
     cancel : threading.Event, optional
         Stop starting new tasks once set; finished ones stay cached.
     force : bool
@@ -296,7 +301,7 @@ def run_lensing_suite(
             _TASKS[stage],
             executor=executor,
             max_workers=max_workers,
-            progress=progress,
+            progress=_stage_progress(progress, stage),
             cancel=cancel,
             label=stage,
         )
@@ -305,6 +310,25 @@ def run_lensing_suite(
             suite.cancelled = True
             break
     return suite
+
+
+def _stage_progress(progress, stage: str):
+    """The progress argument of one stage's run: a callable gets the stage named as its third argument."""
+    if not callable(progress):
+        return progress
+    try:
+        inspect.signature(progress).bind(0, 0, stage)
+    except TypeError:
+        warnings.warn(
+            "a run_lensing_suite progress callback should take (done, total, stage); (done, total) is deprecated "
+            "and stops working in the next release",
+            DeprecationWarning,
+            stacklevel=3,
+        )
+        return progress
+    except ValueError:  # no signature to inspect (some builtins): pass the stage
+        pass
+    return lambda done, total: progress(done, total, stage)
 
 
 def open_lensing_suite(directory) -> LensingSuite:

@@ -436,6 +436,16 @@ class DelensingForecast:
     foreground_bb: np.ndarray | None = None
 
     @property
+    def efficiency(self) -> np.ndarray:
+        """Per-ℓ fraction of the lensing BB removed, 1 − C_ℓ^res / C_ℓ^lens (NaN where there is no lensing BB).
+
+        The definition of :func:`lensrec.delensing.delensing_efficiency` for noise-free spectra.
+        """
+        from .delensing import delensing_efficiency
+
+        return delensing_efficiency(self.lensed_bb, self.residual_bb)
+
+    @property
     def improvement(self) -> float:
         """σ(r) without delensing divided by σ(r) with delensing."""
         return self.sigma_r_lensed / self.sigma_r_delensed

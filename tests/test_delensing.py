@@ -296,3 +296,30 @@ def test_delensing_spectra_input_errors(small_fields):
         delensing.delensing_spectra(e_alm, template, lensed_bb=np.ones(10))
     with pytest.raises(ValueError, match="noise_bb is infinite at every l >= 2"):
         delensing.delensing_spectra(e_alm, template, noise_bb=np.full(41, np.inf), lensed_bb=np.ones(41))
+
+
+def test_delens_maps_runs_the_whole_recipe(fiducial):
+    # the recipe is the composition template_inputs -> wiener_filter_phi -> delens with the experiment's B
+    # noise and the lensed BB: identical arrays to running the steps by hand (same numbers, same order)
+    from types import SimpleNamespace
+
+    experiment = lensrec.Experiment(name="small", noise_temperature=3.0, beam_fwhm=30.0, ell_max_polarization=60)
+    sky = lensrec.simulate_sky(experiment, nside=32, lmax=80, lmax_margin=40, seed=2, nthreads=1)
+    phi_hat = truncate_alm(sky.phi_alm, 60, sky.lmax_unlensed)
+    n0 = np.full(61, 1e-8)
+    n0[:2] = np.nan
+    e_wiener, b_observed, _ = delensing.template_inputs(sky.maps, experiment, fiducial, lmax=60, nthreads=1)
+    phi_wiener = delensing.wiener_filter_phi(phi_hat, n0, fiducial.phi)
+    by_hand = delensing.delens(b_observed, e_wiener, phi_wiener, 60, noise_bb=experiment.noise_spectrum("B", 60),
+                               lensed_bb=fiducial.lensed["BB"], nthreads=1)  # fmt: skip
+    steps = []
+    recipe = lensrec.delens_maps(sky.maps, phi_hat, experiment, fiducial, n0=n0, lmax=60, nthreads=1,
+                                 progress=lambda fraction, message: steps.append(fraction))  # fmt: skip
+    assert np.array_equal(recipe.residual_alm, by_hand.residual_alm)
+    assert np.array_equal(recipe.efficiency, by_hand.efficiency, equal_nan=True)
+    assert recipe.alens_residual == by_hand.alens_residual and steps == sorted(steps) and steps[-1] == 1.0
+    reconstruction = SimpleNamespace(phi_alm=phi_hat, n0={"gradient": n0})  # a Reconstruction's two fields
+    again = lensrec.delens_maps(sky.maps, reconstruction, experiment, fiducial, lmax=60, nthreads=1)
+    assert np.array_equal(again.residual_alm, by_hand.residual_alm)
+    with pytest.raises(ValueError, match="n0 is needed"):
+        lensrec.delens_maps(sky.maps, phi_hat, experiment, fiducial, lmax=60)

@@ -60,6 +60,41 @@ def test_binning_is_the_weighted_mean_in_half_open_bins():
     assert np.isclose(weighted[0], np.sum(weights[2:5] * cl[2:5]) / np.sum(weights[2:5]))
 
 
+def test_nan_entries_are_skipped_on_request_and_spectra_bin_along_the_last_axis():
+    cl = np.arange(10, dtype=float)
+    cl[3] = np.nan
+    # a NaN makes its bin undefined unless it is skipped; then the bin is the mean of the other entries
+    assert np.isnan(bin_spectrum(cl, [0, 5, 10])[1][0])
+    centres, values = bin_spectrum(cl, [0, 5, 10], skip_nan=True)
+    assert values.tolist() == [np.mean([0.0, 1.0, 2.0, 4.0]), 7.0] and centres[0] == 1.75
+    stacked = bin_spectrum(np.vstack([np.arange(10.0), 2 * np.arange(10.0)]), [0, 5, 10])[1]
+    assert stacked.tolist() == [[2.0, 7.0], [4.0, 14.0]]
+    with pytest.raises(ValueError, match="scale must be None, 'cmb', 'lensing'"):
+        bin_spectrum(np.ones(10), [0, 5], scale="dl")
+
+
+def test_binned_theory_stays_on_the_plotted_curve(fiducial):
+    # Bin the plotted quantity [L(L+1)]^2 C_L^phiphi/2pi, (2L+1)-weighted (common practice: bin what you plot):
+    # a weighted mean of the curve over a band lies between the curve's extremes in that band, and the
+    # binning matrix gives the same numbers. Averaging C_L first and multiplying by the factor of the band
+    # centre instead lands far above the curve where the factor varies across the band (L = 2-33: 27x).
+    phi = fiducial.phi[:300]
+    L = np.arange(300.0)
+    curve = (L * (L + 1)) ** 2 * phi / (2 * np.pi)
+    edges = [2, 34, 100, 300]
+    centres, binned = bin_spectrum(phi, edges, weights="modes", scale="lensing")
+    for (low, high), value in zip(zip(edges[:-1], edges[1:]), binned):
+        assert curve[low:high].min() <= value <= curve[low:high].max()
+    assert np.allclose(power.binning_matrix(edges, 300, weights="modes", scale="lensing") @ phi, binned, rtol=1e-12)
+    # the D_l convention the same way: l(l+1) C_l/2pi
+    d_ell = bin_spectrum(fiducial.lensed["BB"][:300], edges, scale="cmb")[1]
+    assert np.allclose(d_ell, [np.mean(L[lo:hi] * (L[lo:hi] + 1) * fiducial.lensed["BB"][lo:hi]) / (2 * np.pi)
+                               for lo, hi in zip(edges[:-1], edges[1:])], rtol=1e-12)  # fmt: skip
+    # the error this guards against
+    wrong = bin_spectrum(phi, edges, weights="modes")[1] * (centres * (centres + 1)) ** 2 / (2 * np.pi)
+    assert wrong[0] > 10 * curve[2:34].max()
+
+
 @pytest.mark.parametrize(
     "edges, message",
     [

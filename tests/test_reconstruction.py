@@ -76,6 +76,26 @@ def test_mean_field_is_the_average_and_is_subtracted(small_case):
         reconstruct(skies[2].maps, experiment, estimator="TT", lmax_L=64, mean_field=runs[0], nthreads=2)
 
 
+def test_comparison_with_the_input_divides_each_spectrum_by_its_mask_moment(small_case):
+    # cross(φ̂, φ) carries ⟨w²⟩ and the autos of φ̂, Ω̂ carry ⟨w⁴⟩ (Hivon et al. 2002, ApJ 567, 2; lensrec.power);
+    # on a masked sky compare_with_input divides them out, on the full sky it leaves them as they are
+    experiment, skies = small_case
+    sky = skies[0]
+    mask = lensrec.latitude_mask(64, 20.0)
+    full = reconstruct(sky.maps, experiment, estimator="TT", lmax_L=48, nthreads=2)
+    masked = reconstruct(sky.maps, experiment, estimator="TT", lmax_L=48, mask=mask, nthreads=2)
+    phi = harmonics.truncate_alm(sky.phi_alm, 48, sky.lmax_unlensed)
+    plain = lensrec.compare_with_input(full, sky.phi_alm)
+    assert np.array_equal(plain.cross, cross_spectrum(full.phi_alm, phi)) and plain.L[-1] == 48
+    assert np.array_equal(plain.auto_minus_n0, cross_spectrum(full.phi_alm) - full.n0["gradient"], equal_nan=True)
+    w2, w4 = masked.mask_moments["w2"], masked.mask_moments["w4"]
+    cut = lensrec.compare_with_input(masked, sky.phi_alm)
+    assert np.allclose(cut.cross, cross_spectrum(masked.phi_alm, phi) / w2, rtol=1e-12)
+    assert np.allclose(cut.curl_auto, cross_spectrum(masked.curl_alm) / w4, rtol=1e-12)
+    with pytest.raises(ValueError, match="below the reconstruction's lmax_L = 48"):
+        lensrec.compare_with_input(full, phi[: harmonics.nalm(30)])
+
+
 def test_result_carries_normalisation_noise_and_settings(small_case):
     experiment, skies = small_case
     result = reconstruct(skies[0].maps, experiment, estimator="MV", lmax_L=64, nthreads=2)

@@ -133,3 +133,26 @@ def test_spin1_and_spin3_lensing_commute_with_rotations(rng, spin):
     lensed_rotated = remapping.lens_alm(rotate(field), rotate(phi)[0], lmax_out, spin=spin, epsilon=1e-12, nthreads=2)
     error = np.max(np.abs(lensed_rotated - rotate(lensed))) / np.max(np.abs(lensed))
     assert error < 2e-5
+
+
+def test_kappa_map_is_minus_half_the_laplacian_of_phi():
+    # on the sphere ∇²Y_LM = −L(L+1) Y_LM (common practice), so κ = −∇²φ/2 of a field of one multipole L is
+    # L(L+1)/2 times the map of φ; reference synthesis: healpy.alm2map. Tolerance: double-precision rounding.
+    lmax, nside = 24, 16
+    rng = np.random.default_rng(11)
+    ell, m = healpy.Alm.getlm(lmax)
+    phi = 1e-4 * (rng.normal(size=nalm(lmax)) + 1j * rng.normal(size=nalm(lmax)))
+    phi[m == 0] = phi[m == 0].real
+    only_7 = np.where(ell == 7, phi, 0.0)
+    expected = 28.0 * healpy.alm2map(only_7, nside, lmax=lmax)
+    kappa = remapping.kappa_map(only_7, nside, nthreads=1)
+    assert np.allclose(kappa, expected, rtol=0, atol=1e-12 * np.abs(expected).max())
+    # lmax drops the higher multipoles: the L = 7 part alone survives a cut at L = 10
+    with_high = only_7 + np.where(ell == 20, phi, 0.0)
+    cut = remapping.kappa_map(with_high, nside, lmax=10, nthreads=1)
+    assert np.allclose(cut, expected, rtol=0, atol=1e-12 * np.abs(expected).max())
+    # the deflection maps carry the same κ map
+    assert np.array_equal(remapping.deflection_maps(with_high, nside, nthreads=1).kappa,
+                          remapping.kappa_map(with_high, nside, nthreads=1))  # fmt: skip
+    with pytest.raises(ValueError, match="lmax=30 exceeds the band limit of phi_alm"):
+        remapping.kappa_map(phi, nside, lmax=30)

@@ -17,6 +17,7 @@ import pytest
 import lensrec
 from lensrec.bandpowers import Binning, fit_amplitude, lensing_bandpowers
 from lensrec.biases import monte_carlo_n1
+from lensrec.labels import SUITE_STAGES
 from lensrec.power import cross_spectrum
 from lensrec.suites import (
     estimate_key,
@@ -257,14 +258,19 @@ def test_a_suite_stopped_halfway_resumes_to_the_same_answer(tiny_serial, tmp_pat
     settings = lensing_suite_settings(**TINY)
     cancel = threading.Event()
 
-    def progress(done, total):
-        if total == 4 and done >= 2:  # the simulations stage, after two of four
+    seen = []
+
+    def progress(done, total, stage):  # the callback is told which stage runs
+        seen.append(stage)
+        if stage == "simulations" and done >= 2:  # after two of four simulations
             cancel.set()
 
     part = run_lensing_suite(settings, tmp_path, progress=progress, cancel=cancel)
     assert part.cancelled and sorted(part.runs) == ["data", "simulations"]
     assert part.runs["simulations"].computed == [0, 1] and not part.complete
-    resumed = run_lensing_suite(settings, tmp_path, progress=False)
+    assert seen[0] == "data" and seen[-1] == "simulations" and seen == sorted(seen, key=SUITE_STAGES.index)
+    with pytest.warns(DeprecationWarning, match="done, total, stage"):  # the old two-argument callback
+        resumed = run_lensing_suite(settings, tmp_path, progress=lambda done, total: None)
     assert resumed.runs["simulations"].reused == [0, 1] and resumed.runs["simulations"].computed == [2, 3]
     assert resumed.runs["data"].reused == [0] and resumed.complete
     _assert_identical(_stored(tiny_serial), _stored(resumed))
@@ -399,3 +405,17 @@ def test_suites_reconstruct_the_b_free_combination_without_b_modes(tiny_serial):
         full = _reconstruct(a, a, label, context, settings)["gradient"]
         cut = _reconstruct(a_no_b, a_no_b, label, context, settings)["gradient"]
         assert np.array_equal(full, cut) is unchanged, label
+
+
+def test_the_analytic_n0_of_a_suite_is_the_normalisation_its_reconstructions_use():
+    # suite_analytic_n0 computes one estimator alone; it must equal the N0 of the normalisation the suite's
+    # tasks build (experiment cut at the suite's lmax), which is what the bias budget shows beside RDN0
+    from lensrec.suite_tasks import _context, suite_analytic_n0
+
+    settings = lensing_suite_settings(**TINY)
+    used = _context(settings).noise.n0
+    for estimator, component in (("EB", "gradient"), ("TT", "curl")):
+        alone = suite_analytic_n0(settings, estimator, component)
+        assert np.allclose(alone[2:], used[estimator][component][2:], rtol=1e-12, atol=0)  # same sums, rounding
+    with pytest.raises(ValueError, match="component must be one of"):
+        suite_analytic_n0(settings, "EB", "divergence")

@@ -89,7 +89,7 @@ class Workbench(widgets.VBox):
              lambda: EstimatorNoiseSection(self.state, delay=delay, nthreads=nthreads)),
             ("sky", "Sky", ("simulate_sky", "deflection_maps", "latitude_mask", "cap_mask"),
              lambda: SkySection(self.state, nthreads=nthreads)),
-            ("reconstruction", "Reconstruction", ("reconstruct", "wiener_filter_phi", "deflection_maps"),
+            ("reconstruction", "Reconstruction", ("reconstruct", "wiener_filter_phi", "kappa_map"),
              lambda: ReconstructionSection(self.state, nthreads=nthreads)),
             ("delensing", "Delensing", ("delensing_forecast",),
              lambda: DelensingSection(self.state, nthreads=nthreads)),

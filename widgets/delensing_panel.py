@@ -23,8 +23,7 @@ from .work import LongTask
 
 __all__ = ["DelensingSection"]
 
-TEMPLATE_NEEDS = ("reconstruct", "delens", "wiener_filter_phi")
-# lensrec.delensing.template_inputs gives the Wiener-filtered E and the observed B of the maps
+TEMPLATE_NEEDS = ("reconstruct", "delens_maps")
 
 
 class DelensingSection(Section):
@@ -179,14 +178,8 @@ class DelensingSection(Section):
         lmax = min(sky.lmax, experiment.ell_max_polarization)
 
         def work(report, cancel):
-            report(0.05, "Wiener-filtered E and observed B of the maps…")
-            e_wiener, b_observed, _ = delensing.template_inputs(sky.maps, experiment, spectra, lmax=lmax,
-                                                                mask=sky.mask, nthreads=nthreads)  # fmt: skip
-            phi_wiener = lensrec.wiener_filter_phi(reconstruction.phi_alm, reconstruction.n0["gradient"], spectra.phi)
-            report(0.3, f"lensing the E modes ({method})…")
-            return lensrec.delens(b_observed, e_wiener, phi_wiener, lmax, method=method,
-                                  noise_bb=experiment.noise_spectrum("B", lmax), lensed_bb=spectra.lensed["BB"],
-                                  nthreads=nthreads)  # fmt: skip
+            return delensing.delens_maps(sky.maps, reconstruction, experiment, spectra, lmax=lmax, method=method,
+                                         mask=sky.mask, nthreads=nthreads, progress=report)  # fmt: skip
 
         def finish(result):
             self.template, self.template_estimator = result, reconstruction.estimator
@@ -297,8 +290,7 @@ class DelensingSection(Section):
         self.lines["lensed"].set_data(ell[used], d_ell(forecast.lensed_bb)[used])
         self.lines["residual"].set_data(ell[used], d_ell(forecast.residual_bb)[used])
         self.lines["noise"].set_data(ell[used], d_ell(finite_or_nan(forecast.noise_bb))[used])
-        efficiency = 1.0 - forecast.residual_bb[used] / forecast.lensed_bb[used]
-        self.lines["efficiency"].set_data(ell[used], efficiency)
+        self.lines["efficiency"].set_data(ell[used], forecast.efficiency[used])
         for ax in (self.ax_bb, self.ax_eff):
             set_log_range(ax, max(2, forecast.ell_min), forecast.ell_max)
         values = np.concatenate([d_ell(forecast.lensed_bb)[used], d_ell(forecast.residual_bb)[used]])

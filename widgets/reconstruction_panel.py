@@ -40,23 +40,18 @@ MOLLWEIDE_XSIZE = 600
 BANDS = 16
 
 
-def band_average(values, L_min: int, L_max: int, bands: int = BANDS):
-    """(band centres, (2L+1)-weighted band means) of ``values`` (indexed by L) over [L_min, L_max].
+def band_average(values, L_min: int, L_max: int, bands: int = BANDS, scale=None):
+    """(band centres, (2L+1)-weighted band means of ``scale`` × ``values``) over [L_min, L_max], by
+    :func:`lensrec.power.bin_spectrum` with non-finite entries left out and empty bands dropped.
 
     A display aid: per-L spectra of one realisation scatter by √(2/(2L+1)); bands make the trend visible.
     """
-    values = np.asarray(values, dtype=float)
+    values = np.asarray(values, dtype=float)[: L_max + 1]
     edges = np.unique(np.linspace(L_min, L_max + 1, bands + 1).astype(int))
-    centres, means = [], []
-    for low, high in zip(edges[:-1], edges[1:], strict=True):
-        L = np.arange(low, high)
-        weights = 2.0 * L + 1.0
-        part = values[low:high]
-        good = np.isfinite(part)
-        if good.any():
-            centres.append(float(np.sum(L[good] * weights[good]) / np.sum(weights[good])))
-            means.append(float(np.sum(part[good] * weights[good]) / np.sum(weights[good])))
-    return np.array(centres), np.array(means)
+    centres, means = power.bin_spectrum(np.where(np.isfinite(values), values, np.nan), edges, weights="modes",
+                                        scale=scale, skip_nan=True)  # fmt: skip
+    keep = np.isfinite(means)
+    return centres[keep], means[keep]
 
 
 class ReconstructionSection(Section):
@@ -144,18 +139,11 @@ class ReconstructionSection(Section):
         phi_input = harmonics.truncate_alm(sky.phi_alm, lmax_L, sky.lmax_unlensed)
         n0 = result.n0["gradient"]
         phi_wf = lensrec.wiener_filter_phi(result.phi_alm, n0, spectra.phi)
-        kappa_input = lensrec.deflection_maps(phi_input, nside, lmax_L, nthreads=self.nthreads).kappa
-        kappa_wf = lensrec.deflection_maps(phi_wf, nside, lmax_L, nthreads=self.nthreads).kappa
-        # on a masked sky the estimate carries w² and the input none: divide by ⟨w²⟩ and ⟨w⁴⟩ (lensrec.power)
-        moments = result.mask_moments
-        cross = power.mask_corrected(power.cross_spectrum(result.phi_alm, phi_input, lmax=lmax_L), moments,
-                                     power.mask_moment_order("estimate", "input"))  # fmt: skip
-        input_auto = power.auto_spectrum(phi_input, lmax=lmax_L)
-        auto = power.mask_corrected(power.auto_spectrum(result.phi_alm, lmax=lmax_L), moments,
-                                    power.mask_moment_order("estimate", "estimate"))  # fmt: skip
-        with np.errstate(divide="ignore", invalid="ignore"):
-            ratio = np.where(input_auto > 0, cross / input_auto, np.nan)
-        auto_minus_n0 = auto - n0
+        kappa_input = lensrec.kappa_map(phi_input, nside, lmax_L, nthreads=self.nthreads)
+        kappa_wf = lensrec.kappa_map(phi_wf, nside, lmax_L, nthreads=self.nthreads)
+        # on a masked sky the spectra are divided by the mask moments the fields carry (lensrec.power)
+        comparison = lensrec.compare_with_input(result, sky.phi_alm)
+        ratio, auto_minus_n0 = comparison.cross_over_input, comparison.auto_minus_n0
         L_min = 2
         return {
             "kappa_input": kappa_input,
@@ -165,7 +153,7 @@ class ReconstructionSection(Section):
             "n0": n0,
             "theory": np.asarray(spectra.phi[: lmax_L + 1]),
             "cross_band": band_average(ratio, L_min, lmax_L),
-            "auto_band": band_average(auto_minus_n0, L_min, lmax_L),
+            "auto_band": band_average(auto_minus_n0, L_min, lmax_L, scale="lensing"),
             "mask": sky.mask,
         }
 
@@ -260,10 +248,9 @@ class ReconstructionSection(Section):
         units = "phi"
         self.theory_line.set_data(L[shown], phi_plot_units(products["theory"], units)[shown])
         self.n0_line.set_data(L[shown], phi_plot_units(products["n0"], units)[shown])
-        centres, means = products["auto_band"]
-        weight = (centres * (centres + 1.0)) ** 2 / (2.0 * np.pi)
-        self.auto_band.set_data(centres, np.where(means > 0, weight * means, np.nan))
-        self.auto_band_negative.set_data(centres, np.where(means < 0, -weight * means, np.nan))
+        centres, means = products["auto_band"]  # binned [L(L+1)]^2 C_L / 2pi, like the theory line
+        self.auto_band.set_data(centres, np.where(means > 0, means, np.nan))
+        self.auto_band_negative.set_data(centres, np.where(means < 0, -means, np.nan))
         set_log_range(self.ax_auto, 2, result.lmax_L)
         top = np.nanmax(phi_plot_units(products["theory"], units)[shown])
         self.ax_auto.set_ylim(top / 300.0, top * 30.0)

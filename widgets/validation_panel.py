@@ -132,15 +132,10 @@ class ValidationSection(Section):
 
         def work(report, cancel):
             settings = lensrec.lensing_suite_settings(experiment, **settings_args)
-            stage = {"index": -1, "total": None}
 
-            def progress(done, total):
-                if done == 0 or total != stage["total"]:
-                    stage["index"] = min(stage["index"] + 1, len(SUITE_STAGES) - 1)
-                    stage["total"] = total
-                k = stage["index"]
-                fraction = (k + (done / total if total else 1.0)) / len(SUITE_STAGES)
-                report(0.9 * fraction, f"{SUITE_STAGES[k]}: {done}/{total}", check_cancel=False)
+            def progress(done, total, stage):
+                fraction = (SUITE_STAGES.index(stage) + (done / total if total else 1.0)) / len(SUITE_STAGES)
+                report(0.9 * fraction, f"{stage}: {done}/{total}", check_cancel=False)
 
             suite = lensrec.run_lensing_suite(settings, folder, executor=executor, max_workers=workers,
                                               progress=progress, cancel=cancel, force=force)  # fmt: skip

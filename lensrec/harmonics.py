@@ -320,7 +320,12 @@ def adjoint_alm2map(
     spin = check_spin(spin)
     array, nside, was_1d = _as_maps(maps, spin)
     lmax = check_lmax_for_nside(lmax, nside, allow_high_lmax=allow_high_lmax)
-    nthreads = resolve_nthreads(nthreads)
+    out = _adjoint_healpix(array, nside, lmax, spin, resolve_nthreads(nthreads))
+    return out[0] if was_1d else out
+
+
+def _adjoint_healpix(array: np.ndarray, nside: int, lmax: int, spin: int, nthreads: int) -> np.ndarray:
+    """ducc0 adjoint HEALPix synthesis of validated (k, npix) maps into new (k, nalm) coefficients."""
     sht = _ducc_sht()
     geometry = healpix_geometry(nside)
     if spin == 0:
@@ -335,7 +340,7 @@ def adjoint_alm2map(
                 theta_interpol=True,
                 **geometry,
             )
-        return out[0] if was_1d else out
+        return out
     return sht.adjoint_synthesis(
         map=np.ascontiguousarray(array), lmax=lmax, spin=spin, nthreads=nthreads, theta_interpol=True, **geometry
     )
@@ -383,12 +388,18 @@ def map2alm(
     lmax = check_lmax_for_nside(lmax, nside, allow_high_lmax=allow_high_lmax)
     nthreads = resolve_nthreads(nthreads)
     weight = 4.0 * np.pi / array.shape[-1]
-    source = array[0] if was_1d else array
-    alm = weight * adjoint_alm2map(source, lmax, spin, nthreads, allow_high_lmax=True)
-    for _ in range(iterations):
-        residual = source - alm2map(alm, nside, lmax, spin, nthreads, allow_high_lmax=True)
-        alm += weight * adjoint_alm2map(residual, lmax, spin, nthreads, allow_high_lmax=True)
-    return alm
+    alm = _adjoint_healpix(array, nside, lmax, spin, nthreads)
+    alm *= weight
+    if iterations:
+        # one residual buffer, synthesised into and subtracted in place (no map-sized temporaries per step)
+        residual = np.empty_like(array)
+        for _ in range(iterations):
+            _synthesis_healpix(alm, nside, lmax, spin, nthreads, residual)
+            np.subtract(array, residual, out=residual)
+            correction = _adjoint_healpix(residual, nside, lmax, spin, nthreads)
+            correction *= weight
+            alm += correction
+    return alm[0] if was_1d else alm
 
 
 def alm2map_tqu(alm, nside: int, lmax: int, nthreads: int | None = None, allow_high_lmax: bool = False) -> np.ndarray:

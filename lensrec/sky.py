@@ -285,7 +285,17 @@ def _digest(array) -> str | None:
     return hashlib.sha256(np.ascontiguousarray(array, dtype=np.float64).tobytes()).hexdigest()[:16]
 
 
-def _add_noise(maps: np.ndarray, experiment, nside: int, lmax: int, seed: int, index: int, scale, nthreads: int) -> str:
+def _add_noise(
+    maps: np.ndarray,
+    experiment,
+    nside: int,
+    lmax: int,
+    seed: int,
+    index: int,
+    scale,
+    nthreads: int,
+    allow_high_lmax: bool = False,
+) -> str:
     """Add T, Q, U noise (µK) to ``maps`` in place; ``scale`` (per pixel or None) modulates its amplitude.
 
     White noise unless the experiment has a 1/f knee, then a harmonic Gaussian field. Returns the model name.
@@ -325,7 +335,7 @@ def _add_noise(maps: np.ndarray, experiment, nside: int, lmax: int, seed: int, i
         spectrum = experiment.noise_spectrum(key, lmax, deconvolved=False, cut=False)
         spectrum[:2] = 0.0
         _scale_by_ell(alm[k], np.sqrt(spectrum), lmax)
-    noise = harmonics.alm2map_tqu(alm, nside, lmax, nthreads=nthreads)
+    noise = harmonics.alm2map_tqu(alm, nside, lmax, nthreads=nthreads, allow_high_lmax=allow_high_lmax)
     if scale is not None:
         noise *= scale
     maps += noise
@@ -505,7 +515,7 @@ def simulate_sky(
     if windows is not None:
         observed[0] *= windows[0][ell]
         observed[1:] *= windows[1][ell]
-    maps = harmonics.alm2map_tqu(observed, nside, lmax, nthreads=nthreads)
+    maps = harmonics.alm2map_tqu(observed, nside, lmax, nthreads=nthreads, allow_high_lmax=allow_high_lmax)
     del observed
     noise_model = None
     if noise and pixel_noise is not None:
@@ -519,7 +529,7 @@ def simulate_sky(
             scale = np.zeros(hits.size)
             observed = hits > 0
             scale[observed] = np.sqrt(hits[used].mean() / hits[observed])
-        noise_model = _add_noise(maps, experiment, nside, lmax, seed, index, scale, nthreads)
+        noise_model = _add_noise(maps, experiment, nside, lmax, seed, index, scale, nthreads, allow_high_lmax)
     if mask is not None:
         maps *= mask
 

@@ -331,3 +331,16 @@ def test_pixel_window_arrays_multiply_the_signal():
     assert windowed.settings["pixel_window"] is True and plain.settings["pixel_window"] is False
     with pytest.raises(ValueError, match="pixel_window\\[1\\] has 10 entries"):
         lensrec.simulate_sky("deep_highland", pixel_window=(np.ones(65), np.ones(10)), **common)
+
+
+def test_allow_high_lmax_reaches_the_map_synthesis():
+    # lmax above 3 nside - 1 is refused unless allowed; when allowed the maps are made (with 1/f noise too,
+    # whose harmonic synthesis runs at the same lmax): the sky's band limit is kept, the maps under-sample it
+    experiment = lensrec.Experiment(
+        name="high", noise_temperature=10.0, beam_fwhm=30.0, ell_knee_temperature=50.0, alpha_knee_temperature=-2.0
+    )
+    with pytest.raises(ValueError, match="allow_high_lmax"):
+        lensrec.simulate_sky(experiment, nside=16, lmax=60, lmax_margin=20, seed=1, nthreads=1)
+    sky = lensrec.simulate_sky(experiment, nside=16, lmax=60, lmax_margin=20, seed=1, nthreads=1, allow_high_lmax=True)
+    assert sky.maps.shape == (3, 12 * 16**2) and sky.lensed_alm.shape == (3, harmonics.nalm(60))
+    assert np.all(np.isfinite(sky.maps)) and sky.settings["noise_model"] == "one_over_f"

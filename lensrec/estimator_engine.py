@@ -196,11 +196,31 @@ def _joint_products(component: str, factors: FactorTable, shared: bool) -> dict:
     return {key: value for key, value in out.items() if abs(value) > 1e-15}
 
 
-def _plan(labels, factors: FactorTable, shared: bool) -> dict:
-    """Per estimator: its products (gradient form) and η; checks H^curl = −i H^grad term by term."""
+def _symmetrised(products: dict) -> dict:
+    """½ (H[a, b] + H[b, a]): the products with the two inputs exchanged (side 0 ↔ 1) averaged in."""
+
+    def swap(item):
+        (side, name, weights, spin), signed = item
+        return ((1 - side, name, weights, spin), signed)
+
+    out: dict = {}
+    for (a, b), value in products.items():
+        for key in ((a, b), (swap(a), swap(b))):
+            out[key] = out.get(key, 0.0) + 0.5 * value
+    return {key: value for key, value in out.items() if abs(value) > 1e-15}
+
+
+def _plan(labels, factors: FactorTable, shared: bool, symmetrise: bool = False) -> dict:
+    """Per estimator: its products (gradient form) and η; checks H^curl = −i H^grad term by term.
+
+    With ``symmetrise`` (two inputs), the products of ½ (ḡ[a, b] + ḡ[b, a]) in one plan: the legs of each
+    input are synthesised once and the two orderings share one spin-1 analysis.
+    """
     plan = {}
     for label in labels:
         build = _joint_products if label == JOINT_ESTIMATOR else functools.partial(_products, label)
+        if symmetrise and not shared and label != JOINT_ESTIMATOR:  # the joint plan is symmetric already
+            build = functools.partial(lambda inner, *args: _symmetrised(inner(*args)), build)
         gradient = build("gradient", factors, shared)
         curl = build("curl", factors, shared)
         if set(gradient) != set(curl) or any(
@@ -494,6 +514,7 @@ def quadratic_estimates(
     lensed_weights: bool = True,
     nthreads: int | None = None,
     workspace_mb: int | None = None,
+    symmetrise: bool = False,
 ) -> QuadraticEstimates:
     """Unnormalised quadratic estimates ḡ^XY_LM[a, b] in position space (gradient and curl weights).
 
@@ -517,6 +538,10 @@ def quadratic_estimates(
         Memory for one block of rings (the legs and products of those rings), in MB; default 1024. The grid
         is processed in as many blocks of north/south ring pairs as this requires; fewer, larger blocks
         save per-call set-up in the transforms.
+    symmetrise : bool
+        With two inputs: return ½ (ḡ[a, b] + ḡ[b, a]) in one pass (each input's legs synthesised once, one
+        analysis per estimator), as realization-dependent N0 and N1 use mixed pairs; about half the cost of
+        two calls. Ignored for one input (ḡ[a, a] is its own mirror).
 
     Returns
     -------
@@ -567,7 +592,8 @@ def quadratic_estimates(
     nthreads = resolve_nthreads(nthreads)
     signal = spectra.cmb(lensed=bool(lensed_weights))
     factors = FactorTable({f"cmb:{key}": signal[key][: lmax + 1] for key in ("TT", "EE", "BB", "TE")})
-    plan = _plan(labels, factors, shared)
+    symmetrise = bool(symmetrise) and not shared
+    plan = _plan(labels, factors, shared, symmetrise)
     fields = (first, second)
 
     # legs sorted by |spin|: each spin is one batched synthesis
@@ -651,6 +677,7 @@ def quadratic_estimates(
         "lmax_L": lmax_L,
         "lensed_weights": bool(lensed_weights),
         "estimators": list(labels),
+        "symmetrised": symmetrise,
         "grid": [grid.ntheta, grid.nphi],
         "ring_blocks": len(blocks),
         "transforms": {

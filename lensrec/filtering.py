@@ -489,6 +489,37 @@ class IsotropicFilter:
             array = truncate_alm(array, self.lmax, lmax_in)
         return self._finish(array, None, source="alm")
 
+    def joint_fields(self, fields: FilteredFields) -> FilteredFields:
+        """Jointly filtered fields from fields this filter made field by field, without a transform.
+
+        X̄_joint = C_tot⁻¹ (C^XX_tot X̄): the per-field filter is undone per ℓ (exactly, where the field is used;
+        elsewhere both are zero) and the joint one applied. The result equals ``filter`` with ``joint=True``
+        on the same maps, to rounding.
+
+        Raises
+        ------
+        TypeError, ValueError
+            Not FilteredFields, already joint, or made to another lmax.
+        """
+        if not isinstance(fields, FilteredFields):
+            raise TypeError(f"fields must be FilteredFields, got {type(fields).__name__}")
+        if fields.joint:
+            raise ValueError("these fields are filtered jointly already")
+        if fields.lmax != self.lmax:
+            raise ValueError(f"fields reach lmax={fields.lmax} but this filter works to lmax={self.lmax}")
+        ell = ell_of_alm(self.lmax)
+        with np.errstate(divide="ignore"):
+            undo = np.where(self._factors > 0, 1.0 / np.where(self._factors > 0, self._factors, 1.0), 0.0)
+        observed = fields.alm * undo[:, ell]  # b_ℓ X: the per-field factors are 1/(b C^XX)
+        joint = self._joint_matrix
+        out = np.empty_like(observed)
+        out[0] = observed[0] * joint[0, 0, ell] + observed[1] * joint[0, 1, ell]
+        out[1] = observed[0] * joint[1, 0, ell] + observed[1] * joint[1, 1, ell]
+        out[2] = observed[2] * joint[2, 2, ell]
+        settings = dict(fields.settings)
+        settings["joint"] = True
+        return FilteredFields(out, self.lmax, fields.signal, fields.mask_moments, settings, joint=True)
+
     def _finish(self, alm: np.ndarray, moments, **extra) -> FilteredFields:
         ell = ell_of_alm(self.lmax)
         if self.joint:

@@ -143,6 +143,7 @@ def reconstruct_filtered(
     lensed_weights: bool = True,
     noise: ReconstructionNoise | None = None,
     nthreads: int | None = None,
+    symmetrise: bool = False,
 ) -> Reconstruction:
     """Normalised reconstruction from filtered fields (one input, or a mixed pair [a, b]).
 
@@ -170,6 +171,9 @@ def reconstruct_filtered(
         A precomputed :func:`lensrec.reconstruction_noise` result for the same experiment, spectra, lmax_L
         and weights (it must contain the estimator, and all five for "MV"); saves recomputing it.
     nthreads : int, optional
+    symmetrise : bool
+        For a mixed pair: the symmetrised φ̂{a, b} = ½ (φ̂[a, b] + φ̂[b, a]) in one pass (see
+        :func:`lensrec.reconstruction.quadratic_estimates`), as realization-dependent N0 and N1 need it.
 
     Returns
     -------
@@ -222,7 +226,9 @@ def reconstruct_filtered(
             f"noise must hold {estimator} (and its parts) to lmax_L={lmax_L}; got estimators "
             f"{list(noise.n0)} to lmax_L={int(noise.L[-1])}"
         )
-    estimates = quadratic_estimates(first, second, labels, lmax_L, spectra, lensed_weights, nthreads)
+    estimates = quadratic_estimates(
+        first, second, labels, lmax_L, spectra, lensed_weights, nthreads, symmetrise=symmetrise
+    )
 
     ell = ell_of_alm(lmax_L)
     low = ell < 2

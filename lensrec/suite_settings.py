@@ -12,7 +12,7 @@ import os
 import numpy as np
 
 from ._checks import as_float, as_int, check_lmax_for_nside, check_nside
-from .labels import COMBINED_ESTIMATORS, PAIR_ESTIMATORS, SUITE_STAGES, is_symmetric
+from .labels import COMBINED_ESTIMATORS, JOINT_ESTIMATORS, PAIR_ESTIMATORS, SUITE_STAGES, is_symmetric
 
 __all__ = ["lensing_suite_settings", "estimate_key"]
 
@@ -21,10 +21,11 @@ SUITE_FORMAT = 1
 SUITE_FILE = "suite.json"
 STAGES = SUITE_STAGES
 COMPONENTS = ("gradient", "curl")
-# every pair estimator and every combination of them (lensrec.labels); joint estimators need joint filters
-ESTIMATORS = PAIR_ESTIMATORS + tuple(COMBINED_ESTIMATORS)
-# φ̂[a, b] = φ̂[b, a] (lensrec.reconstruction, leg order)
-SYMMETRIC_ESTIMATORS = tuple(label for label in PAIR_ESTIMATORS if is_symmetric(label))
+# every pair estimator, every combination of them and the joint estimator (lensrec.labels); suites store
+# per-field filtered fields and derive the joint ones from them (IsotropicFilter.joint_fields)
+ESTIMATORS = PAIR_ESTIMATORS + tuple(COMBINED_ESTIMATORS) + tuple(JOINT_ESTIMATORS)
+# φ̂[a, b] = φ̂[b, a] (lensrec.reconstruction, leg order; the joint estimator sums both orders)
+SYMMETRIC_ESTIMATORS = tuple(label for label in PAIR_ESTIMATORS if is_symmetric(label)) + tuple(JOINT_ESTIMATORS)
 MIN_SIMS = 4  # RDN0 needs two data × sim and two sim × sim pairs; each simulation's half-split needs two others
 DEFAULT_LMAX_MARGIN = 1000
 

@@ -76,10 +76,11 @@ def check_lmax_for_nside(lmax, nside: int, name: str = "lmax", allow_high_lmax: 
     return lmax
 
 
-def as_finite_array(
+def as_real_array(
     values, name: str, ndim: int | tuple[int, ...] | None = None, shape: tuple | None = None, dtype=np.float64
 ) -> np.ndarray:
-    """Convert to a numpy array of ``dtype`` and check dimensionality, shape and finiteness."""
+    """Convert to a numpy array of ``dtype`` and check dimensionality and shape; NaN and inf pass (the caller
+    says which of them it allows)."""
     if isinstance(values, (str, bytes)) or values is None:
         raise TypeError(f"{name} must be a numeric array, got {type(values).__name__}")
     try:
@@ -97,9 +98,24 @@ def as_finite_array(
             raise ValueError(f"{name} must have {' or '.join(map(str, allowed))} dimension(s), got shape {array.shape}")
     if shape is not None and array.shape != tuple(shape):
         raise ValueError(f"{name} must have shape {tuple(shape)}, got {array.shape}")
+    return array
+
+
+def as_finite_array(
+    values, name: str, ndim: int | tuple[int, ...] | None = None, shape: tuple | None = None, dtype=np.float64
+) -> np.ndarray:
+    """Convert to a numpy array of ``dtype`` and check dimensionality, shape and finiteness."""
+    array = as_real_array(values, name, ndim=ndim, shape=shape, dtype=dtype)
     if array.size and not np.all(np.isfinite(array)):
         bad = int(np.size(array) - np.count_nonzero(np.isfinite(array)))
         raise ValueError(f"{name} contains {bad} non-finite value(s) (NaN or inf); all values must be finite")
+    return array
+
+
+def readonly_copy(values, dtype=None) -> np.ndarray:
+    """A read-only copy of ``values`` (as ``dtype`` if given): what result objects hold."""
+    array = np.array(values, dtype=dtype, copy=True)
+    array.setflags(write=False)
     return array
 
 

@@ -44,7 +44,7 @@ from types import MappingProxyType
 
 import numpy as np
 
-from ._checks import as_int
+from ._checks import as_int, readonly_copy
 from .biases import (
     half_split_mean_fields,
     mean_field_power,
@@ -297,10 +297,8 @@ class LensingBandpowers:
         }
 
 
-def _frozen(array) -> np.ndarray:
-    array = np.array(array, dtype=np.float64, copy=True)
-    array.setflags(write=False)
-    return array
+def _frozen(values, dtype=np.float64) -> np.ndarray:
+    return readonly_copy(values, dtype)
 
 
 def lensing_bandpowers(

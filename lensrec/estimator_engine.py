@@ -78,7 +78,7 @@ from types import MappingProxyType
 
 import numpy as np
 
-from ._checks import as_float, as_int, resolve_nthreads
+from ._checks import as_float, as_int, readonly_copy, resolve_nthreads
 from .estimator_noise import JOINT_ESTIMATOR
 from .estimator_weights import (
     ESTIMATOR_FIELDS,
@@ -307,10 +307,8 @@ def _combined_plan(plan: dict, merge: set) -> tuple[list, list]:
 
 
 # ------------------------------------------------------------------------------------------- result
-def _readonly(array, dtype=None) -> np.ndarray:
-    array = np.array(array, dtype=dtype, copy=True)
-    array.setflags(write=False)
-    return array
+def _readonly(values, dtype=None) -> np.ndarray:
+    return readonly_copy(values, dtype)
 
 
 @dataclass(frozen=True, eq=False)

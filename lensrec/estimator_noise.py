@@ -15,13 +15,14 @@ its response to another source (the curl, unlensed spectra, …) or for its N0 u
 
 from __future__ import annotations
 
+import functools
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from types import MappingProxyType
 
 import numpy as np
 
-from ._checks import as_finite_array, as_float, as_int
+from ._checks import as_finite_array, as_float, as_int, readonly_copy
 from .estimator_weights import (
     FactorTable,
     KernelSums,
@@ -322,10 +323,7 @@ def minimum_variance(covariance) -> tuple[np.ndarray, np.ndarray]:
 
 
 # ---------------------------------------------------------------------------------------- result
-def _frozen_array(values) -> np.ndarray:
-    array = np.array(values, dtype=np.float64, copy=True)
-    array.setflags(write=False)
-    return array
+_frozen_array = functools.partial(readonly_copy, dtype=np.float64)
 
 
 @dataclass(frozen=True, eq=False)

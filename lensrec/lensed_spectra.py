@@ -26,7 +26,7 @@ from collections.abc import Mapping
 
 import numpy as np
 
-from ._checks import as_finite_array, as_int, resolve_nthreads
+from ._checks import as_finite_array, as_int, as_real_array, resolve_nthreads
 from .quadrature import gauss_legendre, npoints_for, wigner_d_project, wigner_d_series
 
 __all__ = [
@@ -501,14 +501,7 @@ def residual_lensing_potential(phi, n0):
     phi = as_finite_array(phi, "phi", ndim=1)
     if np.any(phi < 0):
         raise ValueError(f"phi (C_L^phiphi) must be non-negative; got {phi.min():.4g}")
-    if isinstance(n0, (str, bytes)) or n0 is None:
-        raise TypeError(f"n0 must be a numeric array, got {type(n0).__name__}")
-    n0 = np.asarray(n0)
-    if not (np.issubdtype(n0.dtype, np.floating) or np.issubdtype(n0.dtype, np.integer)):
-        raise TypeError(f"n0 must be a real numeric array, got dtype {n0.dtype}")
-    n0 = n0.astype(np.float64)
-    if n0.ndim != 1:
-        raise ValueError(f"n0 must have 1 dimension, got shape {n0.shape}")
+    n0 = as_real_array(n0, "n0", ndim=1)
     if np.any(np.isnan(n0[2:])):
         bad = int(np.argmax(np.isnan(n0[2:]))) + 2
         raise ValueError(f"n0 is NaN at L = {bad}; NaN is allowed only at L < 2 (use inf for no reconstruction)")

@@ -1,20 +1,11 @@
 """Lensed CMB skies on the sphere: Gaussian fields, remapping by the deflection, observation.
 
-The remapping itself (and the deflection maps) is in :mod:`lensrec.remapping`; it is re-exported here.
-The lensed field is T̃(n) = T(n′) and P̃(n) = e^{2iχ(n)} P(n′), where n′ is reached from n by moving
-along the great circle in the direction of the deflection d = ∇φ (plus n̂ × ∇Ω for a curl potential Ω)
-by the angle |d|, and χ is the angle between the local basis at n and the basis at n′ parallel-transported
-back to n along that great circle (the polarization rotation; Challinor & Chon 2002, PRD 66, 127301;
-Lewis 2005, PRD 71, 083008, §III). P = Q + iU is spin 2 on the (e_θ, e_φ) basis with healpy's signs.
-
-The unlensed field is evaluated at the displaced points with a non-uniform spherical-harmonic synthesis
-(``ducc0.sht.synthesis_general``) on a Gauss–Legendre grid, and the lensed a_ℓm come from exact
-Gauss–Legendre quadrature (grid sized for the lensed field's tail above the unlensed band limit, see
-:func:`lensing_grid`), so no HEALPix analysis of an under-resolved map is involved.
-
-Public pieces for reuse: :func:`lens_alm` / :func:`lens_tqu_alm` (remap any band-limited spin-0…3 field
-by any φ, e.g. a Wiener-filtered E by a reconstructed φ), :func:`deflection_maps`, :func:`gaussian_alm`,
-:func:`gaussian_cmb_alm` and :func:`simulate_sky`.
+A simulated sky is drawn as Gaussian unlensed T, E, B and φ (:func:`gaussian_cmb_alm`, :func:`gaussian_alm`,
+from the seeded streams of :func:`lensrec.seeding.rng_for`), lensed by the exact remapping of
+:mod:`lensrec.remapping` (T̃(n) = T(n′), P̃(n) = e^{2iχ(n)} P(n′) along the great circle of the deflection;
+Lewis 2005, PRD 71, 083008), then convolved with the beam (and pixel window), given noise and masked
+(:func:`simulate_sky`). The remapping's public pieces (:func:`lens_alm`, :func:`lens_tqu_alm`,
+:func:`deflection_maps`, :func:`lensing_grid`) are re-exported here.
 """
 
 from __future__ import annotations

@@ -16,7 +16,7 @@ from __future__ import annotations
 import numpy as np
 
 from . import harmonics
-from ._checks import as_finite_array
+from ._checks import as_finite_array, as_real_array
 from .harmonics import lmax_from_nalm, scale_alm
 
 __all__ = ["wiener_filter_phi", "wiener_filter_e", "template_inputs"]
@@ -35,14 +35,7 @@ def _coefficients(values, name: str) -> tuple[np.ndarray, int]:
 
 def _spectrum(values, name: str, lmax: int, allow_inf: bool = False) -> np.ndarray:
     """A 1-D non-negative spectrum indexed from ℓ = 0 reaching ``lmax`` (``inf`` allowed if asked)."""
-    if isinstance(values, (str, bytes)) or values is None:
-        raise TypeError(f"{name} must be a numeric array, got {type(values).__name__}")
-    array = np.asarray(values)
-    if not (np.issubdtype(array.dtype, np.floating) or np.issubdtype(array.dtype, np.integer)):
-        raise TypeError(f"{name} must be a real numeric array, got dtype {array.dtype}")
-    array = array.astype(np.float64)
-    if array.ndim != 1:
-        raise ValueError(f"{name} must be 1-D (indexed by l from 0), got shape {array.shape}")
+    array = as_real_array(values, name, ndim=1)
     if array.size < lmax + 1:
         raise ValueError(f"{name} has {array.size} entries (l = 0 ... {array.size - 1}) but l up to {lmax} is needed")
     array = array[: lmax + 1]

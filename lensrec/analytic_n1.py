@@ -1,3 +1,4 @@
+# Over 600 lines: one flat-sky convolution engine for the N1 of every estimator and combination.
 r"""Analytic N1 bias of the quadratic lensing estimators (flat sky, FFT convolutions on a coarse L grid).
 
 N1 is the part of the reconstruction power ⟨φ̂^α φ̂^β*⟩ that is first order in C^φφ and comes from contracting

@@ -1,3 +1,4 @@
+# Over 600 lines: one algorithm (plan, legs, ring blocks, products) sharing one workspace and derivation.
 r"""Position-space engine of the quadratic estimators: unnormalised ḡ_LM from pairs of filtered fields.
 
 The estimators are those of :mod:`lensrec.estimator_weights` (TT, TE, EE, TB, EB; weights [f^XY]* of

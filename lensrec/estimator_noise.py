@@ -1,3 +1,4 @@
+# Over 600 lines: responses, N0, covariance and combined labels come from one pass of the quadrature.
 """Exact full-sky responses and Gaussian reconstruction noise (N0) of the quadratic lensing estimators.
 
 The estimators, their response R_L, normalisation A_L = 1/R_L and the noise covariance are defined in

@@ -1,3 +1,4 @@
+# Over 600 lines: the one wrapper of every ducc0 transform, so healpy signs and layouts live in one place.
 """Spherical-harmonic transforms on HEALPix and Gauss–Legendre grids, in healpy's conventions.
 
 A thin, validated layer over ``ducc0.sht``. Every function takes and returns harmonic coefficients in

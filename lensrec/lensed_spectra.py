@@ -1,3 +1,4 @@
+# Over 600 lines: lensed, delensed and first-order BB spectra share one correlation-function machinery.
 """Full-sky lensed CMB spectra by the correlation-function method, and forecast delensed spectra.
 
 The lensed correlation functions are built on Gauss–Legendre nodes x = cos β from the deflection

@@ -1,3 +1,4 @@
+# Over 600 lines: sigma(r) and the delensing forecast built on it share one B-mode model and its checks.
 """Fisher forecasts of the tensor-to-scalar ratio r from B-mode power, with and without delensing.
 
 The B-mode likelihood is taken Gaussian in the measured C_ℓ^BB with cosmic plus noise variance (common

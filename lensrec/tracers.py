@@ -1,3 +1,4 @@
+# Over 600 lines: one tracer model shared by its simulation, its combination with phi and its forecasts.
 """External tracers of the lensing potential, their optimal combination with φ̂, and correlated simulations.
 
 A tracer I (e.g. a cosmic-infrared-background-like intensity map or a galaxy density) is described by its

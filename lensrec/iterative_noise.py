@@ -44,7 +44,7 @@ from ._checks import as_float, as_int
 from .estimator_noise import ReconstructionNoise, reconstruction_noise
 from .experiment import Experiment, load_experiment
 from .labels import COMPONENTS, ITERATIVE_ESTIMATORS, parse_components, parse_estimators
-from .lensed_spectra import DEFAULT_ELL_MARGIN, lensed_cmb_spectra, residual_lensing_potential
+from .lensed_spectra import DEFAULT_ELL_MARGIN, delensed_spectra
 from .spectra import Spectra, fiducial_spectra
 
 __all__ = [
@@ -180,9 +180,14 @@ def _with_lensed(spectra: Spectra, replacement: Mapping) -> Spectra:
 
 
 def partially_delensed_spectra(
-    spectra: Spectra, n0, lmax: int, ell_margin=None, polarization_only=False, nthreads=None
+    spectra: Spectra, n0, lmax: int, ell_margin=None, polarization_only=False, experiment=None, nthreads=None
 ):
-    """The CMB spectra lensed by the residual C^φφ N0/(C^φφ + N0), by the non-perturbative engine.
+    """The CMB spectra after delensing with a Wiener-filtered φ̂ of noise N0, by the lensed-spectra engine.
+
+    The CMB lensed by the residual C^φφ N0/(C^φφ + N0) (:func:`lensrec.delensed_spectra`), plus, with an
+    ``experiment``, the first-order B modes of the E modes that the delensing cannot use: those outside the
+    experiment's polarization cuts and the noise-dominated ones (the E-noise term of
+    :func:`lensrec.delensed_spectra`). Without it every E mode to ℓ_max + ell_margin is taken as delensable.
 
     Parameters
     ----------
@@ -197,6 +202,8 @@ def partially_delensed_spectra(
     polarization_only : bool
         Skip T and TE (left as the lensed columns of ``spectra``), for estimators that use only E and B; EE
         and BB do not depend on T, so they are the same either way.
+    experiment : Experiment, optional
+        Its E noise and polarization cuts limit the delensable E modes (see above).
     nthreads : int, optional
 
     Returns
@@ -209,12 +216,22 @@ def partially_delensed_spectra(
     margin = DEFAULT_ELL_MARGIN if ell_margin is None else as_int(ell_margin, "ell_margin", minimum=0)
     margin = min(margin, spectra.lmax - lmax)
     top = lmax + margin
-    residual = residual_lensing_potential(spectra.phi[: top + 1], n0)
     unlensed = {key: np.array(values[: top + 1]) for key, values in spectra.unlensed.items()}
     if polarization_only:
         unlensed["TT"] = np.zeros(top + 1)
         unlensed["TE"] = np.zeros(top + 1)
-    out = lensed_cmb_spectra(unlensed, residual, lmax, ell_margin=margin, nthreads=nthreads)
+    e_noise = None if experiment is None else experiment.noise_spectrum("E", top)
+    out = delensed_spectra(
+        unlensed,
+        spectra.phi[: top + 1],
+        n0,
+        lmax,
+        ell_margin=margin,
+        ee_noise=e_noise,
+        lensed_ee=None if experiment is None else spectra.lensed["EE"][: top + 1],
+        nthreads=nthreads,
+    )
+    residual = out.pop("phi_residual")
     if polarization_only:
         out["TT"] = np.array(spectra.lensed["TT"][: lmax + 1])
         out["TE"] = np.array(spectra.lensed["TE"][: lmax + 1])

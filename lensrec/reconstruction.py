@@ -301,6 +301,9 @@ def reconstruct(
     nthreads: int | None = None,
     lensed_weights: bool = True,
     field_filter: FieldFilter | None = None,
+    lensing_iterations: int = 0,
+    progress=None,
+    cancel=None,
 ) -> Reconstruction:
     """Reconstruct the lensing potential φ (and the curl Ω) from observed T, Q, U maps.
 
@@ -335,6 +338,13 @@ def reconstruct(
     field_filter : FieldFilter, optional
         Another filter (anything with ``filter(maps) -> FilteredFields``); ``mask`` and ``lmax`` then belong
         to it. The analytic normalisation still assumes ``experiment``'s isotropic filter.
+    lensing_iterations : int
+        0 (default): the quadratic estimator. N > 0: N steps of the iterative estimator (delens E and B with
+        the current estimate, estimate again; :func:`lensrec.iterative_reconstruction.iterate_reconstruction`),
+        for estimator "EB" on the full sky (no mask, no field_filter, no mean_field).
+    progress, cancel
+        For ``lensing_iterations`` > 0: ``progress(done, total)`` per step, and a ``threading.Event`` that
+        stops after the current step.
 
     Returns
     -------
@@ -362,6 +372,28 @@ def reconstruct(
     ((561,), 'TT')
     """
     estimator = _check_label(estimator)
+    from .iterative_reconstruction import check_lensing_iterations, iterate_reconstruction
+
+    if check_lensing_iterations(lensing_iterations, estimator) > 0:
+        extras = {"mask": mask, "field_filter": field_filter, "mean_field": mean_field}
+        given = [name for name, value in extras.items() if value is not None]
+        if given or not lensed_weights:
+            raise ValueError(
+                f"lensing_iterations={lensing_iterations} works on the full sky with the isotropic filter and "
+                f"lensed weights; drop {', '.join(given) or 'lensed_weights=False'}"
+            )
+        return iterate_reconstruction(
+            maps,
+            experiment,
+            spectra=spectra,
+            estimator=estimator,
+            lensing_iterations=lensing_iterations,
+            lmax_L=lmax_L,
+            lmax=lmax,
+            nthreads=nthreads,
+            progress=progress,
+            cancel=cancel,
+        )
     experiment = load_experiment(experiment)
     if field_filter is None:
         field_filter = IsotropicFilter(

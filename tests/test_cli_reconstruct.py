@@ -131,3 +131,27 @@ def test_bad_input_exits_2_with_one_line(inputs, tmp_path, capsys):
         err = capsys.readouterr().err.strip()
         assert message in err and len(err.splitlines()) == 1, (extra, err)
     assert not (tmp_path / "x" / "phi_alm.fits").exists()
+
+
+def test_reconstruct_with_lensing_iterations(inputs, tmp_path, capsys):
+    out = tmp_path / "iterated"
+    assert main(arguments(inputs, out, "--lensing-iterations", "1")) == 0
+    run = json.loads((out / "run.json").read_text())
+    steps = run["settings"]["n0_per_iteration"]
+    assert run["settings"]["lensing_iterations"] == 1 and len(steps) == 2
+    n0 = json.loads((out / "n0.json").read_text())
+    # n0.json keeps the layout of 'lensrec forecast' and holds the last step's noise
+    assert list(n0["n0"]) == ["EB"] and n0["n0"]["EB"]["gradient"][2:] == steps[-1]["gradient"][2:]
+    phi = read_alm(str(out / "phi_alm.fits"))
+    assert phi.size == lensrec.harmonics.nalm(100) and np.all(np.isfinite(phi))
+    assert "lensing iterations: 1" in capsys.readouterr().out
+    # bad input names the value, before any work
+    assert main(arguments(inputs, tmp_path / "bad", "--lensing-iterations", "-2")) == 2
+    assert "got -2" in capsys.readouterr().err
+    bad = arguments(inputs, tmp_path / "bad", "--lensing-iterations", "1")
+    bad[bad.index("EB")] = "TE"
+    assert main(bad) == 2
+    assert "estimator 'TE' has none" in capsys.readouterr().err
+    assert main(arguments(inputs, tmp_path / "bad", "--lensing-iterations", "1", "--mask", inputs["mask"])) == 2
+    assert "full sky" in capsys.readouterr().err
+    assert not (tmp_path / "bad").exists()

@@ -115,3 +115,21 @@ def test_no_estimator_selected_is_a_visible_warning(app):
     assert section.wait(30)
     assert section.status.kind == "warning" and "No estimator" in section.status.message
     assert not section.view.showing_plot
+
+
+def test_iterative_toggle_adds_the_iterative_curves(app):
+    # The iterative noise lies below the quadratic one (Smith et al. 2012, JCAP 06, 014) and is drawn from
+    # lensrec.iterative_reconstruction_noise unchanged.
+    section = app["noise"]
+    section.curves.value = "iterative"
+    assert app.wait(120)
+    plotted = section.plotted()
+    assert {"EB iterative", "MV iterative"} <= set(plotted)
+    expected = lensrec.iterative_reconstruction_noise(SMALL, estimators=("EB", "MV"), nthreads=2)
+    for label in ("EB", "MV"):
+        x, y = plotted[f"{label} iterative"]
+        np.testing.assert_allclose(y, _phi_units(expected.n0[label]["gradient"])[2:], rtol=1e-12)
+        assert np.all(y <= plotted[label][1] * (1 + 1e-12))
+    section.curves.value = "quadratic"
+    assert app.wait(60)
+    assert "EB iterative" not in section.plotted()

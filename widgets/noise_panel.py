@@ -13,7 +13,7 @@ import ipywidgets as widgets
 import numpy as np
 
 import lensrec
-from lensrec.labels import COMPONENTS, ESTIMATORS, PAIR_ESTIMATORS
+from lensrec.labels import COMPONENTS, ESTIMATORS, ITERATIVE_ESTIMATORS, PAIR_ESTIMATORS
 
 from .plotting import COLORS, WIDE, FigureView, estimator_color, finite_or_nan, phi_plot_units, style_axes
 from .section import Section, labelled
@@ -34,7 +34,9 @@ class EstimatorNoiseSection(Section):
     guide = (
         "Gaussian reconstruction noise N0 of each quadratic estimator (full sky, normalised to unit response) "
         "against the lensing signal. The curl component is a null test: its signal is zero, C_L^φφ is drawn "
-        "only for scale. Lensing S/N: √Σ f_sky (2L+1)/2 [C_L^φφ/(C_L^φφ+N0_L)]² (gradient, L ≥ 2)."
+        "only for scale. Lensing S/N: √Σ f_sky (2L+1)/2 [C_L^φφ/(C_L^φφ+N0_L)]² (gradient, L ≥ 2). "
+        "'quadratic + iterative' adds the converged noise of the iterative estimator (EB, MV; dashed): the "
+        "fixed point of delensing with the residual lensing power and estimating again (Smith et al. 2012)."
     )
 
     def __init__(self, state, delay: float = 0.3, nthreads=None):
@@ -58,6 +60,13 @@ class EstimatorNoiseSection(Section):
             style={"button_width": "12em"},
         )
         self.component = widgets.ToggleButtons(options=list(COMPONENTS), value="gradient")
+        self.curves = widgets.ToggleButtons(
+            options=[("quadratic", "quadratic"), ("quadratic + iterative", "iterative")],
+            value="quadratic",
+            style={"button_width": "12em"},
+        )
+        self.iterative = None
+        self.iterative_inputs = None
         self.table = widgets.HTML()
         self.table.add_class("lensrec-snr-table")
         self.view = FigureView(WIDE, name="noise-n0")
@@ -65,7 +74,7 @@ class EstimatorNoiseSection(Section):
         self.update = LiveUpdate(self._run, self.status, "Computing N0", delay=delay)
         self.live.append(self.update)
 
-        for control in (*self.estimator_boxes.values(), self.lmax_L, self.units, self.component):
+        for control in (*self.estimator_boxes.values(), self.lmax_L, self.units, self.component, self.curves):
             control.observe(lambda change: self.update.trigger(), names="value")
         state.observe(lambda change: self.update.trigger(), names=["experiment", "spectra"])
 
@@ -77,6 +86,7 @@ class EstimatorNoiseSection(Section):
                 widgets.HBox([self.lmax_L, self.lmax_L_hint]),
                 self.component,
                 self.units,
+                self.curves,
             ],
             outputs=[widgets.HBox([self.view.widget, self.table])],
         )
@@ -120,7 +130,28 @@ class EstimatorNoiseSection(Section):
                 f"N0 of {', '.join(estimators)} for {experiment.name}, L ≤ {int(result.L[-1])}, "
                 f"in {self.compute_seconds:.2f} s."
             )
+        self._run_iterative(inputs)
         self._draw()
+
+    def _run_iterative(self, inputs) -> None:
+        """The iterative forecast for the ticked iterative estimators, when the toggle asks for it."""
+        experiment, spectra, estimators, lmax_L = inputs
+        labels = tuple(label for label in estimators if label in ITERATIVE_ESTIMATORS)
+        if self.curves.value != "iterative" or not labels:
+            if self.curves.value == "iterative":
+                self.status.warn(f"Tick {' or '.join(ITERATIVE_ESTIMATORS)} for an iterative curve.")
+            return
+        wanted = (experiment, spectra, labels, lmax_L)
+        if self.iterative_inputs is not None and _same_inputs(self.iterative_inputs, wanted):
+            return
+        self.status.info(f"Iterating the noise of {', '.join(labels)} to its fixed point…")
+        began = time.perf_counter()
+        result = lensrec.iterative_reconstruction_noise(
+            experiment, spectra, estimators=labels, lmax_L=lmax_L, nthreads=self.nthreads
+        )
+        self.iterative, self.iterative_inputs = result, wanted
+        steps = ", ".join(f"{label} {count}" for label, count in result.lensing_iterations.items())
+        self.status.ok(f"Iterative N0 of {', '.join(labels)} in {time.perf_counter() - began:.1f} s (steps: {steps}).")
 
     # ---------------------------------------------------------------------------------- the plot
     def _build_figure(self) -> None:
@@ -132,6 +163,11 @@ class EstimatorNoiseSection(Section):
         for label in ESTIMATORS:
             style = {"lw": 2.0} if label not in PAIR_ESTIMATORS else {"lw": 1.3, "alpha": 0.9}
             (self.lines[label],) = self.ax.plot([], [], color=estimator_color(label), label=f"N0 {label}", **style)
+        self.iterative_lines = {}
+        for label in ITERATIVE_ESTIMATORS:
+            (self.iterative_lines[label],) = self.ax.plot(
+                [], [], color=estimator_color(label), lw=2.0, ls="--", label=f"N0 {label} iterative"
+            )
         self.ax.set_xscale("log")
         self.ax.set_yscale("log")
         self.ax.set_xlabel("lensing multipole L")
@@ -144,6 +180,9 @@ class EstimatorNoiseSection(Section):
         for label, line in self.lines.items():
             if line.get_visible():
                 out[label] = (np.asarray(line.get_xdata()), np.asarray(line.get_ydata()))
+        for label, line in self.iterative_lines.items():
+            if line.get_visible():
+                out[f"{label} iterative"] = (np.asarray(line.get_xdata()), np.asarray(line.get_ydata()))
         return out
 
     def _draw(self) -> None:
@@ -163,10 +202,21 @@ class EstimatorNoiseSection(Section):
             else:
                 line.set_data([], [])
                 line.set_visible(False)
+        iterative = self.iterative if self.curves.value == "iterative" else None
+        for label, line in self.iterative_lines.items():
+            if iterative is not None and label in iterative.n0 and label in result.n0:
+                n0 = finite_or_nan(iterative.n0[label][component])
+                line.set_data(L[shown], phi_plot_units(n0, units)[shown])
+                line.set_visible(True)
+            else:
+                line.set_data([], [])
+                line.set_visible(False)
         self.ax.set_xlim(2, max(3, int(L[-1])))
         self.ax.set_ylim(*Y_LIMITS)
         self.ax.set_ylabel(UNIT_LABELS[units] + ("" if units == "kappa" else "   (φ units)"))
-        handles = [self.signal_line] + [line for line in self.lines.values() if line.get_visible()]
+        handles = [self.signal_line] + [
+            line for line in (*self.lines.values(), *self.iterative_lines.values()) if line.get_visible()
+        ]
         self.ax.legend(handles=handles, loc="lower left", fontsize=8, ncol=4, frameon=False)
         self.plot_title.set_text(f"N0 ({component}) – {result.experiment.name}")
         self.view.draw()

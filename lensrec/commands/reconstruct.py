@@ -18,7 +18,11 @@ DIR/n0.json (analytic N0 of the estimators used, in the layout of 'lensrec forec
 "n0": {"EB": {"gradient": [...], "curl": [...]}, ...}, "snr": {...}, "provenance": {...}}) and DIR/run.json
 (provenance: versions, git commit, experiment, arguments, input checksums, transform counts, timings).
 The estimate is normalised with the full-sky response; with a mask, subtract a mean-field from simulations
-(Python API: lensrec.mean_field) and correct spectra with the mask moments stored in run.json."""
+(Python API: lensrec.mean_field) and correct spectra with the mask moments stored in run.json.
+--lensing-iterations N (EB, full sky): N steps of the iterative estimator after the quadratic one (delens E and B
+with the current Wiener-filtered estimate, estimate again); phi_alm.fits holds the final estimate, n0.json the
+last step's N0 (same layout) and run.json every step's N0 ("n0_per_iteration") and seconds per step.
+  lensrec reconstruct --experiment deep.toml --maps sky/maps.fits --estimator EB --lensing-iterations 1 --out it/"""
 
 OUTPUTS = ("phi_alm.fits", "curl_alm.fits", "n0.json", "run.json")
 
@@ -50,6 +54,13 @@ def add_arguments(parser) -> None:
         help="CMB band limit of the filter (default: the experiment's largest ell_max; <= 3*nside-1)",
     )
     parser.add_argument("--mask", default=None, help="apodized HEALPix FITS mask (values in [0, 1], same nside)")
+    parser.add_argument(
+        "--lensing-iterations",
+        dest="lensing_iterations",
+        type=int,
+        default=0,
+        help="steps of the iterative estimator after the quadratic one (default 0; estimator EB, full sky)",
+    )
     parser.add_argument(
         "--unlensed-weights",
         action="store_true",
@@ -91,6 +102,11 @@ def run(args) -> int:
         raise ValueError(f"--out {args.out!r} exists and is not a folder")
     check_outputs_free(paths.values(), force=args.force)  # refuse before any work
     estimator = parse_estimator(args.estimator)
+    from ..iterative_reconstruction import check_lensing_iterations
+
+    iterations = check_lensing_iterations(args.lensing_iterations, estimator)
+    if iterations and args.mask:
+        raise ValueError(f"--lensing-iterations {iterations} works on the full sky; drop --mask {args.mask!r}")
 
     timings = {}
     start = time.perf_counter()
@@ -113,6 +129,16 @@ def run(args) -> int:
     timings["inputs"] = time.perf_counter() - start
 
     start = time.perf_counter()
+    bar = None
+    if iterations:
+        from tqdm.auto import tqdm
+
+        bar = tqdm(total=iterations + 1, desc="quadratic + lensing iterations", unit="step", leave=False)
+
+        def progress(done, total):
+            bar.n = done
+            bar.refresh()
+
     result = lensrec.reconstruct(
         maps,
         experiment,
@@ -122,7 +148,11 @@ def run(args) -> int:
         lmax=args.lmax,
         nthreads=args.nthreads,
         lensed_weights=not args.unlensed_weights,
+        lensing_iterations=iterations,
+        progress=progress if iterations else None,
     )
+    if bar is not None:
+        bar.close()
     timings["reconstruction"] = time.perf_counter() - start
 
     start = time.perf_counter()
@@ -136,7 +166,12 @@ def run(args) -> int:
         arguments=arguments,
         experiment=experiment,
         extra={
-            "settings": {"estimator": estimator, "lmax_L": result.lmax_L, "lensed_weights": not args.unlensed_weights}
+            "settings": {
+                "estimator": estimator,
+                "lmax_L": result.lmax_L,
+                "lensed_weights": not args.unlensed_weights,
+                "lensing_iterations": iterations,
+            }
         },
     )
     write_json(paths["n0.json"], document, force=args.force)
@@ -160,5 +195,12 @@ def run(args) -> int:
         f"({transforms['synthesis']} syntheses + {transforms['analysis_spin1']} analyses on a "
         f"{result.settings['grid'][0]} x {result.settings['grid'][1]} grid, {timings['reconstruction']:.1f} s)"
     )
+    if iterations:
+        steps = result.settings["n0_per_iteration"]
+        L = min(100, result.lmax_L)
+        print(
+            f"lensing iterations: {iterations}; N0(L={L}) per step: "
+            + ", ".join(f"{step['gradient'][L]:.3e}" for step in steps)
+        )
     print(f"wrote {', '.join(paths.values())}")
     return 0

@@ -119,6 +119,20 @@ def readonly_copy(values, dtype=None) -> np.ndarray:
     return array
 
 
+def run_parallel(work, items, nthreads: int) -> None:
+    """Call ``work(item)`` for every item, on a pool of ``nthreads`` threads when that helps (items must not
+    depend on each other; the work is expected to release the GIL, as numpy and ducc0 calls do)."""
+    items = list(items)
+    if nthreads > 1 and len(items) > 1:
+        import concurrent.futures
+
+        with concurrent.futures.ThreadPoolExecutor(nthreads) as pool:
+            list(pool.map(work, items))
+    else:
+        for item in items:
+            work(item)
+
+
 def resolve_nthreads(nthreads=None) -> int:
     """Number of threads for transforms: explicit argument, else ``LENSREC_NTHREADS``, else all cores."""
     if nthreads is None:

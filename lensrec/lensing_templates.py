@@ -44,12 +44,10 @@ References: Hu 2000, PRD 62, 043007 (first-order lensing of polarization); Lewis
 
 from __future__ import annotations
 
-import concurrent.futures
-
 import numpy as np
 
 from . import harmonics
-from ._checks import as_float, as_int, resolve_nthreads
+from ._checks import as_float, as_int, resolve_nthreads, run_parallel
 from .harmonics import gl_grid_for_band_limits, scale_alm
 from .remapping import DEFAULT_EPSILON, lens_alm
 from .wiener_filters import _coefficients
@@ -220,9 +218,4 @@ def _combine(values: np.ndarray, deflection: np.ndarray, sign: float, nthreads: 
         v1[...] = 0.5 * real
         v2[...] = 0.5 * imag
 
-    if nthreads > 1 and len(blocks) > 1:
-        with concurrent.futures.ThreadPoolExecutor(nthreads) as pool:
-            list(pool.map(work, blocks))
-    else:
-        for block in blocks:
-            work(block)
+    run_parallel(work, blocks, nthreads)

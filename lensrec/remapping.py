@@ -18,14 +18,21 @@ simulation of whole skies built on them is in :mod:`lensrec.sky`.
 
 from __future__ import annotations
 
-import concurrent.futures
 import math
 from dataclasses import dataclass
 
 import numpy as np
 
 from . import harmonics
-from ._checks import as_finite_array, as_float, as_int, check_lmax_for_nside, check_nside, resolve_nthreads
+from ._checks import (
+    as_finite_array,
+    as_float,
+    as_int,
+    check_lmax_for_nside,
+    check_nside,
+    resolve_nthreads,
+    run_parallel,
+)
 from .harmonics import GLGrid, ell_of_alm, gl_grid_for_band_limits, nalm, truncate_alm
 
 __all__ = ["DeflectionMaps", "lens_alm", "lens_tqu_alm", "deflection_maps", "kappa_map", "lensing_grid"]
@@ -152,12 +159,7 @@ def _displaced_positions(deflection: np.ndarray, grid: GLGrid, spin: int, nthrea
             spin,
         )
 
-    if nthreads > 1 and len(blocks) > 1:
-        with concurrent.futures.ThreadPoolExecutor(nthreads) as pool:
-            list(pool.map(work, blocks))
-    else:
-        for block in blocks:
-            work(block)
+    run_parallel(work, blocks, nthreads)
     return loc.reshape(-1, 2), None if rotation is None else rotation.reshape(2, -1)
 
 
@@ -215,12 +217,7 @@ def _rotate_in_place(values: np.ndarray, rotation: np.ndarray, nthreads: int) ->
         v1[...] = new1
 
     starts = range(0, size, step)
-    if nthreads > 1 and len(starts) > 1:
-        with concurrent.futures.ThreadPoolExecutor(nthreads) as pool:
-            list(pool.map(work, starts))
-    else:
-        for start in starts:
-            work(start)
+    run_parallel(work, starts, nthreads)
 
 
 # Lensing moves power from the unlensed band ℓ ≤ lmax_in to ℓ′ ≈ ℓ ± L over the multipoles L where the

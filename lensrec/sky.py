@@ -10,7 +10,6 @@ Lewis 2005, PRD 71, 083008), then convolved with the beam (and pixel window), gi
 
 from __future__ import annotations
 
-import concurrent.futures
 import hashlib
 import math
 from collections.abc import Mapping
@@ -20,7 +19,15 @@ from types import MappingProxyType
 import numpy as np
 
 from . import harmonics
-from ._checks import as_finite_array, as_float, as_int, check_lmax_for_nside, check_nside, resolve_nthreads
+from ._checks import (
+    as_finite_array,
+    as_float,
+    as_int,
+    check_lmax_for_nside,
+    check_nside,
+    resolve_nthreads,
+    run_parallel,
+)
 from .harmonics import ell_of_alm, nalm, truncate_alm
 from .remapping import (  # noqa: F401  (re-exported: the remapping engine lived here)
     ARCMIN,
@@ -100,12 +107,7 @@ def _chunked_normals(rng: np.random.Generator, size: int, consume, dtype, nthrea
         generator = np.random.Generator(np.random.PCG64(child))
         consume(start, generator.standard_normal(min(_CHUNK, size - start), dtype=dtype))
 
-    if nthreads > 1 and len(starts) > 1:
-        with concurrent.futures.ThreadPoolExecutor(nthreads) as pool:
-            list(pool.map(draw, starts))
-    else:
-        for start in starts:
-            draw(start)
+    run_parallel(draw, starts, nthreads)
 
 
 def _unit_normal_alm(rng: np.random.Generator, ncomp: int, lmax: int, nthreads: int = 1) -> np.ndarray:

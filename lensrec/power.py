@@ -139,7 +139,8 @@ def spectrum_scale(scale, size: int) -> np.ndarray:
     """The per-ℓ factor f_ℓ of a plotted quantity f_ℓ C_ℓ, for ℓ = 0 … size − 1.
 
     ``None``: 1 (C_ℓ itself); ``"cmb"``: ℓ(ℓ+1)/2π (D_ℓ); ``"lensing"``: [L(L+1)]²/2π (the lensing-potential
-    convention); or an array of ``size`` finite factors.
+    convention); ``"kappa"``: [L(L+1)]²/4, turning C_L^φφ into C_L^κκ (κ = L(L+1)φ/2); or an array of
+    ``size`` finite factors.
 
     Examples
     --------
@@ -154,7 +155,9 @@ def spectrum_scale(scale, size: int) -> np.ndarray:
             return ell * (ell + 1.0) / (2.0 * np.pi)
         if scale == "lensing":
             return (ell * (ell + 1.0)) ** 2 / (2.0 * np.pi)
-        raise ValueError(f"scale must be None, 'cmb', 'lensing' or an array of factors, got {scale!r}")
+        if scale == "kappa":
+            return (ell * (ell + 1.0)) ** 2 / 4.0
+        raise ValueError(f"scale must be None, 'cmb', 'lensing', 'kappa' or an array of factors, got {scale!r}")
     factor = as_finite_array(scale, "scale", ndim=1)
     if factor.size != size:
         raise ValueError(f"scale must have one factor per multipole ({size}), got {factor.size}")
@@ -217,9 +220,9 @@ def bin_spectrum(cl, edges, weights=None, scale=None, skip_nan: bool = False) ->
         Strictly increasing bin edges in [0, lmax + 1]; bin i holds edges[i] ≤ ℓ < edges[i+1].
     weights : {None, "modes"} or array, shape (lmax + 1,), optional
         Non-negative per-ℓ weights w_ℓ: uniform (default), "modes" for 2ℓ + 1, or an array.
-    scale : {None, "cmb", "lensing"} or array, optional
-        The factor f_ℓ of the binned quantity (:func:`spectrum_scale`): C_ℓ (default), D_ℓ = ℓ(ℓ+1)C_ℓ/2π or
-        [L(L+1)]² C_L/2π.
+    scale : {None, "cmb", "lensing", "kappa"} or array, optional
+        The factor f_ℓ of the binned quantity (:func:`spectrum_scale`): C_ℓ (default), D_ℓ = ℓ(ℓ+1)C_ℓ/2π,
+        [L(L+1)]² C_L/2π or C_L^κκ = [L(L+1)]² C_L^φφ/4.
     skip_nan : bool
         Leave NaN entries out of their bin (its weights renormalised) instead of making the bin NaN.
 

@@ -177,3 +177,12 @@ def test_cross_of_w2_weighted_field_with_the_unmasked_field_scales_as_w2(masked_
         assert abs(value - 1.0) < 3 * sigma + 0.02, (low, value, sigma)
     # passing the mask itself gives the same moment as the recorded moments
     assert np.allclose(mask_corrected(ratio, mask, 2), mask_corrected(ratio, moments, 2), rtol=1e-12)
+
+
+def test_the_kappa_scale_turns_the_phi_spectrum_into_the_kappa_spectrum(rng):
+    # κ_LM = L(L+1) φ_LM / 2 (κ = −∇²φ/2, common practice), so C_L^κκ = [L(L+1)]² C_L^φφ / 4; reference
+    # spectra from healpy.almxfl and healpy.alm2cl. Rounding tolerance.
+    phi = random_alm(rng, 30)
+    L = np.arange(31.0)
+    kappa = hp.almxfl(phi, L * (L + 1) / 2)
+    assert np.allclose(power.spectrum_scale("kappa", 31) * hp.alm2cl(phi), hp.alm2cl(kappa), rtol=1e-12, atol=0)

@@ -15,6 +15,8 @@ import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
+from lensrec.power import spectrum_scale
+
 __all__ = [
     "COLORS",
     "ESTIMATOR_COLORS",
@@ -83,10 +85,9 @@ POSITIVE_CMAP = "magma"
 
 
 def d_ell(cl) -> np.ndarray:
-    """D_ℓ = ℓ(ℓ+1) C_ℓ / 2π for a spectrum indexed from ℓ = 0 (plot units only)."""
+    """D_ℓ = ℓ(ℓ+1) C_ℓ / 2π for a spectrum indexed from ℓ = 0 (plot units only; lensrec.power.spectrum_scale)."""
     cl = np.asarray(cl, dtype=float)
-    ell = np.arange(cl.size, dtype=float)
-    return ell * (ell + 1.0) * cl / (2.0 * np.pi)
+    return spectrum_scale("cmb", cl.size) * cl
 
 
 def phi_plot_units(cl, units: str) -> np.ndarray:
@@ -94,14 +95,10 @@ def phi_plot_units(cl, units: str) -> np.ndarray:
 
     C_L^κκ = [L(L+1)]² C_L^φφ / 4 follows from κ = L(L+1) φ / 2 (lensrec conventions).
     """
+    if units not in ("phi", "kappa"):
+        raise ValueError(f"units must be 'phi' or 'kappa', got {units!r}")
     cl = np.asarray(cl, dtype=float)
-    ell = np.arange(cl.size, dtype=float)
-    weight = (ell * (ell + 1.0)) ** 2
-    if units == "phi":
-        return weight * cl / (2.0 * np.pi)
-    if units == "kappa":
-        return weight * cl / 4.0
-    raise ValueError(f"units must be 'phi' or 'kappa', got {units!r}")
+    return spectrum_scale("lensing" if units == "phi" else "kappa", cl.size) * cl
 
 
 def finite_or_nan(values) -> np.ndarray:

@@ -81,6 +81,7 @@ def lensing_suite_settings(
     data_seed: int | None = None,
     data_maps=None,
     epsilon: float = 1e-7,
+    lensing_iterations: int = 0,
 ) -> dict:
     """Validated, plain-JSON settings of a lensing suite (the input of :func:`run_lensing_suite`).
 
@@ -131,6 +132,13 @@ def lensing_suite_settings(
         Your own observed T, Q, U maps (HEALPix FITS, µK, same nside) as the data instead of a simulation.
     epsilon : float
         Accuracy of the lensing remapping (see :func:`lensrec.simulate_sky`); default 1e-7.
+    lensing_iterations : int
+        0 (default): quadratic estimates. N > 0 (estimator "EB", full sky, no N1): the data's and every
+        simulation's own estimate ("auto") is the iterative one after N steps
+        (:mod:`lensrec.iterative_reconstruction`), so the mean-field, the response from simulations and the
+        Monte-Carlo N0 from their autos are those of the iterated estimate; the mixed-pair estimates (RDN0)
+        stay quadratic. The curl auto is the curl of the last step's residual deflection: a null test with the
+        converged filters, whose noise is that step's curl N0.
 
     Returns
     -------
@@ -191,6 +199,15 @@ def lensing_suite_settings(
             f"lmax + lmax_margin = {lmax + lmax_margin} exceeds the fiducial spectra's reach "
             f"(l <= {spectra.lmax}); lower lmax_margin"
         )
+    from .iterative_reconstruction import check_lensing_iterations
+
+    parsed = _parse_estimators(estimators)
+    iterations = max(check_lensing_iterations(lensing_iterations, label) for label in parsed)
+    if iterations and (mask is not None or n1):
+        raise ValueError(
+            f"lensing_iterations={iterations} works on the full sky without N1 pairs (they are quadratic); "
+            f"drop {'mask' if mask is not None else 'n1=True'}"
+        )
     settings = {
         "kind": SUITE_KIND,
         "format": SUITE_FORMAT,
@@ -213,6 +230,8 @@ def lensing_suite_settings(
         "mask_moments": None,
         "data": {"source": "simulation", "seed": data_seed},
     }
+    if iterations:  # absent when 0, so quadratic suites keep their fingerprints
+        settings["lensing_iterations"] = iterations
     if mask is not None:
         if not isinstance(mask, (str, os.PathLike)):
             raise TypeError(f"mask must be the path of a HEALPix FITS mask, got {type(mask).__name__}")

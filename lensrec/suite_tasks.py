@@ -140,6 +140,23 @@ def _reconstruct(first, second, estimator: str, context: _Context, settings: dic
     return {"gradient": np.array(result.phi_alm), "curl": np.array(result.curl_alm)}
 
 
+def _iterated(maps, estimator: str, context: _Context, settings: dict) -> dict:
+    """The iterative estimate of full-sky maps (lensing_iterations steps; lensrec.iterative_reconstruction)."""
+    from .iterative_reconstruction import iterate_reconstruction
+
+    result = iterate_reconstruction(
+        maps,
+        context.filter.experiment,
+        spectra=context.spectra,
+        estimator=estimator,
+        lensing_iterations=settings["lensing_iterations"],
+        lmax_L=settings["lmax_L"],
+        lmax=settings["lmax"],
+        nthreads=context.nthreads,
+    )
+    return {"gradient": np.array(result.phi_alm), "curl": np.array(result.curl_alm)}
+
+
 def _symmetric_pair(first, second, estimator: str, context: _Context, settings: dict) -> dict:
     """φ̂{a, b} = (φ̂[a, b] + φ̂[b, a]) / 2 for both components, in one pass (each input's legs synthesised
     once, one analysis per estimator; lensrec.reconstruction.quadratic_estimates)."""
@@ -245,7 +262,10 @@ def lensing_simulation_task(settings: dict, index: int) -> dict[str, np.ndarray]
     if sky is not None:
         out["phi_input"] = truncate_alm(sky.phi_alm, lmax_L, lmax_unlensed)
     for estimator in settings["estimators"]:
-        estimate = _reconstruct(fields, None, estimator, context, settings)
+        if settings.get("lensing_iterations", 0):
+            estimate = _iterated(maps, estimator, context, settings)
+        else:
+            estimate = _reconstruct(fields, None, estimator, context, settings)
         for component in COMPONENTS:
             out[estimate_key("auto", component, estimator)] = estimate[component]
     if role == "simulation" and _has_n1_pairs(settings, index):

@@ -112,3 +112,28 @@ def test_iterations_record_every_step_report_progress_and_stop_on_cancel(sky, de
     stop.set()
     cancelled = lensrec.reconstruct(sky.maps, deep, estimator="EB", lensing_iterations=3, nthreads=2, cancel=stop)
     assert cancelled.settings["cancelled"] and cancelled.settings["lensing_iterations"] == 0
+
+
+def test_suite_settings_and_task_take_lensing_iterations(deep, tmp_path):
+    from lensrec.suite_settings import _stage_settings
+    from lensrec.suite_tasks import lensing_simulation_task
+
+    settings = lensrec.lensing_suite_settings(
+        deep, nside=NSIDE, lmax=LMAX, lmax_L=100, estimators="EB", n_sims=4, lmax_margin=64, lensing_iterations=1
+    )
+    assert settings["lensing_iterations"] == 1
+    quadratic = lensrec.lensing_suite_settings(deep, nside=NSIDE, lmax=LMAX, lmax_L=100, estimators="EB", n_sims=4)
+    assert "lensing_iterations" not in quadratic  # quadratic suites keep their fingerprints
+    with pytest.raises(ValueError, match="estimator 'TT' has none"):
+        lensrec.lensing_suite_settings(deep, nside=NSIDE, lmax=LMAX, estimators="TT", lensing_iterations=1)
+    with pytest.raises(ValueError, match="without N1 pairs"):
+        lensrec.lensing_suite_settings(deep, nside=NSIDE, lmax=LMAX, estimators="EB", n1=True, lensing_iterations=1)
+    out = lensing_simulation_task(_stage_settings(settings, "simulations", str(tmp_path)), 0)
+    iterated = out["auto_gradient_EB"]
+    assert iterated.shape == out["phi_input"].shape and np.all(np.isfinite(iterated))
+    direct = lensrec.reconstruct(
+        lensrec.simulate_sky(deep, nside=NSIDE, lmax=LMAX, seed=settings["seed"], index=0, lmax_margin=64,
+                             nthreads=1).maps,
+        deep, estimator="EB", lmax_L=100, lmax=LMAX, nthreads=1, lensing_iterations=1,
+    )  # fmt: skip
+    np.testing.assert_allclose(iterated, direct.phi_alm, rtol=1e-6, atol=1e-6 * np.abs(direct.phi_alm).max())

@@ -41,6 +41,13 @@ def add_arguments(parser) -> None:
     run.add_argument("--seed", type=int, default=0, help="seed of the simulations (default: %(default)s)")
     run.add_argument("--data-seed", type=int, default=None, help="seed of the simulated data (default: seed + 1)")
     run.add_argument("--data-maps", default=None, help="analyse these T, Q, U FITS maps as the data instead")
+    run.add_argument(
+        "--lensing-iterations",
+        dest="lensing_iterations",
+        type=int,
+        default=0,
+        help="iterate each auto estimate N steps (estimator EB, full sky, no --n1; default 0 = quadratic)",
+    )
     run.add_argument("--n1", action="store_true", help="also compute the Monte-Carlo N1 (three lensings per sim)")
     run.add_argument(
         "--n1-sims",
@@ -125,6 +132,7 @@ def _run_suite(args) -> int:
         threads_per_task=args.threads_per_task,
         data_seed=args.data_seed,
         data_maps=args.data_maps,
+        lensing_iterations=args.lensing_iterations,
     )
     client = cluster = None
     try:

@@ -89,6 +89,7 @@ def run_demo(
     from .delensing import delens_maps
     from .estimator_noise import reconstruction_noise
     from .experiment import load_experiment
+    from .iterative_noise import iterative_reconstruction_noise
     from .reconstruction import compare_with_input, reconstruct
     from .remapping import deflection_maps, kappa_map
     from .sky import simulate_sky
@@ -121,6 +122,9 @@ def run_demo(
     step("forecast", f"forecast N0 of every estimator for {experiment.name}")
     lmax_forecast = min(3000, max(experiment.ell_max_temperature, experiment.ell_max_polarization))
     forecast = reconstruction_noise(experiment, spectra, lmax_L=lmax_forecast, nthreads=nthreads)
+    iterative = iterative_reconstruction_noise(
+        experiment, spectra, estimators=("EB", "MV"), lmax_L=lmax_forecast, nthreads=nthreads
+    )
 
     step("simulate", f"simulate a lensed, beamed, noisy sky at nside {nside}, lmax {lmax} (seed {seed})")
     sky = simulate_sky(experiment, spectra, nside=nside, lmax=lmax, seed=seed, noise=True, nthreads=nthreads)
@@ -140,6 +144,7 @@ def run_demo(
 
     step("tensor_forecast", "forecast sigma(r) with and without delensing")
     tensor = delensing_forecast(experiment, spectra, n0=forecast.n0["MV"]["gradient"], nthreads=nthreads)
+    tensor_iterative = iterative.delensing_forecast("MV", spectra=spectra, nthreads=nthreads)
     # the same forecast for what this simulation can do (its band limit and its reconstruction's N0), to
     # compare with the A_lens^res measured on it
     n0_sim = np.full(spectra.lmax + 1, np.inf)
@@ -155,6 +160,7 @@ def run_demo(
         experiment=experiment, spectra=spectra, forecast=forecast, sky=sky, deflection=deflection,
         reconstruction=rec, comparison=comparison, kappa=kappa, kappa_L_max=L_show, delensed=delensed,
         tensor=tensor, tensor_simulation=tensor_sim, forecast_L=FORECAST_L, caution=CAUTION,
+        iterative=iterative, tensor_iterative=tensor_iterative,
     )  # fmt: skip
     record = provenance(
         "demo",

@@ -36,6 +36,8 @@ class DemoResults:
     tensor_simulation: object  # DelensingForecast at the simulation's band limit and N0
     forecast_L: tuple
     caution: str
+    iterative: object = None  # IterativeNoise (EB, MV) or None
+    tensor_iterative: object = None  # DelensingForecast with the iterative MV N0, or None
 
 
 def _log_edges(low: int, high: int, count: int) -> np.ndarray:
@@ -93,6 +95,7 @@ def demo_summary(results: DemoResults, provenance: dict) -> dict:
             "alens_residual_forecast_full_experiment": float(results.tensor.alens_residual),
             "notes": list(delensed.notes),
         },
+        "iterative_forecast": _iterative_summary(results),
         "tensor_forecast": {
             "sigma_r_lensed": float(results.tensor.sigma_r_lensed),
             "sigma_r_delensed": float(results.tensor.sigma_r_delensed),
@@ -101,6 +104,24 @@ def demo_summary(results: DemoResults, provenance: dict) -> dict:
         },
         "caution": results.caution,
         "provenance": provenance,
+    }
+
+
+def _iterative_summary(results: DemoResults) -> dict | None:
+    """Converged iterative N0 at the forecast L, steps, and A_lens^res / σ(r) of delensing with it."""
+    iterative, tensor = results.iterative, results.tensor_iterative
+    if iterative is None:
+        return None
+    lmax_forecast = int(iterative.L[-1])
+    return {
+        "n0_gradient": {
+            label: {str(L): float(parts["gradient"][L]) for L in results.forecast_L if L <= lmax_forecast}
+            for label, parts in iterative.n0.items()
+        },
+        "lensing_iterations": dict(iterative.lensing_iterations),
+        "tolerance": float(iterative.settings["tolerance"]),
+        "alens_residual": None if tensor is None else float(tensor.alens_residual),
+        "sigma_r_delensed": None if tensor is None else float(tensor.sigma_r_delensed),
     }
 
 
@@ -139,6 +160,11 @@ def _noise_figure(path, results: DemoResults, force: bool) -> None:
         for label in forecast.n0:
             ax.plot(L_f[2:], (scale * forecast.n0[label][component])[2:], color=report.ESTIMATOR_COLOURS.get(label),
                     lw=2.2 if label == "MV" else 1.3, label=f"N0 {label}")  # fmt: skip
+        iterative = results.iterative
+        for label in () if iterative is None else iterative.n0:
+            L_i = iterative.L
+            ax.plot(L_i[2:], (spectrum_scale("lensing", L_i.size) * iterative.n0[label][component])[2:],
+                    color=report.ESTIMATOR_COLOURS.get(label), lw=1.8, ls="--", label=f"N0 {label} iterative")  # fmt: skip
         ax.set(xscale="log", yscale="log", xlabel="lensing multipole $L$", ylabel="$[L(L+1)]^2 C_L / 2\\pi$",
                title=f"N0, {component} – {experiment.name}")  # fmt: skip
         ax.set_ylim(1e-9, 1e-5)
@@ -271,6 +297,18 @@ def _write_page(paths, summary, results: DemoResults, force):
     d = summary["delensing"]
     t = summary["tensor_forecast"]
     s = summary["simulation"]
+    it = summary.get("iterative_forecast")
+    iterative_text = (
+        []
+        if not it
+        else [
+            "Dashed: the converged noise of the iterative estimator (delens with the current estimate, estimate "
+            "again; Smith et al. 2012, JCAP 06, 014), steps to converge "
+            + ", ".join(f"{label} {count}" for label, count in it["lensing_iterations"].items())
+            + f" (tolerance {it['tolerance']:g}). Delensing with the iterative MV N0 forecasts A_lens^res = "
+            f"{it['alens_residual']:.3f} and σ(r) = {it['sigma_r_delensed']:.3g}."
+        ]
+    )
     labels = list(f["lensing_snr"])
     n0_rows = [
         [label] + [f["n0_gradient"][label].get(str(L), float("nan")) for L in forecast_L] + [f["lensing_snr"][label]]
@@ -284,7 +322,8 @@ def _write_page(paths, summary, results: DemoResults, force):
                 f"{experiment.noise_temperature:g}/{experiment.noise_polarization:g} µK-arcmin in T/P, beam "
                 f"{experiment.beam_fwhm:g} arcmin, ℓ = {experiment.ell_min}–{experiment.ell_max_temperature}/"
                 f"{experiment.ell_max_polarization}), and the lensing S/N with f_sky = {experiment.sky_fraction:g}."
-            ],
+            ]
+            + iterative_text,
             [paths["noise_forecast.png"]],
             [(["estimator"] + [f"N0 at L={L}" for L in forecast_L] + ["lensing S/N"], n0_rows)],
         ),
@@ -363,4 +402,11 @@ def summary_table(summary) -> list[str]:
         f"{d['alens_residual_forecast_full_experiment']:.3f})"
     )
     log(f"sigma(r): {t['sigma_r_lensed']:.3g} without delensing, {t['sigma_r_delensed']:.3g} with")
+    it = summary.get("iterative_forecast")
+    if it:
+        n0 = it["n0_gradient"].get("MV", {})
+        log(
+            f"iterative MV forecast: N0(L=100) {n0.get('100', float('nan')):.3e}, A_lens^res {it['alens_residual']:.3f}, "
+            f"sigma(r) {it['sigma_r_delensed']:.3g}"
+        )
     return lines

@@ -62,3 +62,17 @@ def test_demo_refuses_to_overwrite_and_inspect_reads_it(demo_run, capsys):
 def test_demo_rejects_a_bad_nside(tmp_path, capsys):
     assert main(["demo", "--out", str(tmp_path / "x"), "--nside", "100"]) == 2
     assert "power of two" in capsys.readouterr().err
+
+
+def test_demo_adds_the_iterative_forecast(demo_run):
+    # At 1.4 µK-arcmin the iterated noise and the residual lensing B after delensing with it are lower than
+    # with the quadratic MV estimator (Smith et al. 2012, JCAP 06, 014).
+    summary = json.loads((demo_run / "summary.json").read_text())
+    iterative = summary["iterative_forecast"]
+    assert set(iterative["n0_gradient"]) == {"EB", "MV"}
+    for L, value in iterative["n0_gradient"]["MV"].items():
+        assert value < summary["forecast"]["n0_gradient"]["MV"][L]
+    assert all(count >= 1 for count in iterative["lensing_iterations"].values())
+    assert 0 < iterative["alens_residual"] < summary["delensing"]["alens_residual_forecast_full_experiment"]
+    assert iterative["sigma_r_delensed"] < summary["tensor_forecast"]["sigma_r_delensed"]
+    assert "iterative" in (demo_run / "index.html").read_text()

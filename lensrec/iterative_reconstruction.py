@@ -25,7 +25,7 @@ B-mode self-term. That argument holds for a φ estimate independent of the B mod
 φ̂ of the same noise, one step at nside 256, 0.5 µK-arcmin gives response 0.99 and noise 1.03 N_k). The EB
 estimate is built from the same B modes it delenses, and the template then holds each observed B_ℓm itself:
 the delensed B is short of ε_ℓ B_ℓm (:func:`b_mode_self_term`, ε ≈ 0.4 at ℓ ≲ 100 at 0.5 µK-arcmin), which
-left alone cuts the next step's response to 0.65-0.75 and wipes out the gain. Each step adds ε_ℓ B_ℓm back
+left alone cuts the next step's response to 0.65-0.77 and wipes out the gain. Each step adds ε_ℓ B_ℓm back
 (first order in the template). Measured on simulations (docs/validation.md): after one step the response is
 0.92-0.95 and the noise, after a Monte-Carlo response correction, is below the quadratic estimator's by about
 the forecast gain. Later steps use ε from the previous step's noise, weights and filter; that first-order

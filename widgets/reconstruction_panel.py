@@ -74,9 +74,23 @@ class ReconstructionSection(Section):
         self.estimator.add_class("lensrec-reconstruction-estimator")
         self.lmax_L = labelled(widgets.IntText(value=0, description="lmax_L"), "16em")
         self.hint = widgets.HTML("<span style='color:#515a5a'>&nbsp;0 = the sky's lmax</span>")
+        self.lensing_iterations = labelled(
+            widgets.BoundedIntText(value=0, min=0, max=10, description="lensing iterations"), "16em"
+        )
+        self.lensing_iterations.add_class("lensrec-lensing-iterations")
+        self.iterations_hint = widgets.HTML(
+            "<span style='color:#515a5a'>&nbsp;0 = quadratic; ≥ 1: delens E, B and estimate again (EB, full sky)</span>"
+        )
         self.run_button = widgets.Button(description="Reconstruct", icon="play", button_style="primary")
         self.run_button.add_class("lensrec-reconstruct")
-        self.task = LongTask(self.run_button, self.status, "Reconstructing the lensing potential", "reconstruction")
+        self.cancel_button = widgets.Button(description="Cancel", icon="stop")
+        self.task = LongTask(
+            self.run_button,
+            self.status,
+            "Reconstructing the lensing potential",
+            "reconstruction",
+            cancel_button=self.cancel_button,
+        )
         self.tasks.append(self.task)
         self.maps_view = FigureView(MAPS_FIGURE, name="reconstruction-maps")
         self.spectra_view = FigureView(SPECTRA_FIGURE, name="reconstruction-spectra")
@@ -87,7 +101,8 @@ class ReconstructionSection(Section):
         self._on_sky({"new": state.sky})
         self.layout(
             controls=[widgets.HBox([self.estimator, self.lmax_L, self.hint]),
-                      widgets.HBox([self.run_button, self.task.widget])],
+                      widgets.HBox([self.lensing_iterations, self.iterations_hint]),
+                      widgets.HBox([self.run_button, self.cancel_button, self.task.widget])],
             outputs=[self.maps_view.widget, self.spectra_view.widget],
         )  # fmt: skip
 
@@ -114,11 +129,25 @@ class ReconstructionSection(Section):
         estimator = self.estimator.value
         lmax_L = self.lmax_L.value or sky.lmax
         nthreads = self.nthreads
+        iterations = self.lensing_iterations.value
 
         def work(report, cancel):
             report(0.05, f"filtering the maps and forming the {estimator} estimate…")
+            steps = {}
+            if iterations:
+                steps = {
+                    "lensing_iterations": iterations,
+                    "cancel": cancel,
+                    "progress": lambda done, total: report(
+                        0.05 + 0.65 * done / total,
+                        f"step {done} of {total} (quadratic, then iterations)…",
+                        check_cancel=False,
+                    ),
+                }
             result = lensrec.reconstruct(sky.maps, experiment, spectra, estimator=estimator, lmax_L=lmax_L,
-                                         mask=sky.mask, lmax=sky.lmax, nthreads=nthreads)  # fmt: skip
+                                         mask=sky.mask, lmax=sky.lmax, nthreads=nthreads, **steps)  # fmt: skip
+            if result.settings.get("cancelled"):
+                report(0.7, "cancelled")  # raises Cancelled: the iterations stopped early, nothing is shown
             report(0.7, "Wiener filter, κ maps and spectra…")
             return result, self._products(result, sky, spectra)
 

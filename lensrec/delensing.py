@@ -10,7 +10,7 @@ with φ̂ the normalised (unit-response) gradient reconstruction of Gaussian noi
 inverse-variance-filtered E modes (on the full sky with isotropic noise, Ē = E / (C̃^EE + N^EE), so
 E^WF = C̃^EE/(C̃^EE + N^EE) · E) and C̃^EE the lensed E spectrum.
 
-The two templates ("remap", "first_order"), their accuracy and cost are described in
+The templates ("first_order", the default; "remap"; "remap_delensed_e"), their accuracy and cost are described in
 :mod:`lensrec.lensing_templates`; the Wiener filters are in :mod:`lensrec.wiener_filters`. Both are
 re-exported here, and :func:`delens` runs filter → template → spectra.
 
@@ -48,6 +48,7 @@ from . import harmonics
 from ._checks import as_int
 from .lensing_templates import (  # noqa: F401  (re-exported: template construction lived here)
     DEFAULT_EPSILON,
+    DEFAULT_TEMPLATE_METHOD,
     TEMPLATE_METHODS,
     _check_method,
     lensing_b_template,
@@ -63,6 +64,7 @@ from .wiener_filters import (  # noqa: F401  (re-exported: the Wiener filters li
 
 __all__ = [
     "TEMPLATE_METHODS",
+    "DEFAULT_TEMPLATE_METHOD",
     "DelensingResult",
     "wiener_filter_phi",
     "wiener_filter_e",
@@ -297,7 +299,7 @@ def delensing_spectra(
     lensed_bb=None,
     ell_min: int | None = None,
     ell_max: int | None = None,
-    method: str = "remap",
+    method: str = DEFAULT_TEMPLATE_METHOD,
 ) -> DelensingResult:
     """Residual B modes (observed − template) and the spectra, efficiency and A_lens^res that describe them.
 
@@ -385,7 +387,7 @@ def delens(
     e_alm,
     phi_alm,
     lmax: int | None = None,
-    method: str = "remap",
+    method: str = DEFAULT_TEMPLATE_METHOD,
     noise_bb=None,
     lensed_bb=None,
     ell_min: int | None = None,
@@ -403,7 +405,7 @@ def delens(
         Wiener-filtered E (µK) and φ (see :func:`wiener_filter_e`, :func:`wiener_filter_phi`).
     lmax : int, optional
         Band limit of the template and the spectra; default min(ℓ_max of ``e_alm``, of ``observed_b_alm``).
-    method : {"remap", "first_order"}
+    method : {"first_order", "remap", "remap_delensed_e"}
         Template method (:func:`lensing_b_template`).
     noise_bb, lensed_bb, ell_min, ell_max
         As for :func:`delensing_spectra`.
@@ -458,13 +460,15 @@ def delens_maps(
     spectra=None,
     n0=None,
     lmax: int | None = None,
-    method: str = "remap",
+    method: str = DEFAULT_TEMPLATE_METHOD,
     mask=None,
     ell_min: int | None = None,
     ell_max: int | None = None,
     epsilon: float = DEFAULT_EPSILON,
     nthreads: int | None = None,
     progress=None,
+    phi_filtered: bool = False,
+    notes=(),
 ) -> DelensingResult:
     """Delens observed maps with a lensing reconstruction: the whole recipe from maps to residual spectra.
 
@@ -486,10 +490,11 @@ def delens_maps(
     spectra : Spectra, optional
         Theory spectra (filters, lensed BB); default the fiducial cosmology.
     n0 : array, optional
-        Gaussian N0 of φ̂ per L (needed when ``reconstruction`` is an array; default its ``n0["gradient"]``).
+        Noise of φ̂ per L for its Wiener filter (needed when ``reconstruction`` is an array; default its
+        ``n0["gradient"]``): the Gaussian N0, or N0 + N1, or an iterative N0 (:func:`lensrec.phi_noise.read_phi_noise`).
     lmax : int, optional
         Band limit of E, B and the template; default min(3·nside − 1, ℓ_max of polarization).
-    method : {"remap", "first_order"}
+    method : {"first_order", "remap", "remap_delensed_e"}
         Template method (:func:`lensing_b_template`).
     mask : array, optional
         Weights applied to the maps before filtering (:func:`template_inputs`).
@@ -500,6 +505,12 @@ def delens_maps(
     nthreads : int, optional
     progress : callable, optional
         ``progress(fraction, message)`` before each step.
+    phi_filtered : bool, default False
+        Use φ as given, without a Wiener filter: the exact φ of a simulation (the perfect-knowledge bound), or
+        a φ that is already a Wiener estimate (:func:`lensrec.combined_phi` of tracers); ``n0`` must then be
+        omitted.
+    notes : sequence of str
+        Caveats put before the result's own notes (e.g. the bias treatment applied).
 
     Returns
     -------
@@ -507,7 +518,8 @@ def delens_maps(
 
     Notes
     -----
-    .. warning:: If φ̂ was reconstructed from these same B modes (EB, TB, MV, GMV), the measured residual,
+    .. warning:: If φ̂ was reconstructed from these same B modes (any label with
+       :func:`lensrec.labels.uses_b_modes`: EB, TB, MV, GMV), the measured residual,
        efficiency and A_lens^res are biased low (delensing bias; module docstring and ``result.notes``).
 
     References
@@ -520,17 +532,22 @@ def delens_maps(
     report = progress if progress is not None else (lambda fraction, message: None)
     experiment = load_experiment(experiment)
     spectra = fiducial_spectra() if spectra is None else spectra
+    if not isinstance(phi_filtered, (bool, np.bool_)):
+        raise TypeError(f"phi_filtered must be True or False, got {phi_filtered!r}")
+    if phi_filtered and n0 is not None:
+        raise ValueError("n0 was given with phi_filtered=True: a phi used as given (exact or already filtered) has no "
+                         "Wiener filter to build from a noise; give one or the other")  # fmt: skip
     if hasattr(reconstruction, "phi_alm"):
         phi_alm = reconstruction.phi_alm
-        n0 = reconstruction.n0["gradient"] if n0 is None else n0
+        n0 = reconstruction.n0["gradient"] if n0 is None and not phi_filtered else n0
     else:
         phi_alm = reconstruction
-        if n0 is None:
+        if n0 is None and not phi_filtered:
             raise ValueError("n0 is needed when the reconstruction is given as phi_alm alone (its Gaussian N0 per L)")
     report(0.05, "Wiener-filtered E and observed B of the maps")
     e_wiener, b_observed, fields = template_inputs(maps, experiment, spectra, lmax=lmax, mask=mask, nthreads=nthreads)
     lmax = fields.lmax
-    phi_wiener = wiener_filter_phi(phi_alm, n0, spectra.phi)
+    phi_wiener = _coefficients(phi_alm, "phi_alm")[0] if phi_filtered else wiener_filter_phi(phi_alm, n0, spectra.phi)
     report(0.3, f"lensing B template ({method})")
     result = delens(
         b_observed,
@@ -546,4 +563,8 @@ def delens_maps(
         nthreads=nthreads,
     )
     report(1.0, "delensed spectra")
+    if notes:
+        import dataclasses
+
+        result = dataclasses.replace(result, notes=tuple(notes) + tuple(result.notes))
     return result

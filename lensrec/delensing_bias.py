@@ -67,10 +67,8 @@ class ExcludedBExperiment(Experiment):
 def exclude_delensed_b(experiment, ell_max_delensed: int) -> ExcludedBExperiment:
     """The experiment to reconstruct φ with when the template delenses the B modes at ℓ ≤ ell_max_delensed.
 
-    Raises
-    ------
-    ValueError
-        If no B multipole would be left for the reconstruction (ell_max_delensed ≥ the polarization ℓ_max).
+    If ``ell_max_delensed`` reaches the polarization ℓ_max no B mode is left: combined labels then combine
+    their B-free members only (MV becomes TT+TE+EE), and a B-using pair estimator has no usable multipole.
 
     Examples
     --------
@@ -83,12 +81,6 @@ def exclude_delensed_b(experiment, ell_max_delensed: int) -> ExcludedBExperiment
     """
     experiment = load_experiment(experiment)
     ell_max_delensed = as_int(ell_max_delensed, "ell_max_delensed", minimum=2)
-    if ell_max_delensed >= experiment.ell_max_polarization:
-        raise ValueError(
-            f"ell_max_delensed={ell_max_delensed} leaves no B modes for the reconstruction (the experiment's "
-            f"polarization l_max is {experiment.ell_max_polarization}); delens a lower range or use a B-free "
-            "estimator such as TT+TE+EE"
-        )
     return ExcludedBExperiment(**experiment.to_dict(), b_excluded_ell_max=ell_max_delensed)
 
 

@@ -36,8 +36,12 @@ def test_excluding_the_delensed_b_modes_changes_only_the_b_leg():
     cut = lensrec.reconstruction_noise(excluded, estimators=("EE", "EB"), lmax_L=500)
     assert np.array_equal(full.n0["EE"]["gradient"][2:], cut.n0["EE"]["gradient"][2:])
     assert np.all(cut.n0["EB"]["gradient"][2:] > full.n0["EB"]["gradient"][2:])
-    with pytest.raises(ValueError, match="leaves no B modes"):
-        exclude_delensed_b(experiment, 4000)
+    # with every B mode excluded, MV combines TT, TE and EE only: it is TT+TE+EE (Okamoto & Hu 2003, §III)
+    everything = lensrec.reconstruction_noise(exclude_delensed_b(experiment, 4000), estimators=("MV",), lmax_L=300).n0[
+        "MV"
+    ]["gradient"]
+    b_free = lensrec.reconstruction_noise(experiment, estimators=("TT+TE+EE",), lmax_L=300).n0["TT+TE+EE"]["gradient"]
+    np.testing.assert_allclose(everything[2:], b_free[2:], rtol=1e-12)
 
 
 def test_forecasts_say_which_treatment_was_applied():

@@ -54,7 +54,7 @@ def test_azimuthally_symmetric_inputs_make_no_b_modes():
     [
         ({"lmax": 41}, ValueError, "exceeds the band limit of e_alm"),
         ({"lmax": 1}, ValueError, "lmax must be >= 2"),
-        ({"method": "second_order"}, ValueError, "method must be one of 'remap', 'first_order'"),
+        ({"method": "second_order"}, ValueError, "method must be one of 'first_order', 'remap', 'remap_delensed_e'"),
         ({"method": None}, ValueError, "method must be one of"),
         ({"e_alm": "nan"}, ValueError, "e_alm contains 1 non-finite"),
         ({"phi_alm": "nan"}, ValueError, "phi_alm contains 1 non-finite"),

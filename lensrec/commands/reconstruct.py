@@ -62,6 +62,14 @@ def add_arguments(parser) -> None:
         help="steps of the iterative estimator after the quadratic one (default 0; estimator EB, full sky)",
     )
     parser.add_argument(
+        "--exclude-delensed-b",
+        type=int,
+        default=None,
+        metavar="L",
+        help="leave the B modes at l <= L out of the reconstruction, so that delensing them later carries no "
+        "B-mode reuse bias (Baleato Lizancos, Challinor & Carron 2021); recorded in n0.json",
+    )
+    parser.add_argument(
         "--unlensed-weights",
         action="store_true",
         help="use unlensed CMB spectra in the weights and response (default: lensed)",
@@ -111,6 +119,11 @@ def run(args) -> int:
     timings = {}
     start = time.perf_counter()
     experiment = lensrec.load_experiment(args.experiment)
+    source_experiment = experiment
+    if args.exclude_delensed_b is not None:
+        from ..delensing_bias import exclude_delensed_b
+
+        source_experiment = exclude_delensed_b(experiment, args.exclude_delensed_b)
     columns = _column_count(args.maps)
     if columns < 3:
         raise ValueError(f"map file {args.maps!r} must hold three maps (T, Q, U), found {columns} column(s)")
@@ -141,7 +154,7 @@ def run(args) -> int:
 
     result = lensrec.reconstruct(
         maps,
-        experiment,
+        source_experiment,
         estimator=estimator,
         lmax_L=args.lmax_L,
         mask=mask,
@@ -171,6 +184,7 @@ def run(args) -> int:
                 "lmax_L": result.lmax_L,
                 "lensed_weights": not args.unlensed_weights,
                 "lensing_iterations": iterations,
+                "b_excluded_ell_max": args.exclude_delensed_b,
             }
         },
     )

@@ -16,12 +16,14 @@ Exactly the diagonal filter of :mod:`lensrec.estimator_weights` (module docstrin
 
 and X̄_ℓm = 0 outside each field's multipole cuts, with b_ℓ the experiment's Gaussian beam, w the mask
 (1 without one) and C_tot = lensed CMB + beam-deconvolved noise (:meth:`lensrec.Experiment.total_spectra`).
-T̄, Ē, B̄ are in µK⁻¹. The harmonic analysis is healpy's iterative ``map2alm`` (3 Jacobi steps by
-default, :func:`lensrec.harmonics.map2alm_tqu`); no pixel window is deconvolved (lensrec's simulations do
-not apply one unless asked). HEALPix quadrature is accurate for ℓ_max ≤ 2·nside (residual power ~1e-11 of
-the signal after 3 steps, measured at nside 512); towards 3·nside it degrades quickly (≈ 5% power errors
-near ℓ_max = 2.9·nside, which lowered the measured EB response by 2% in a test at nside 512, ℓ_max 1500),
-so keep ℓ_max ≤ 2·nside for lensing reconstruction.
+T̄, Ē, B̄ are in µK⁻¹. The harmonic analysis is healpy's iterative ``map2alm`` scheme
+(:func:`lensrec.harmonics.map2alm_tqu`) with ``jacobi_iterations`` steps, by default the fewest that keep
+the estimators' response within 1e-3 (:func:`lensrec.harmonics.jacobi_iterations_for`; measured table in
+docs/filtering.md): none up to ℓ_max = 2·nside at nside ≥ 256, where HEALPix quadrature alone leaves
+transfer errors ≤ 1.4e-4, one at smaller nside, and 3 above 2·nside. No pixel window is deconvolved (lensrec's simulations do not apply one unless asked).
+Towards 3·nside the analysis degrades whatever the iterations (≈ 5% power errors near ℓ_max = 2.9·nside,
+which lowered the measured EB response by 2% in a test at nside 512, ℓ_max 1500), so keep ℓ_max ≤ 2·nside
+for lensing reconstruction.
 
 Joint filter (``IsotropicFilter(..., joint=True)``): the same analysis, then X̄_ℓm = (C_ℓ⁻¹ X_ℓm) / b_ℓ with
 C_ℓ the 3×3 total (T, E, B) covariance (TE correlation kept; :func:`joint_inverse_spectra`), so Ē draws on
@@ -287,8 +289,11 @@ class IsotropicFilter:
     apodization : float, optional
         Taper width in degrees: apodize a *binary* ``mask`` first (:func:`lensrec.masks.apodize_binary_mask`,
         C2 taper). Default: use ``mask`` as given.
-    jacobi_iterations : int
-        Jacobi iterations of the HEALPix analysis (default 3, healpy's default; 0 is plain quadrature).
+    jacobi_iterations : int or "auto"
+        Jacobi iterations of the HEALPix analysis (0 is plain quadrature; healpy's default is 3). Default
+        "auto": per call, the fewest that keep the response within 1e-3 for the maps' nside and ``lmax``
+        (:func:`lensrec.harmonics.jacobi_iterations_for`: 0 up to ℓ_max = 2·nside at nside ≥ 256, 1 below,
+        else 3; measured table in docs/filtering.md). The number used is recorded in ``FilteredFields.settings``.
     nthreads : int, optional
         Threads for the transforms (default ``LENSREC_NTHREADS`` or all cores).
     joint : bool
@@ -321,7 +326,7 @@ class IsotropicFilter:
     lmax: int | None = None
     mask: np.ndarray | None = None
     apodization: float | None = None
-    jacobi_iterations: int = 3
+    jacobi_iterations: int | str = "auto"
     nthreads: int | None = None
     joint: bool = False
     iterations: int | None = None
@@ -358,7 +363,12 @@ class IsotropicFilter:
         set_(self, "experiment", experiment)
         set_(self, "spectra", spectra)
         set_(self, "lmax", lmax)
-        set_(self, "jacobi_iterations", as_int(self.jacobi_iterations, "jacobi_iterations", minimum=0, maximum=100))
+        if self.jacobi_iterations != "auto":
+            if isinstance(self.jacobi_iterations, str):
+                raise ValueError(f"jacobi_iterations must be an integer >= 0 or 'auto', got {self.jacobi_iterations!r}")
+            set_(
+                self, "jacobi_iterations", as_int(self.jacobi_iterations, "jacobi_iterations", minimum=0, maximum=100)
+            )
         if self.nthreads is not None:
             set_(self, "nthreads", resolve_nthreads(self.nthreads))
         if self.mask is not None:
@@ -460,8 +470,11 @@ class IsotropicFilter:
                 )
             array = array * self.mask
             moments = sky_fraction_moments(self.mask)
-        alm = harmonics.map2alm_tqu(array, self.lmax, iterations=self.jacobi_iterations, nthreads=self.nthreads)
-        return self._finish(alm, moments, nside=nside, source="maps")
+        iterations = self.jacobi_iterations
+        if iterations == "auto":
+            iterations = harmonics.jacobi_iterations_for(self.lmax, nside)
+        alm = harmonics.map2alm_tqu(array, self.lmax, iterations=iterations, nthreads=self.nthreads)
+        return self._finish(alm, moments, nside=nside, source="maps", jacobi_iterations=iterations)
 
     def filter_alm(self, alm) -> FilteredFields:
         """Filter observed full-sky (T, E, B) harmonic coefficients (beam-convolved, µK), skipping the maps.
@@ -487,7 +500,7 @@ class IsotropicFilter:
         array = as_finite_array(raw, "alm", dtype=np.complex128)
         if lmax_in > self.lmax:
             array = truncate_alm(array, self.lmax, lmax_in)
-        return self._finish(array, None, source="alm")
+        return self._finish(array, None, source="alm", jacobi_iterations=None)
 
     def joint_fields(self, fields: FilteredFields) -> FilteredFields:
         """Jointly filtered fields from fields this filter made field by field, without a transform.

@@ -304,6 +304,7 @@ def reconstruct(
     lensing_iterations: int = 0,
     progress=None,
     cancel=None,
+    jacobi_iterations: int | str = "auto",
 ) -> Reconstruction:
     """Reconstruct the lensing potential φ (and the curl Ω) from observed T, Q, U maps.
 
@@ -345,6 +346,10 @@ def reconstruct(
     progress, cancel
         For ``lensing_iterations`` > 0: ``progress(done, total)`` per step, and a ``threading.Event`` that
         stops after the current step.
+    jacobi_iterations : int or "auto"
+        Jacobi iterations of the filter's HEALPix analysis; "auto" (default) takes the fewest that keep the
+        response within 1e-3 (0 up to lmax = 2·nside at nside ≥ 256, 1 below, else 3;
+        :class:`lensrec.filtering.IsotropicFilter`).
 
     Returns
     -------
@@ -393,16 +398,23 @@ def reconstruct(
             nthreads=nthreads,
             progress=progress,
             cancel=cancel,
+            jacobi_iterations=jacobi_iterations,
         )
     experiment = load_experiment(experiment)
     if field_filter is None:
         field_filter = IsotropicFilter(
-            experiment, spectra, lmax=lmax, mask=mask, nthreads=nthreads, joint=estimator == JOINT_ESTIMATOR
+            experiment,
+            spectra,
+            lmax=lmax,
+            mask=mask,
+            nthreads=nthreads,
+            joint=estimator == JOINT_ESTIMATOR,
+            jacobi_iterations=jacobi_iterations,
         )
         experiment = field_filter.experiment
     else:
-        if mask is not None or lmax is not None:
-            raise ValueError("pass mask and lmax to the field_filter itself, not to reconstruct")
+        if mask is not None or lmax is not None or jacobi_iterations != "auto":
+            raise ValueError("pass mask, lmax and jacobi_iterations to the field_filter itself, not to reconstruct")
         if not isinstance(field_filter, FieldFilter):
             raise TypeError(f"field_filter must have a filter(maps) method, got {type(field_filter).__name__}")
         experiment = getattr(field_filter, "experiment", experiment)

@@ -73,14 +73,17 @@ def test_docstring_examples_run():
 
 def test_filter_is_healpy_analysis_over_beam_times_total_spectrum(experiment, observed):
     maps, _, beam = observed
-    fields = IsotropicFilter(experiment, nthreads=2).filter(maps)
-    reference = hp.map2alm(maps, lmax=LMAX, iter=3, use_weights=False, pol=True)  # healpy reference analysis
     total = knox_total(experiment, LMAX)
     ell = harmonics.ell_of_alm(LMAX)
-    for k, field in enumerate("TEB"):
-        expected = reference[k] / (beam[ell] * total[field][ell])
-        # both are the same 3-step Jacobi analysis in double precision: agreement to rounding (1e-10 of the max)
-        assert np.allclose(fields.alm[k], expected, rtol=0, atol=1e-10 * np.abs(expected).max()), field
+    # "auto" picks one Jacobi step at lmax = 2 nside, nside 64 (lensrec.harmonics.jacobi_iterations_for)
+    for iterations, requested in ((3, 3), (1, "auto"), (0, 0)):
+        fields = IsotropicFilter(experiment, nthreads=2, jacobi_iterations=requested).filter(maps)
+        assert fields.settings["jacobi_iterations"] == iterations
+        reference = hp.map2alm(maps, lmax=LMAX, iter=iterations, use_weights=False, pol=True)  # healpy reference
+        for k, field in enumerate("TEB"):
+            expected = reference[k] / (beam[ell] * total[field][ell])
+            # the same Jacobi analysis in double precision: agreement to rounding (1e-10 of the max)
+            assert np.allclose(fields.alm[k], expected, rtol=0, atol=1e-10 * np.abs(expected).max()), field
     assert fields.lmax == LMAX and not fields.masked and fields.settings["filter"] == "isotropic"
 
 
@@ -107,7 +110,7 @@ def test_filter_alm_matches_the_map_path_and_the_formula(experiment, observed):
     # maps band-limited at 2 nside: the 3-step HEALPix analysis is not exact quadrature; its residual is of
     # order 1e-6 of the field amplitude (Gorski et al. 2005, §5); B is compared in units of the polarization
     # amplitude because the residual leaks E into the ~100x smaller B
-    from_maps = filt.filter(maps)
+    from_maps = IsotropicFilter(experiment, nthreads=2, jacobi_iterations=3).filter(maps)
     for k, field in enumerate("TEB"):
         inside = np.isfinite(total[field][ell])
         recovered = from_maps.alm[k][inside] * beam[ell][inside] * total[field][ell][inside]
@@ -139,7 +142,8 @@ def test_masked_filter_multiplies_the_maps_and_records_the_moments(experiment, o
     maps, _, beam = observed
     mask = lensrec.latitude_mask(NSIDE, 20.0, width=10.0)
     fields = IsotropicFilter(experiment, mask=mask, nthreads=2).filter(maps)
-    reference = hp.map2alm(maps * mask, lmax=LMAX, iter=3, use_weights=False, pol=True)  # healpy reference
+    iterations = fields.settings["jacobi_iterations"]
+    reference = hp.map2alm(maps * mask, lmax=LMAX, iter=iterations, use_weights=False, pol=True)  # healpy
     total = knox_total(experiment, LMAX)
     ell = harmonics.ell_of_alm(LMAX)
     expected = reference[1] / (beam[ell] * total["E"][ell])

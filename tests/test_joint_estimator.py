@@ -450,3 +450,26 @@ def test_joint_fields_from_per_field_ones_equal_the_joint_filter(fiducial):
     assert np.allclose(converted.alm, joint.alm, rtol=1e-12, atol=1e-14 * np.abs(joint.alm).max())
     with pytest.raises(ValueError, match="jointly already"):
         diagonal.joint_fields(joint)
+
+
+def test_fewer_jacobi_iterations_keep_the_reconstruction_within_1e3():
+    # the faster filter ("auto": 1 Jacobi step at lmax = 2 nside = 256) against the 3-step analysis on the
+    # same maps: the binned cross-spectrum ratio of the two estimates (their relative response) stays within
+    # 1e-3, the accuracy the iteration count is chosen for (benchmarks/filter_accuracy.py, docs/filtering.md)
+    from lensrec.power import bin_spectrum, cross_spectrum
+
+    experiment = lensrec.Experiment(
+        name="Iteration Test Survey", noise_temperature=2.0, beam_fwhm=8.0, ell_min=2, ell_max_temperature=256,
+        ell_max_polarization=256,
+    )  # fmt: skip
+    sky = lensrec.simulate_sky(experiment, nside=128, lmax=256, lmax_margin=128, seed=5, nthreads=2)
+    fast = lensrec.reconstruct(sky.maps, experiment, lmax_L=200, nthreads=2)
+    slow = lensrec.reconstruct(sky.maps, experiment, lmax_L=200, nthreads=2, jacobi_iterations=3)
+    assert fast.settings["filter"]["jacobi_iterations"] == 1 and slow.settings["filter"]["jacobi_iterations"] == 3
+    edges = np.array([2, 20, 50, 100, 150, 201])
+    weights = 2 * np.arange(201) + 1.0
+    ratio = (
+        bin_spectrum(cross_spectrum(fast.phi_alm, slow.phi_alm), edges, weights)[1]
+        / bin_spectrum(cross_spectrum(slow.phi_alm), edges, weights)[1]
+    )
+    assert np.all(np.abs(ratio - 1) < 1e-3), ratio

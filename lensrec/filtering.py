@@ -366,9 +366,7 @@ class IsotropicFilter:
         if self.jacobi_iterations != "auto":
             if isinstance(self.jacobi_iterations, str):
                 raise ValueError(f"jacobi_iterations must be an integer >= 0 or 'auto', got {self.jacobi_iterations!r}")
-            set_(
-                self, "jacobi_iterations", as_int(self.jacobi_iterations, "jacobi_iterations", minimum=0, maximum=100)
-            )
+            set_(self, "jacobi_iterations", as_int(self.jacobi_iterations, "jacobi_iterations", minimum=0, maximum=100))
         if self.nthreads is not None:
             set_(self, "nthreads", resolve_nthreads(self.nthreads))
         if self.mask is not None:

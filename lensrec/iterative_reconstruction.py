@@ -215,7 +215,7 @@ def iterate_reconstruction(
     lensing_iterations: int = 1,
     lmax_L: int | None = None,
     lmax: int | None = None,
-    jacobi_iterations: int = 3,
+    jacobi_iterations: int | str = "auto",
     nthreads: int | None = None,
     progress: Callable | None = None,
     cancel=None,
@@ -272,7 +272,10 @@ def iterate_reconstruction(
     start = time.perf_counter()
     fields = first_filter.filter(maps)
     observed = harmonics.map2alm_tqu(
-        np.asarray(maps, dtype=np.float64), lmax, iterations=jacobi_iterations, nthreads=nthreads
+        np.asarray(maps, dtype=np.float64),
+        lmax,
+        iterations=fields.settings["jacobi_iterations"],  # the count the filter used ("auto" resolved)
+        nthreads=nthreads,
     )
     current = reconstruct_filtered(
         fields, experiment, spectra=spectra, estimator=estimator, lmax_L=lmax_L, nthreads=nthreads

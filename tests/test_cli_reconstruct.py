@@ -155,3 +155,15 @@ def test_reconstruct_with_lensing_iterations(inputs, tmp_path, capsys):
     assert main(arguments(inputs, tmp_path / "bad", "--lensing-iterations", "1", "--mask", inputs["mask"])) == 2
     assert "full sky" in capsys.readouterr().err
     assert not (tmp_path / "bad").exists()
+
+
+def test_delens_accepts_the_iterated_reconstruction(inputs, tmp_path, capsys):
+    # n0.json of an iterated run keeps the layout 'lensrec delens' reads (the last step's N0 Wiener-filters phi)
+    rec = tmp_path / "iterated"
+    assert main(arguments(inputs, rec, "--lensing-iterations", "1")) == 0
+    out = tmp_path / "delensed"
+    args = ["delens", "--experiment", inputs["experiment"], "--maps", inputs["maps"]]
+    assert main(args + ["--phi", str(rec / "phi_alm.fits"), "--out", str(out), "--nthreads", "2"]) == 0
+    spectra = json.loads((out / "spectra.json").read_text())
+    assert np.isfinite(spectra["alens_residual"])
+    assert "delensing bias" in capsys.readouterr().out.lower()  # EB reuses the B modes it delenses

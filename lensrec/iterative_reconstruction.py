@@ -36,7 +36,7 @@ simulations is required in every case.
 Inverse deflection. Lensing maps the unlensed field X to X̃(n) = X(n + d(n)). Undoing it needs
 X(n) = X̃(n + d⁻¹(n)) with n + d⁻¹(n) + d(n + d⁻¹(n)) = n, i.e. the fixed point d⁻¹(n) = −d(n + d⁻¹(n))
 (the vector at the displaced point parallel-transported back to n), solved by repetition from d⁻¹ = −d
-(each pass shrinks the error by ~|∇d| ~ 10⁻², ``inverse_passes`` = 3 leaves < 10⁻⁵ of d; Carron & Lewis 2017,
+(each pass shrinks the error by ~|∇d|, a few 10⁻², so ``INVERSE_PASSES`` = 2 leaves ~10⁻⁴ of d; Carron & Lewis 2017,
 PRD 96, 063510, appendix). −∇φ^WF is only its first-order approximation; the difference (d·∇)d is of the
 order of the lensing B modes' own size at small scales. d⁻¹ is a general spin-1 field (it has a curl
 part), analysed into potentials (φ_inv, Ω_inv) and applied with the exact remapping engine.
@@ -77,6 +77,7 @@ from .labels import ITERATIVE_ESTIMATORS, parse_estimator
 from .lensed_spectra import first_order_lensed_bb
 from .reconstruction import Reconstruction, reconstruct_filtered
 from .remapping import (
+    LENSED_TAIL,
     _deflection_on_grid,
     _displaced_positions,
     _gradient_coefficients,
@@ -96,7 +97,7 @@ __all__ = [
 
 # The map iteration delenses E and B and re-estimates with EB (the iterative estimator that carries the gain).
 MAP_ESTIMATORS = tuple(label for label in ITERATIVE_ESTIMATORS if label == "EB")
-INVERSE_PASSES = 3
+INVERSE_PASSES = 2
 _EPSILON = 1e-7
 
 
@@ -136,7 +137,7 @@ def inverse_deflection(phi_alm, lmax_out=None, passes=INVERSE_PASSES, nthreads=N
     lmax_out : int, optional
         Band limit of the output potentials (default L_max).
     passes : int
-        Fixed-point repetitions (default 3; 0 returns −φ and Ω = 0).
+        Fixed-point repetitions (default 2; 0 returns −φ and Ω = 0).
     nthreads : int, optional
 
     Returns
@@ -152,8 +153,9 @@ def inverse_deflection(phi_alm, lmax_out=None, passes=INVERSE_PASSES, nthreads=N
     lmax_out = lmax_phi if lmax_out is None else as_int(lmax_out, "lmax_out", minimum=1)
     passes = as_int(passes, "passes", minimum=0, maximum=20)
     nthreads = resolve_nthreads(nthreads)
-    # d⁻¹ carries products of d with its gradient (band ~2 L_max): analyse it exactly to lmax_out
-    grid = gl_grid_for_band_limits(lmax_out, 2 * lmax_phi)
+    # d⁻¹ carries products of d with its gradient; as for a lensed field (remapping.LENSED_TAIL), their power
+    # beyond L_max + min(L_max, 1000) is negligible, so the grid integrates d⁻¹ to lmax_out as if band-limited there
+    grid = gl_grid_for_band_limits(lmax_out, lmax_phi + min(lmax_phi, LENSED_TAIL))
     coefficients = _gradient_coefficients(phi_alm, None, lmax_phi)
     forward = _deflection_on_grid(coefficients, lmax_phi, grid, nthreads)
     inverse = -forward

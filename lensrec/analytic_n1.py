@@ -51,7 +51,7 @@ import numpy as np
 import scipy.fft
 from scipy.interpolate import PchipInterpolator
 
-from ._checks import as_finite_array, as_int, resolve_nthreads
+from ._checks import as_finite_array, as_int, readonly_copy, resolve_nthreads
 from .estimator_noise import joint_estimator_parts, minimum_variance, reconstruction_noise, standard_factors
 from .estimator_weights import _LADDER as _LADDER_NAME
 from .estimator_weights import (
@@ -63,9 +63,9 @@ from .estimator_weights import (
     response_kernel,
     spectrum_name,
 )
-from .experiment import Experiment, load_experiment
+from .experiment import as_experiment
 from .labels import COMBINED_ESTIMATORS, ESTIMATORS, JOINT_ESTIMATORS, parse_components, parse_estimators
-from .spectra import Spectra, fiducial_spectra
+from .spectra import as_spectra
 
 __all__ = ["AnalyticN1", "analytic_n1", "default_n1_L_grid", "pair_n1"]
 
@@ -493,10 +493,7 @@ def _grid_noise(at: _AtL, wa, wb, wb_swapped, fields_a, fields_b) -> complex:
 
 
 # ---------------------------------------------------------------------------------------- result
-def _frozen(values) -> np.ndarray:
-    array = np.array(values, copy=True)
-    array.setflags(write=False)
-    return array
+_frozen = readonly_copy
 
 
 @dataclass(frozen=True, eq=False)
@@ -648,13 +645,7 @@ def analytic_n1(
     >>> bool(n1.n1["TT"]["gradient"][100] > 0)
     True
     """
-    if isinstance(experiment, (str, bytes)) or hasattr(experiment, "__fspath__"):
-        experiment = load_experiment(experiment)
-    if not isinstance(experiment, Experiment):
-        raise TypeError(f"experiment must be an Experiment or the name/path of one, got {type(experiment).__name__}")
-    spectra = fiducial_spectra() if spectra is None else spectra
-    if not isinstance(spectra, Spectra):
-        raise TypeError(f"spectra must be a lensrec Spectra object, got {type(spectra).__name__}")
+    experiment, spectra = as_experiment(experiment), as_spectra(spectra)
     labels = parse_estimators(estimators)
     components = parse_components(components)
     weights = _parse_weights(weights)
@@ -704,22 +695,15 @@ def analytic_n1(
         if progress is not None:
             progress(done[0], total_steps)
 
+    def n1_sums(estimators):
+        return pair_n1(estimators, factors, phi, lmax, L_grid, grid_size, box=3.0, phi_basis=basis,
+                       nthreads=nthreads, progress=step)  # fmt: skip
+
     joint = [label for label in labels if label in JOINT_ESTIMATORS]
     for component in components:
         per_label, per_label_n0, per_label_matrix = {}, {}, {}
         if base:
-            result = pair_n1(
-                _estimators_for(base, component),
-                factors,
-                phi,
-                lmax,
-                L_grid,
-                grid_size,
-                box=3.0,
-                phi_basis=basis,
-                nthreads=nthreads,
-                progress=step,
-            )
+            result = n1_sums(_estimators_for(base, component))
             cov = result["n1"].real
             covariance[component] = _frozen(cov)
             for i, label in enumerate(base):
@@ -742,18 +726,7 @@ def analytic_n1(
                     per_label_matrix[label] = np.einsum("il,ijlk,jl->lk", w, result["matrix"].real[sub], w)
         for label in joint:
             parts = _joint_raw_estimators(component)
-            result = pair_n1(
-                parts,
-                factors,
-                phi,
-                lmax,
-                L_grid,
-                grid_size,
-                box=3.0,
-                phi_basis=basis,
-                nthreads=nthreads,
-                progress=step,
-            )
+            result = n1_sums(parts)
             response = result["response"].sum(axis=0)
             with np.errstate(divide="ignore", invalid="ignore"):
                 norm = np.where(response > 0, 1.0 / response, np.nan) ** 2

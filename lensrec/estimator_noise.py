@@ -33,7 +33,7 @@ from .estimator_weights import (
     response_kernel,
     spectrum_name,
 )
-from .experiment import Experiment, load_experiment
+from .experiment import Experiment, as_experiment
 from .filtering import joint_inverse_spectra
 from .labels import (
     COMBINED_ESTIMATORS,
@@ -45,7 +45,7 @@ from .labels import (
     parse_components,
     parse_estimators,
 )
-from .spectra import Spectra, fiducial_spectra
+from .spectra import Spectra, as_spectra
 
 __all__ = [
     "ESTIMATORS",
@@ -478,13 +478,7 @@ def reconstruction_noise(
     >>> bool(result.n0["MV"]["gradient"][100] <= result.n0["EB"]["gradient"][100])
     True
     """
-    if isinstance(experiment, (str, bytes)) or hasattr(experiment, "__fspath__"):
-        experiment = load_experiment(experiment)
-    if not isinstance(experiment, Experiment):
-        raise TypeError(f"experiment must be an Experiment or the name/path of one, got {type(experiment).__name__}")
-    spectra = fiducial_spectra() if spectra is None else spectra
-    if not isinstance(spectra, Spectra):
-        raise TypeError(f"spectra must be a lensrec Spectra object, got {type(spectra).__name__}")
+    experiment, spectra = as_experiment(experiment), as_spectra(spectra)
     labels = parse_estimators(estimators)
     components = parse_components(components)
     lmax = max(experiment.ell_max_temperature, experiment.ell_max_polarization)

@@ -264,6 +264,15 @@ def available_experiments() -> list[str]:
     return sorted(name[:-5] for name in os.listdir(EXPERIMENTS_DIR) if name.endswith(".toml"))
 
 
+def as_experiment(experiment) -> Experiment:
+    """An :class:`Experiment` as given, or loaded from a shipped name or TOML path; anything else is refused."""
+    if isinstance(experiment, (str, bytes)) or hasattr(experiment, "__fspath__"):
+        experiment = load_experiment(experiment)
+    if not isinstance(experiment, Experiment):
+        raise TypeError(f"experiment must be an Experiment or the name/path of one, got {type(experiment).__name__}")
+    return experiment
+
+
 def load_experiment(name_or_path) -> Experiment:
     """Load a shipped example experiment by name, or any experiment TOML file by path."""
     if isinstance(name_or_path, Experiment):

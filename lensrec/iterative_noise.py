@@ -40,12 +40,12 @@ from types import MappingProxyType
 
 import numpy as np
 
-from ._checks import as_float, as_int
+from ._checks import as_float, as_int, readonly_copy
 from .estimator_noise import ReconstructionNoise, reconstruction_noise
-from .experiment import Experiment, load_experiment
+from .experiment import Experiment, as_experiment
 from .labels import COMPONENTS, ITERATIVE_ESTIMATORS, parse_components, parse_estimators
 from .lensed_spectra import DEFAULT_ELL_MARGIN, delensed_spectra
-from .spectra import Spectra, fiducial_spectra
+from .spectra import Spectra, as_spectra
 
 __all__ = [
     "IterativeNoise",
@@ -58,9 +58,7 @@ DEFAULT_MAX_LENSING_ITERATIONS = 30
 
 
 def _frozen(values) -> np.ndarray:
-    array = np.array(values, dtype=np.float64, copy=True)
-    array.setflags(write=False)
-    return array
+    return readonly_copy(values, np.float64)
 
 
 @dataclass(frozen=True, eq=False)
@@ -343,13 +341,7 @@ def iterative_reconstruction_noise(
     >>> bool(result.gain("EB")[200] > 1.5)
     True
     """
-    if isinstance(experiment, (str, bytes)) or hasattr(experiment, "__fspath__"):
-        experiment = load_experiment(experiment)
-    if not isinstance(experiment, Experiment):
-        raise TypeError(f"experiment must be an Experiment or the name/path of one, got {type(experiment).__name__}")
-    spectra = fiducial_spectra() if spectra is None else spectra
-    if not isinstance(spectra, Spectra):
-        raise TypeError(f"spectra must be a lensrec Spectra object, got {type(spectra).__name__}")
+    experiment, spectra = as_experiment(experiment), as_spectra(spectra)
     labels = _parse_iterative(estimators)
     components = parse_components(components)
     if "gradient" not in components:

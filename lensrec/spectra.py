@@ -180,6 +180,14 @@ def _from_columns(data: dict, metadata: dict) -> Spectra:
 _FIDUCIAL_CACHE: dict[str, Spectra] = {}
 
 
+def as_spectra(spectra=None) -> Spectra:
+    """``spectra`` if it is a :class:`Spectra`, the fiducial spectra if None; anything else is refused."""
+    spectra = fiducial_spectra() if spectra is None else spectra
+    if not isinstance(spectra, Spectra):
+        raise TypeError(f"spectra must be a lensrec Spectra object, got {type(spectra).__name__}")
+    return spectra
+
+
 def fiducial_spectra() -> Spectra:
     """The embedded default cosmology (flat ΛCDM, camb, ℓ ≤ 6000); needs no camb.
 

@@ -20,12 +20,16 @@ which lowers N0 by less: the ratio is 0.3-0.5 at 0.5-1 µK-arcmin), so plain rep
 from the third step on the noise used to delens is extrapolated along the direction of travel (Aitken), which
 halves the number of steps and may overshoot the fixed point by a fraction of a percent before settling.
 
-Which spectra are delensed: all of them (T, E and B). The iterative estimator remaps the observed fields with
-the inverse of the estimated deflection, which undoes the lensing of T and E as much as that of B, so the
-filters and weights must describe partially delensed T, E and B to match the fields they act on. Nearly all
-of the gain comes from B (the lensing B power leaves the EB filter's denominator); delensing E sharpens its
-acoustic peaks and changes N0 by well under a percent. Lensed (observed) E in the template and in the
-reconstruction noise of the delensing are left to :func:`lensrec.delensing_forecast`.
+Which spectra are delensed: E and B (EE and BB); TT and TE keep their lensed values. The iterative
+estimator delenses by remapping the observed polarization with the inverse of the estimated deflection, so
+its filters and weights must describe partially delensed E and B. Nearly all of the gain comes from B (the
+lensing B power leaves the EB filter's denominator); delensing E sharpens its acoustic peaks and changes the
+EB noise by well under a percent. Temperature is left lensed: the map iteration does not remap it, and the
+gain a delensed TT would promise comes from sharper acoustic peaks in the TT response, which depends on the
+response model (lensed against lensed-gradient spectra, Lewis, Challinor & Hanson 2011, JCAP 03, 018) rather
+than on removing lensing B, so leaving it out keeps the MV forecast conservative. The partially delensed BB
+includes, at first order, the lensing B of the E modes the delensing cannot use (outside the polarization
+cuts or noise dominated; the E-noise term of :func:`lensrec.delensed_spectra`).
 
 The curl component is forecast with the same partially delensed spectra. After iterating, the curl estimate
 is the curl of the residual deflection of the delensed fields, an estimator of the field rotation (zero for
@@ -82,7 +86,7 @@ class IterativeNoise:
     phi_residual : mapping label → ndarray
         C^φφ N/(C^φφ + N) with the converged gradient N0 (L = 0 … lmax + ell_margin).
     delensed : mapping label → mapping spectrum → ndarray
-        The partially delensed TT, EE, BB, TE (µK², ℓ = 0 … lmax) of the converged step.
+        The spectra of the converged step (µK², ℓ = 0 … lmax): EE and BB partially delensed, TT and TE lensed.
     phi_spectrum : ndarray
         C_L^φφ, L = 0 … lmax_L.
     experiment : Experiment
@@ -285,10 +289,9 @@ def iterative_reconstruction_noise(
     Starting from the quadratic estimator's N0, each step delenses the CMB spectra with the residual lensing
     power that a Wiener-filtered estimate of the current noise leaves, C^φφ N/(C^φφ + N), and recomputes N0
     with those partially delensed spectra in the weights, the response and the filters; it stops when the
-    gradient N0 changes by at most ``tolerance`` (relative, every 2 ≤ L ≤ lmax_L). All CMB spectra (T, E and
-    B) are delensed: the iterative estimator remaps every observed field with the inverse estimated
-    deflection, so every filter must describe partially delensed fields; the gain comes almost entirely from
-    the lensing B power that leaves the B filter (module docstring).
+    gradient N0 changes by at most ``tolerance`` (relative, every 2 ≤ L ≤ lmax_L). E and B are
+    delensed, T is not (module docstring: the iterative estimator remaps the polarization with the inverse
+    estimated deflection); the gain comes almost entirely from the lensing B power that leaves the B filter.
 
     Parameters
     ----------
@@ -403,7 +406,7 @@ def iterative_reconstruction_noise(
         "ell_margin": margin,
         "estimators": list(labels),
         "components": list(components),
-        "delensed_spectra": ["TT", "EE", "BB", "TE"],
+        "delensed_spectra": ["EE", "BB"],
     }
     return IterativeNoise(
         L=_frozen(quadratic.L),

@@ -64,7 +64,14 @@ from .estimator_weights import (
     spectrum_name,
 )
 from .experiment import as_experiment
-from .labels import COMBINED_ESTIMATORS, ESTIMATORS, JOINT_ESTIMATORS, parse_components, parse_estimators
+from .labels import (
+    COMBINED_ESTIMATORS,
+    ESTIMATOR_FIELDS,
+    ESTIMATORS,
+    JOINT_ESTIMATORS,
+    parse_components,
+    parse_estimators,
+)
 from .spectra import as_spectra
 
 __all__ = ["AnalyticN1", "analytic_n1", "default_n1_L_grid", "pair_n1"]
@@ -679,7 +686,12 @@ def analytic_n1(
             nthreads=nthreads,
             components=components,
         )
-    base = tuple(noise.covariance_labels)
+    wanted = set(labels).union(*(COMBINED_ESTIMATORS.get(label, ()) for label in labels))
+    base = tuple(label for label in noise.covariance_labels if label in wanted)
+    missing = [label for label in labels if label in ESTIMATOR_FIELDS and label not in base]
+    if missing:
+        raise ValueError(f"the given noise does not hold the estimators {missing}; compute it with them")
+    position = [list(noise.covariance_labels).index(label) for label in base]
     factors = standard_factors(experiment, spectra, lmax, weights == "lensed")
     for key in ("TT", "EE", "BB", "TE"):
         factors.add(f"{_LEG_PREFIX}:{key}", spectra.lensed[key][: lmax + 1])
@@ -711,7 +723,7 @@ def analytic_n1(
                 per_label_n0[label] = result["n0"][i, i].real
                 if matrix:
                     per_label_matrix[label] = result["matrix"][i, i].real
-            n0_cov = np.asarray(noise.covariance[component])[:, :, L_grid]
+            n0_cov = np.asarray(noise.covariance[component])[np.ix_(position, position, L_grid)]
             for label in labels:
                 if label not in COMBINED_ESTIMATORS:
                     continue

@@ -66,14 +66,18 @@ __all__ = [
     "bias_budget",
 ]
 
-TERMS = ("mean_field", "rdn0", "mc_n0", "n1", "analytic_n0")
+TERMS = ("mean_field", "rdn0", "mc_n0", "n1", "analytic_n0", "analytic_n1")
 TERM_LABELS = {
     "mean_field": "mean-field power",
     "rdn0": "RDN0",
     "mc_n0": "MC-N0",
     "n1": "MC-N1",
     "analytic_n0": "analytic N0",
+    "analytic_n1": "analytic N1",
 }
+# coarse L grid of the analytic N1 shown in the budget (it is interpolated in between)
+_ANALYTIC_N1_POINTS = 12
+_ANALYTIC_N1_GRID_SIZE = 96
 
 
 # --------------------------------------------------------------------------------------------- binning
@@ -404,6 +408,7 @@ def lensing_bandpowers(
         unbinned["n1"] = monte_carlo_n1(shared, independent).value
     analytic = np.nan_to_num(suite_analytic_n0(settings, estimator, component)[: lmax_L + 1], nan=0.0)
     unbinned["analytic_n0"] = analytic
+    unbinned["analytic_n1"] = _analytic_n1(context, estimator, component, lmax_L)
     unbinned["mean_field"] = mf_power
     unbinned["raw"] = raw_data
 
@@ -431,6 +436,7 @@ def lensing_bandpowers(
         "mc_n0": mcn0.value,
         "n1": n1_value,
         "analytic_n0": matrix @ analytic,
+        "analytic_n1": matrix @ unbinned["analytic_n1"],
     }
     term_errors = {
         "mean_field": zeros,
@@ -438,6 +444,7 @@ def lensing_bandpowers(
         "mc_n0": mcn0.error,
         "n1": binned["n1"].error if "n1" in binned else zeros,
         "analytic_n0": zeros,
+        "analytic_n1": zeros,
     }
     raw = matrix @ raw_data
     debiased = factor * (raw - rdn0.value - n1_value)
@@ -494,6 +501,24 @@ def lensing_bandpowers(
         unbinned=MappingProxyType({k: _frozen(v) for k, v in unbinned.items()}),
         settings=MappingProxyType(info),
     )
+
+
+def _analytic_n1(context, estimator: str, component: str, lmax_L: int) -> np.ndarray:
+    """Analytic N1 (:func:`lensrec.analytic_n1`) of the suite's filter, for display beside MC-N1 (0 below L = 2)."""
+    from .analytic_n1 import analytic_n1, default_n1_L_grid
+
+    result = analytic_n1(
+        context.noise.experiment,
+        spectra=context.spectra,
+        estimators=[estimator],
+        lmax_L=lmax_L,
+        components=[component],
+        L_grid=default_n1_L_grid(lmax_L, _ANALYTIC_N1_POINTS),
+        grid_size=_ANALYTIC_N1_GRID_SIZE,
+        noise=context.noise,
+        nthreads=context.nthreads,
+    )
+    return np.nan_to_num(np.asarray(result.n1[estimator][component]), nan=0.0)
 
 
 # ----------------------------------------------------------------------------------------- the budget

@@ -20,13 +20,16 @@ def bias_budget_table(result: LensingBandpowers) -> str:
     budget = bias_budget(result)
     ratio_name = "S" if result.amplitude is not None else "N0"
     header = (
-        f"{'L range':>11} {'L_eff':>7} {'signal':>10} {'raw':>10} {'RDN0':>10} {'MC-N0':>10} {'N1':>10} "
+        f"{'L range':>11} {'L_eff':>7} {'signal':>10} {'raw':>10} {'RDN0':>10} {'MC-N0':>10} {'MC-N1':>10} "
+        f"{'an. N1':>10} "
         f"{'MF':>10} {'1/rho^2':>8} {'debiased':>10} {'sigma':>9} "
         f"{'RDN0/' + ratio_name:>8} {'N1/' + ratio_name:>8} {'MF/' + ratio_name:>8}"
     )
     lines = [
         f"bias budget: estimator {result.estimator}, {result.component}; units [L(L+1)]^2 C_L/2pi; "
-        f"{result.n_sims} simulations" + ("" if result.n1_computed else "; N1 not computed"),
+        f"{result.n_sims} simulations"
+        + ("" if result.n1_computed else "; MC-N1 not computed")
+        + "; an. N1 = analytic N1 (flat sky, not subtracted)",
         header,
         "-" * len(header),
     ]
@@ -37,7 +40,8 @@ def bias_budget_table(result: LensingBandpowers) -> str:
     for row in budget["bandpowers"]:
         lines.append(
             f"{row['L_min']:>5}-{row['L_max']:<5} {row['L_eff']:>7.1f} {row['signal']:>10.3e} {row['raw']:>10.3e} "
-            f"{row['rdn0']:>10.3e} {row['mc_n0']:>10.3e} {row['n1']:>10.3e} {row['mean_field']:>10.3e} "
+            f"{row['rdn0']:>10.3e} {row['mc_n0']:>10.3e} {row['n1']:>10.3e} {row['analytic_n1']:>10.3e} "
+            f"{row['mean_field']:>10.3e} "
             f"{row['normalisation_correction']:>8.4f} {row['debiased']:>10.3e} {row['error']:>9.2e} "
             f"{ratio(row['rdn0_over_signal']):>8} {ratio(row['n1_over_signal']):>8} "
             f"{ratio(row['mean_field_over_signal']):>8}"
@@ -63,6 +67,7 @@ _STYLE = {
     "n1": "#e67e22",
     "mean_field": "#8e44ad",
     "analytic_n0": "#7f8c8d",
+    "analytic_n1": "#d35400",
     "normalisation": "#27ae60",
 }
 
@@ -98,6 +103,14 @@ def plot_bias_budget(result: LensingBandpowers, title: str | None = None):
         lw=1.2,
         ls="--",
         label="analytic N0",
+    )
+    axes.plot(
+        L_all[keep],
+        np.abs(factor * result.unbinned["analytic_n1"])[keep],
+        color=_STYLE["analytic_n1"],
+        lw=1.2,
+        ls="-.",
+        label="|analytic N1|",
     )
     for name, marker in (("rdn0", "s"), ("mc_n0", "D"), ("n1", "o"), ("mean_field", "v")):
         if name == "n1" and not result.n1_computed:

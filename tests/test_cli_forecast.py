@@ -158,3 +158,24 @@ def test_forecast_iterative_adds_the_converged_noise_and_its_delensing(tmp_path,
     # no estimator with an iterative form: a clear refusal naming the ones that have one
     assert main(args[:-1] + ["TT,EE", "--iterative", "--out", str(out), "--force"]) == 2
     assert "--iterative forecasts EB, MV" in capsys.readouterr().err
+
+
+def test_forecast_n1_has_the_layout_of_n0(tmp_path, capsys):
+    out = tmp_path / "n1.json"
+    experiment = small_experiment(tmp_path)
+    args = ["forecast", "--experiment", experiment, "--estimators", "TT,EB", "--lmax-L", "300", "--n1"]
+    assert main([*args, "--out", str(out), "--nthreads", "1"]) == 0
+    document = json.loads(out.read_text())
+    assert list(document["n1"]) == list(document["n0"]) == ["TT", "EB"]
+    for parts in document["n1"].values():
+        assert set(parts) == {"gradient", "curl"}
+        for values in parts.values():
+            assert len(values) == 301 and values[0] is None and values[1] is None
+            assert all(isinstance(v, float) for v in values[2:])
+    assert document["n1_L_grid"][0] == 2 and document["n1_L_grid"][-1] == 300
+    # the file holds what the library computes for the same inputs
+    library = lensrec.analytic_n1(
+        lensrec.load_experiment(experiment), estimators="TT,EB", lmax_L=300, components="gradient", nthreads=1
+    )
+    np.testing.assert_allclose(document["n1"]["EB"]["gradient"][2:], library.n1["EB"]["gradient"][2:], rtol=1e-10)
+    assert "analytic N1 / N0" in capsys.readouterr().out

@@ -200,6 +200,18 @@ def test_n1_is_positive_and_of_the_expected_size(lensed_suite):
     assert curl.pte > 1e-3
 
 
+def test_analytic_n1_beside_mc_n1_in_the_budget(lensed_suite):
+    # The budget shows the analytic N1 (Kesden, Cooray & Kamionkowski 2003, PRD 67, 123507; flat-sky
+    # evaluation) beside MC-N1: they agree within 3 sigma of the Monte-Carlo error plus 15% (the analytic
+    # N1 keeps first order in C^phiphi with lensed spectra in the legs; the simulations' 600-multipole margin
+    # leaves their lensed BB ~10% low near lmax). A 30% error in either would exceed that bound.
+    result = lensing_bandpowers(lensed_suite)
+    mc, error, analytic = result.terms["n1"], result.term_errors["n1"], result.terms["analytic_n1"]
+    high = result.binning.edges[:-1] > 50
+    assert np.all(np.abs(mc - analytic)[high] < 3 * error[high] + 0.15 * analytic[high]), (mc / analytic, error / mc)
+    assert "an. N1" in lensrec.bias_budget_table(result)
+
+
 @pytest.mark.slow
 def test_n1_at_high_L_for_a_low_noise_polarization_survey():
     # From memory: N1 of the polarization (EB) estimator of a ~1 uK-arcmin survey is a percent to tens of

@@ -11,6 +11,7 @@ EXAMPLES = """examples:
   lensrec forecast --experiment deep_highland --lmax-L 3000 --out n0.json
   lensrec forecast --experiment my_survey.toml --estimators TT,EB,MV --out n0_eb.json --force
   lensrec forecast --experiment wide_lowland --lmax-L 2000 --unlensed-weights --out n0_unlensed.json
+  lensrec forecast --experiment deep_highland --estimators TT,EB,MV --n1 --out n0_n1.json
 
 writes one JSON file: {"L": [0..lmax_L], "n0": {"TT": {"gradient": [...], "curl": [...]}, ...},
 "snr": {"TT": ..., ...}, "provenance": {...}}; N0 in C_L^phiphi units (C_L^OmegaOmega for the curl),
@@ -23,6 +24,8 @@ Baleato Lizancos, Challinor & Carron 2021) or none (B modes reused: a measured r
 --tracer FILE (a tracer TOML or a shipped name such as diffuse_glow) adds "tracers": the correlation rho_L of
 each tracer, of the same internal reconstruction and of their optimal combination (Sherwin & Schmittfull
 2015), and the delensing forecast (A_lens^res, sigma(r) conditional and marginalized) with each of them.
+--n1 adds "n1" in the layout of "n0" (the analytic N1 bias, flat-sky evaluation on a coarse L grid listed in
+"n1_L_grid" and interpolated; Kesden, Cooray & Kamionkowski 2003; lensrec.analytic_n1).
 --iterative adds "iterative": the converged noise of the iterative estimator (EB and MV among --estimators):
 "n0" in the layout of the top-level "n0", "lensing_iterations" (steps to converge per estimator),
 "n0_per_iteration" (every step, 0 = quadratic), "residual_bb" and "alens_residual" of delensing with it (MV if
@@ -51,6 +54,11 @@ def add_arguments(parser) -> None:
         "--unlensed-weights",
         action="store_true",
         help="use unlensed CMB spectra in the weights and response (default: lensed)",
+    )
+    parser.add_argument(
+        "--n1",
+        action="store_true",
+        help='also compute the analytic N1 bias of each estimator (gradient and curl), written as "n1"',
     )
     parser.add_argument(
         "--delensing",
@@ -134,6 +142,17 @@ def format_table(result, snr: dict) -> str:
     for label, parts in result.n0.items():
         values = "".join(f"{parts['gradient'][L]:14.4e}" for L in columns)
         lines.append(f"{label:9s} {values}{snr[label]:9.1f}")
+    return "\n".join(lines)
+
+
+def format_n1(result, n1) -> str:
+    """Analytic N1 over N0 (gradient) at a few L."""
+    lmax_L = int(result.L[-1])
+    columns = [L for L in TABLE_L if L <= lmax_L] or [lmax_L]
+    lines = ["analytic N1 / N0 (gradient):", "estimator " + "".join(f"{'L=' + str(L):>10s}" for L in columns)]
+    for label, parts in n1.n1.items():
+        values = "".join(f"{parts['gradient'][L] / result.n0[label]['gradient'][L]:10.4f}" for L in columns)
+        lines.append(f"{label:9s} {values}")
     return "\n".join(lines)
 
 
@@ -270,6 +289,24 @@ def run(args) -> int:
         nthreads=args.nthreads,
     )
     timings["reconstruction_noise"] = time.perf_counter() - start
+    n1 = None
+    if args.n1:
+        from ..analytic_n1 import analytic_n1
+
+        start = time.perf_counter()
+        n1 = analytic_n1(
+            experiment,
+            estimators=list(result.n0),
+            lmax_L=int(result.L[-1]),
+            weights="lensed" if not args.unlensed_weights else "unlensed",
+            noise=result,
+            nthreads=args.nthreads,
+        )
+        n1_document = n1.to_dict()
+        document["n1"] = n1_document["n1"]
+        document["n1_L_grid"] = n1_document["L_grid"]
+        document["n1_settings"] = n1_document["settings"]
+        timings["analytic_n1"] = time.perf_counter() - start
     delensing = summary = None
     if args.delensing or args.tracer:
         from ..delensing_bias import internal_delensing_forecast
@@ -335,6 +372,7 @@ def run(args) -> int:
         "lmax_L": int(result.L[-1]),
         "estimators": args.estimators,
         "unlensed_weights": bool(args.unlensed_weights),
+        "n1": bool(args.n1),
         "delensing": bool(args.delensing),
         "iterative": bool(args.iterative),
         "nthreads": args.nthreads,
@@ -352,6 +390,8 @@ def run(args) -> int:
         f"{timings['reconstruction_noise']:.2f} s; N0 in C_L^phiphi units"
     )
     print(format_table(result, document["snr"]))
+    if n1 is not None:
+        print(format_n1(result, n1))
     if args.delensing:
         print(format_delensing(delensing, summary))
     if iterative is not None:

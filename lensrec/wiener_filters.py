@@ -48,8 +48,16 @@ def _spectrum(values, name: str, lmax: int, allow_inf: bool = False) -> np.ndarr
     return array
 
 
-def wiener_filter_phi(phi_alm, n0, phi_spectrum=None) -> np.ndarray:
-    """Wiener-filter a normalised lensing reconstruction: φ^WF_LM = C_L^φφ / (C_L^φφ + N0_L) · φ̂_LM.
+def wiener_filter_phi(phi_alm, n0, phi_spectrum=None, n1=None) -> np.ndarray:
+    """Wiener-filter a normalised lensing reconstruction: φ^WF_LM = C_L^φφ / (C_L^φφ + N0_L + N1_L) · φ̂_LM.
+
+    The filter must use the reconstruction's true noise, N0 + N1. The forecast identity of delensing, that
+    the residual lensing potential power C_L^φφ (1 − ρ_L²), ρ_L² = C_L^φφ/(C_L^φφ + N_L), already includes
+    the B modes made by the reconstruction noise, holds only when N_L in the filter is the noise actually in
+    φ̂ (Smith et al. 2012, JCAP 06, 014): with N0 alone the filter over-weights φ̂ where N1 is not small, and
+    the template carries more noise than the forecast counts. lensrec's recipes (the delens command, the
+    demo, the workbench) therefore pass the analytic N1 of :func:`lensrec.analytic_n1` by default; ``n1=None``
+    here means no N1 (for callers that have only N0).
 
     Parameters
     ----------
@@ -61,6 +69,9 @@ def wiener_filter_phi(phi_alm, n0, phi_spectrum=None) -> np.ndarray:
         (no reconstruction: weight 0).
     phi_spectrum : array_like, optional
         C_L^φφ reaching L_max; default the fiducial spectrum (:func:`lensrec.fiducial_spectra`).
+    n1 : array_like, optional
+        The N1 bias of the reconstruction on the same L range (NaN allowed where N0 is NaN or infinite, and
+        below the first L of an interpolated N1, where it counts as zero); default none.
 
     Returns
     -------
@@ -108,6 +119,17 @@ def wiener_filter_phi(phi_alm, n0, phi_spectrum=None) -> np.ndarray:
         )
     if np.any(noise[~np.isnan(noise)] < 0):
         raise ValueError(f"n0 must be non-negative (a noise power); got {np.nanmin(noise):.4g}")
+    if n1 is not None:
+        if isinstance(n1, (str, bytes)):
+            raise TypeError(f"n1 must be a numeric array or None, got {type(n1).__name__}")
+        extra = np.asarray(n1, dtype=np.float64)
+        if extra.shape != noise.shape:
+            raise ValueError(f"n1 must have the shape of n0 {noise.shape}, got {extra.shape}")
+        if np.any(np.isinf(extra)):
+            raise ValueError("n1 must be finite (NaN allowed where it is not defined)")
+        noise = noise + np.nan_to_num(extra, nan=0.0)
+        if np.any(noise[2:][np.isfinite(noise[2:])] < 0):
+            raise ValueError("n0 + n1 is negative somewhere; N1 must not exceed N0 in magnitude when negative")
     if phi_spectrum is None:
         from .spectra import fiducial_spectra
 

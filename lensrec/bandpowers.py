@@ -408,7 +408,7 @@ def lensing_bandpowers(
         unbinned["n1"] = monte_carlo_n1(shared, independent).value
     analytic = np.nan_to_num(suite_analytic_n0(settings, estimator, component)[: lmax_L + 1], nan=0.0)
     unbinned["analytic_n0"] = analytic
-    unbinned["analytic_n1"] = _analytic_n1(context, estimator, component, lmax_L)
+    unbinned["analytic_n1"] = _analytic_n1(settings, estimator, component, lmax_L)
     unbinned["mean_field"] = mf_power
     unbinned["raw"] = raw_data
 
@@ -503,20 +503,30 @@ def lensing_bandpowers(
     )
 
 
-def _analytic_n1(context, estimator: str, component: str, lmax_L: int) -> np.ndarray:
-    """Analytic N1 (:func:`lensrec.analytic_n1`) of the suite's filter, for display beside MC-N1 (0 below L = 2)."""
-    from .analytic_n1 import analytic_n1, default_n1_L_grid
+def _analytic_n1(settings: dict, estimator: str, component: str, lmax_L: int) -> np.ndarray:
+    """Analytic N1 (:func:`lensrec.analytic_n1`) of a suite's estimator, for display beside MC-N1 (0 below L = 2).
 
+    The suite's experiment with its multipoles cut at the suite's lmax and the suite's spectra, as for the
+    analytic N0; a coarse L grid (it is interpolated in between).
+    """
+    from .analytic_n1 import analytic_n1, default_n1_L_grid
+    from .experiment import Experiment
+    from .filtering import IsotropicFilter
+    from .suite_tasks import suite_spectra
+
+    spectra = suite_spectra(settings)
+    experiment = IsotropicFilter(
+        Experiment.from_dict(dict(settings["experiment"])), spectra, lmax=settings["lmax"]
+    ).experiment
     result = analytic_n1(
-        context.noise.experiment,
-        spectra=context.spectra,
+        experiment,
+        spectra=spectra,
         estimators=[estimator],
         lmax_L=lmax_L,
         components=[component],
         L_grid=default_n1_L_grid(lmax_L, _ANALYTIC_N1_POINTS),
         grid_size=_ANALYTIC_N1_GRID_SIZE,
-        noise=context.noise,
-        nthreads=context.nthreads,
+        nthreads=int(settings["threads_per_task"]),
     )
     return np.nan_to_num(np.asarray(result.n1[estimator][component]), nan=0.0)
 

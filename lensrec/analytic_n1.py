@@ -74,7 +74,7 @@ from .labels import (
 )
 from .spectra import as_spectra
 
-__all__ = ["AnalyticN1", "analytic_n1", "default_n1_L_grid", "pair_n1"]
+__all__ = ["AnalyticN1", "analytic_n1", "default_n1_L_grid", "pair_n1", "reconstruction_n1"]
 
 (JOINT_LABEL,) = tuple(JOINT_ESTIMATORS)
 _LEG_PREFIX = "leg"  # spectra in the lensing response of the legs (always lensed)
@@ -777,4 +777,35 @@ def analytic_n1(
         matrix=freeze(matrices),
         phi_spectrum=_frozen(phi[: lmax_L + 1]),
         settings=MappingProxyType(settings),
+    )
+
+
+def reconstruction_n1(reconstruction, spectra=None, points: int = 16, nthreads=None) -> AnalyticN1:
+    """The analytic N1 of a :class:`lensrec.Reconstruction`'s estimator (both components), on a coarse grid.
+
+    Uses the reconstruction's own normalization (its ``noise``: experiment, ℓ cuts, weights) and L range;
+    ``points`` log-spaced grid points (interpolated between), grid size 96, which keeps it to seconds. This
+    is the N1 that lensrec's recipes add to N0 in the φ Wiener filter.
+
+    Raises
+    ------
+    TypeError
+        If ``reconstruction`` is not a Reconstruction.
+    """
+    from .reconstruction import Reconstruction
+
+    if not isinstance(reconstruction, Reconstruction):
+        raise TypeError(f"reconstruction must be a lensrec Reconstruction, got {type(reconstruction).__name__}")
+    noise = reconstruction.noise
+    lmax_L = int(reconstruction.lmax_L)
+    return analytic_n1(
+        noise.experiment,
+        spectra,
+        estimators=[reconstruction.estimator],
+        lmax_L=lmax_L,
+        L_grid=default_n1_L_grid(lmax_L, points),
+        weights="lensed" if noise.settings.get("lensed_weights", True) else "unlensed",
+        grid_size=96,
+        noise=noise if int(noise.L[-1]) == lmax_L else None,
+        nthreads=nthreads,
     )

@@ -40,7 +40,7 @@ Lewis 2005, PRD 71, 083008 (remapping on the sphere).
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -461,6 +461,7 @@ def delens_maps(
     n0=None,
     lmax: int | None = None,
     method: str = DEFAULT_TEMPLATE_METHOD,
+    n1="analytic",
     mask=None,
     ell_min: int | None = None,
     ell_max: int | None = None,
@@ -473,7 +474,7 @@ def delens_maps(
     """Delens observed maps with a lensing reconstruction: the whole recipe from maps to residual spectra.
 
     Steps: the Wiener-filtered E and the beam-deconvolved observed B of the maps (:func:`template_inputs`),
-    the Wiener-filtered φ̂ (:func:`wiener_filter_phi`, C^φφ/(C^φφ + N0)), the lensing B template
+    the Wiener-filtered φ̂ (:func:`wiener_filter_phi`, C^φφ/(C^φφ + N0 + N1)), the lensing B template
     (:func:`lensing_b_template`), then the residual spectra, the efficiency per ℓ and A_lens^res
     (:func:`delensing_spectra`) with the experiment's B-mode noise power subtracted and the lensed BB of
     ``spectra`` as the reference. This is what ``lensrec delens``, the demo and the workbench run.
@@ -496,6 +497,12 @@ def delens_maps(
         Band limit of E, B and the template; default min(3·nside − 1, ℓ_max of polarization).
     method : {"first_order", "remap", "remap_delensed_e"}
         Template method (:func:`lensing_b_template`).
+    n1 : "analytic", array or None
+        N1 of φ̂ per L added to N0 in the Wiener filter, so that the filter uses the reconstruction's true
+        noise (see :func:`wiener_filter_phi`). "analytic" (default): :func:`lensrec.analytic_n1` of the
+        reconstruction's estimator when ``reconstruction`` is a Reconstruction (quadratic, not iterated);
+        for a bare φ̂ array or an iterated reconstruction it cannot be computed, and N0 alone is used (said in
+        ``result.notes``); with ``n0`` given, that is taken as the whole noise of φ̂. None: N0 alone.
     mask : array, optional
         Weights applied to the maps before filtering (:func:`template_inputs`).
     ell_min, ell_max : int, optional
@@ -537,6 +544,7 @@ def delens_maps(
     if phi_filtered and n0 is not None:
         raise ValueError("n0 was given with phi_filtered=True: a phi used as given (exact or already filtered) has no "
                          "Wiener filter to build from a noise; give one or the other")  # fmt: skip
+    n0_given = n0 is not None
     if hasattr(reconstruction, "phi_alm"):
         phi_alm = reconstruction.phi_alm
         n0 = reconstruction.n0["gradient"] if n0 is None and not phi_filtered else n0
@@ -544,10 +552,27 @@ def delens_maps(
         phi_alm = reconstruction
         if n0 is None and not phi_filtered:
             raise ValueError("n0 is needed when the reconstruction is given as phi_alm alone (its Gaussian N0 per L)")
+    extra_notes = ()
+    if isinstance(n1, str):
+        if n1 != "analytic":
+            raise ValueError(f"n1 must be 'analytic', an array or None, got {n1!r}")
+        iterated = hasattr(reconstruction, "settings") and int(reconstruction.settings.get("lensing_iterations", 0))
+        if phi_filtered or n0_given:  # no filter, or the caller's n0 is the noise of φ̂
+            n1 = None
+        elif hasattr(reconstruction, "noise") and not iterated:
+            from .analytic_n1 import reconstruction_n1
+
+            report(0.02, "analytic N1 of the reconstruction")
+            n1 = reconstruction_n1(reconstruction, spectra, nthreads=nthreads).n1[reconstruction.estimator]["gradient"]
+        else:
+            n1 = None
+            extra_notes = ("the φ Wiener filter used N0 alone: no N1 is available for this reconstruction",)
     report(0.05, "Wiener-filtered E and observed B of the maps")
     e_wiener, b_observed, fields = template_inputs(maps, experiment, spectra, lmax=lmax, mask=mask, nthreads=nthreads)
     lmax = fields.lmax
-    phi_wiener = _coefficients(phi_alm, "phi_alm")[0] if phi_filtered else wiener_filter_phi(phi_alm, n0, spectra.phi)
+    phi_wiener = (
+        _coefficients(phi_alm, "phi_alm")[0] if phi_filtered else wiener_filter_phi(phi_alm, n0, spectra.phi, n1=n1)
+    )
     report(0.3, f"lensing B template ({method})")
     result = delens(
         b_observed,
@@ -563,8 +588,7 @@ def delens_maps(
         nthreads=nthreads,
     )
     report(1.0, "delensed spectra")
+    notes = tuple(notes) + extra_notes
     if notes:
-        import dataclasses
-
-        result = dataclasses.replace(result, notes=tuple(notes) + tuple(result.notes))
+        result = replace(result, notes=notes + tuple(result.notes))
     return result

@@ -95,6 +95,7 @@ def run_demo(
         The summary also written to ``summary.json``.
     """
     from . import report_demo
+    from .analytic_n1 import reconstruction_n1
     from .delensing import delens_maps
     from .delensing_bias import bias_treatment_note, exclude_delensed_b
     from .estimator_noise import reconstruction_noise
@@ -155,14 +156,26 @@ def run_demo(
 
     step("validate", "validate the reconstruction against the input phi")
     comparison = compare_with_input(rec, sky.phi_alm)
+    # the analytic N1 of the MV estimator: the curl null test expects N0 + N1, and the φ Wiener filter uses
+    # the true noise N0 + N1
+    n1 = reconstruction_n1(rec, spectra, points=12, nthreads=nthreads).n1[rec.estimator]
+    n1_gradient = np.nan_to_num(n1["gradient"], nan=0.0)
     L_show = min(lmax_L, KAPPA_L_MAX)
-    phi_wiener = wiener_filter_phi(rec.phi_alm, rec.n0["gradient"], spectra.phi)
+    phi_wiener = wiener_filter_phi(rec.phi_alm, rec.n0["gradient"], spectra.phi, n1=n1_gradient)
     kappa = (kappa_map(sky.phi_alm, nside, L_show, nthreads), kappa_map(phi_wiener, nside, L_show, nthreads))
 
     step("delens", "build the lensing B-mode template and delens")
     treatment = bias_treatment_note("MV", "exclude_delensed_b", ell_delensed)
     delensed = delens_maps(
-        sky.maps, rec, experiment, spectra, lmax=lmax, ell_max=ell_delensed, notes=(treatment,), nthreads=nthreads
+        sky.maps,
+        rec,
+        experiment,
+        spectra,
+        lmax=lmax,
+        ell_max=ell_delensed,
+        notes=(treatment,),
+        n1=n1_gradient,
+        nthreads=nthreads,
     )
 
     step("tensor_forecast", "forecast sigma(r) with and without delensing")
@@ -171,7 +184,7 @@ def run_demo(
     # the same forecast for what this simulation can do (its band limit and its reconstruction's N0), to
     # compare with the A_lens^res measured on it
     n0_sim = np.full(spectra.lmax + 1, np.inf)
-    n0_sim[: lmax_L + 1] = rec.n0["gradient"]
+    n0_sim[: lmax_L + 1] = rec.n0["gradient"] + n1_gradient  # the noise the Wiener filter used
     sim_experiment = experiment.replace(
         ell_max_temperature=min(experiment.ell_max_temperature, lmax),
         ell_max_polarization=min(experiment.ell_max_polarization, lmax),
@@ -183,7 +196,7 @@ def run_demo(
         experiment=experiment, spectra=spectra, forecast=forecast, sky=sky, deflection=deflection,
         reconstruction=rec, comparison=comparison, kappa=kappa, kappa_L_max=L_show, delensed=delensed,
         tensor=tensor, tensor_simulation=tensor_sim, forecast_L=FORECAST_L, caution=CAUTION,
-        iterative=iterative, tensor_iterative=tensor_iterative,
+        iterative=iterative, tensor_iterative=tensor_iterative, n1=n1,
     )  # fmt: skip
     record = provenance(
         "demo",

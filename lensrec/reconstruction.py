@@ -17,6 +17,7 @@ spectra with the mask moments (:mod:`lensrec.power`) and subtract the mean-field
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Mapping
 from dataclasses import dataclass
 from types import MappingProxyType
@@ -36,8 +37,8 @@ from .estimator_engine import (  # noqa: F401  (re-exported: the engine lived he
 from .estimator_noise import JOINT_ESTIMATOR, ReconstructionNoise, reconstruction_noise
 from .estimator_weights import COMPONENTS
 from .experiment import Experiment, load_experiment
-from .filtering import FieldFilter, FilteredFields, IsotropicFilter
-from .harmonics import ell_of_alm, nalm
+from .filtering import FieldFilter, FilteredFields, IsotropicFilter  # noqa: F401  (importable from here)
+from .harmonics import ell_of_alm, nalm, npix_to_nside
 from .labels import COMBINED_ESTIMATORS, ESTIMATORS
 from .mean_field_average import MeanField, _check_mean_field, mean_field
 from .spectra import Spectra, fiducial_spectra
@@ -305,6 +306,12 @@ def reconstruct(
     progress=None,
     cancel=None,
     jacobi_iterations: int | str = "auto",
+    filter: str = "isotropic",
+    noise=None,
+    maps_masked: bool = False,
+    cg_tolerance: float | None = None,
+    cg_max_iterations: int | None = None,
+    cg_progress=None,
 ) -> Reconstruction:
     """Reconstruct the lensing potential φ (and the curl Ω) from observed T, Q, U maps.
 
@@ -350,6 +357,19 @@ def reconstruct(
         Jacobi iterations of the filter's HEALPix analysis; "auto" (default) takes the fewest that keep the
         response within 1e-3 (0 up to lmax = 2·nside at nside ≥ 256, 1 below, else 3;
         :class:`lensrec.filtering.IsotropicFilter`).
+    filter : {'isotropic', 'optimal', 'auto'}
+        The map filter (:mod:`lensrec.filter_choice`): the isotropic harmonic filter (default), the
+        conjugate-gradient optimal filter (:class:`lensrec.OptimalFilter`), or 'auto' (optimal with a
+        ``mask`` or ``noise``). The choice is recorded in ``settings["filter_choice"]``.
+    noise : PixelNoise, optional
+        Per-pixel noise variance (:class:`lensrec.PixelNoise`); its noise levels replace the experiment's
+        for the normalisation (arithmetic level for the isotropic filter, inverse-variance for the optimal).
+    maps_masked : bool
+        The maps are already multiplied by ``mask`` (it is then not applied a second time).
+    cg_tolerance, cg_max_iterations : optional
+        Conjugate-gradient settings of the optimal filter.
+    cg_progress : callable, optional
+        ``cg_progress(iteration, residual)`` after each conjugate-gradient iteration.
 
     Returns
     -------
@@ -401,20 +421,31 @@ def reconstruct(
             jacobi_iterations=jacobi_iterations,
         )
     experiment = load_experiment(experiment)
+    choice = None
     if field_filter is None:
-        field_filter = IsotropicFilter(
+        from .filter_choice import build_filter
+        from .filtering import _check_maps
+
+        array = _check_maps(maps)
+        field_filter, experiment, choice = build_filter(
+            filter,
             experiment,
+            npix_to_nside(array.shape[1], "maps"),
             spectra,
             lmax=lmax,
             mask=mask,
-            nthreads=nthreads,
+            noise=noise,
             joint=estimator == JOINT_ESTIMATOR,
             jacobi_iterations=jacobi_iterations,
+            maps_masked=maps_masked,
+            cg_tolerance=cg_tolerance,
+            cg_max_iterations=cg_max_iterations,
+            callback=cg_progress,
+            nthreads=nthreads,
         )
-        experiment = field_filter.experiment
     else:
-        if mask is not None or lmax is not None or jacobi_iterations != "auto":
-            raise ValueError("pass mask, lmax and jacobi_iterations to the field_filter itself, not to reconstruct")
+        if mask is not None or lmax is not None or noise is not None:
+            raise ValueError("pass mask and lmax to the field_filter itself, not to reconstruct")
         if not isinstance(field_filter, FieldFilter):
             raise TypeError(f"field_filter must have a filter(maps) method, got {type(field_filter).__name__}")
         experiment = getattr(field_filter, "experiment", experiment)
@@ -427,7 +458,7 @@ def reconstruct(
                 f"choose lmax_L <= {cmb_lmax}"
             )
     fields = field_filter.filter(maps)
-    return reconstruct_filtered(
+    result = reconstruct_filtered(
         fields,
         experiment,
         spectra=spectra,
@@ -437,6 +468,8 @@ def reconstruct(
         lensed_weights=lensed_weights,
         nthreads=nthreads,
     )
+    settings = dict(result.settings, filter_choice=choice or fields.settings.get("filter"))
+    return dataclasses.replace(result, settings=MappingProxyType(settings))
 
 
 # --------------------------------------------------------------------------------------- validation

@@ -101,7 +101,7 @@ def test_existing_outputs_are_refused_before_any_work_and_replaced_with_force(in
 
 def test_mask_option_is_recorded(inputs, tmp_path):
     out = tmp_path / "masked"
-    assert main(arguments(inputs, out, "--mask", inputs["mask"])) == 0
+    assert main(arguments(inputs, out, "--mask", inputs["mask"], "--filter", "isotropic")) == 0
     record = json.loads((out / "run.json").read_text())
     assert record["inputs"]["mask_sha256"] and 0 < record["mask_moments"]["w2"] < 1
 

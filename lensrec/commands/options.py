@@ -7,7 +7,17 @@ from __future__ import annotations
 
 import argparse
 
-__all__ = ["InputError", "add_common", "add_map_reading", "map_reading_options"]
+__all__ = [
+    "InputError",
+    "add_common",
+    "add_map_reading",
+    "map_reading_options",
+    "add_noise_model",
+    "load_noise_model",
+    "add_filter_options",
+    "cg_progress",
+    "default_lmax",
+]
 
 
 class InputError(ValueError):
@@ -59,3 +69,82 @@ def map_reading_options(args) -> dict:
         "ordering": getattr(args, "map_ordering", None),
         "polarization_convention": getattr(args, "polarization_convention", None),
     }
+
+
+def add_noise_model(parser: argparse.ArgumentParser) -> None:
+    """--noise-map / --hits: a per-pixel noise model (lensrec.PixelNoise) instead of uniform noise."""
+    group = parser.add_mutually_exclusive_group()
+    group.add_argument(
+        "--noise-map",
+        default=None,
+        help="HEALPix FITS noise-variance map (uK^2 per pixel, T or T, Q, U columns, same nside as the maps)",
+    )
+    group.add_argument(
+        "--hits",
+        default=None,
+        help="HEALPix FITS hit-count map: noise variance ~ 1/hits, scaled so that the experiment's noise level "
+        "is the inverse-variance depth of the observed region",
+    )
+
+
+def load_noise_model(args, experiment, nside: int):
+    """The :class:`lensrec.PixelNoise` of --noise-map or --hits, within --mask (None without either map)."""
+    from ..pixel_noise import PixelNoise
+
+    if getattr(args, "noise_map", None) is None and getattr(args, "hits", None) is None:
+        return None
+    return PixelNoise.from_files(
+        experiment, noise_map=args.noise_map, hits=args.hits, mask=getattr(args, "mask", None), nside=nside
+    )
+
+
+def add_filter_options(parser: argparse.ArgumentParser) -> None:
+    """--filter and the conjugate-gradient settings of the optimal filter."""
+    from ..optimal_filter import DEFAULT_CG_MAX_ITERATIONS, DEFAULT_CG_TOLERANCE
+
+    parser.add_argument(
+        "--filter",
+        choices=("isotropic", "optimal", "auto"),
+        default="auto",
+        help="map filter: isotropic harmonic, optimal (conjugate gradient), or auto = optimal when there is a "
+        "--mask or a noise map (default: %(default)s)",
+    )
+    parser.add_argument(
+        "--cg-tolerance",
+        type=float,
+        default=DEFAULT_CG_TOLERANCE,
+        help="relative residual at which the optimal filter stops (default: %(default)s)",
+    )
+    parser.add_argument(
+        "--cg-max-iterations",
+        type=int,
+        default=DEFAULT_CG_MAX_ITERATIONS,
+        help="the optimal filter fails with an error beyond this many iterations (default: %(default)s)",
+    )
+
+
+def cg_progress(description: str = "optimal filter"):
+    """A tqdm progress bar on stderr for the conjugate-gradient iterations; returns (callback, close)."""
+    from tqdm import tqdm
+
+    bars = []  # made at the first iteration, so a run that never iterates prints nothing
+
+    def callback(iteration, residual):
+        if not bars:
+            bars.append(tqdm(desc=description, unit="it", leave=False, dynamic_ncols=True, disable=None))
+        bars[0].update(1)
+        bars[0].set_postfix_str(f"residual {residual:.2e}", refresh=False)
+
+    def close():
+        for bar in bars:
+            bar.close()
+
+    return callback, close
+
+
+def default_lmax(experiment, nside: int) -> int:
+    """The CMB band limit the maps support: the lesser of the experiment's largest ell_max and 2*nside.
+
+    2*nside is where HEALPix analysis keeps the filter's response within a percent (lensrec.filtering).
+    """
+    return min(max(experiment.ell_max_temperature, experiment.ell_max_polarization), 2 * nside)

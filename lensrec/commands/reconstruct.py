@@ -12,6 +12,8 @@ EXAMPLES = """examples:
   lensrec reconstruct --experiment deep_highland --maps sky/maps.fits --estimator GMV --lmax-L 2000 --out rec/
   lensrec reconstruct --experiment my_survey.toml --maps sky/maps.fits --estimator EB --lmax 3000 \\
       --lmax-L 2000 --mask mask.fits --out rec_eb/ --force
+  lensrec reconstruct --experiment deep_highland --maps patch/maps.fits --mask patch_mask.fits \\
+      --hits patch_hits.fits --filter optimal --estimator GMV --out rec_patch/
 
 writes DIR/phi_alm.fits and DIR/curl_alm.fits (normalised estimates to lmax_L, healpy alm FITS),
 DIR/n0.json (analytic N0 of the estimators used, in the layout of 'lensrec forecast': {"L": [...],
@@ -22,13 +24,16 @@ The estimate is normalised with the full-sky response; with a mask, subtract a m
 --lensing-iterations N (EB, full sky): N steps of the iterative estimator after the quadratic one (delens E and B
 with the current Wiener-filtered estimate, estimate again); phi_alm.fits holds the final estimate, n0.json the
 last step's N0 (same layout) and run.json every step's N0 ("n0_per_iteration") and seconds per step.
-  lensrec reconstruct --experiment deep.toml --maps sky/maps.fits --estimator EB --lensing-iterations 1 --out it/"""
+  lensrec reconstruct --experiment deep.toml --maps sky/maps.fits --estimator EB --lensing-iterations 1 --out it/
+--filter auto (the default) uses the optimal conjugate-gradient filter when there is a --mask or a noise map
+(--noise-map or --hits) and the isotropic one otherwise; run.json records the choice and the iterations.
+Maps that 'lensrec simulate --mask' wrote carry LRMASKED = T and are not masked a second time."""
 
 OUTPUTS = ("phi_alm.fits", "curl_alm.fits", "n0.json", "run.json")
 
 
 def add_arguments(parser) -> None:
-    from .options import add_common, add_map_reading
+    from .options import add_common, add_filter_options, add_map_reading, add_noise_model
 
     add_common(parser, experiment=True, out=True)
     add_map_reading(parser)
@@ -51,9 +56,12 @@ def add_arguments(parser) -> None:
         "--lmax",
         type=int,
         default=None,
-        help="CMB band limit of the filter (default: the experiment's largest ell_max; <= 3*nside-1)",
+        help="CMB band limit of the filter (default: the lesser of the experiment's largest ell_max and "
+        "2*nside; <= 3*nside-1)",
     )
     parser.add_argument("--mask", default=None, help="apodized HEALPix FITS mask (values in [0, 1], same nside)")
+    add_noise_model(parser)
+    add_filter_options(parser)
     parser.add_argument(
         "--lensing-iterations",
         dest="lensing_iterations",
@@ -132,12 +140,21 @@ def run(args) -> int:
     maps = read_maps(args.maps, **map_reading_options(args))
     nside = lensrec.harmonics.npix_to_nside(maps.shape[1], f"maps in {args.maps!r}")
     mask = lensrec.load_mask(args.mask, nside) if args.mask else None
+    from ..io import map_is_masked
+    from .options import cg_progress, default_lmax, load_noise_model
+
+    noise = load_noise_model(args, experiment, nside)
+    maps_masked = bool(map_is_masked(args.maps)) and mask is not None
+    lmax = args.lmax if args.lmax is not None else default_lmax(experiment, nside)
     inputs = {
         "maps": os.path.abspath(args.maps),
         "maps_sha256": file_sha256(args.maps),
         "nside": nside,
         "mask": os.path.abspath(args.mask) if args.mask else None,
         "mask_sha256": file_sha256(args.mask) if args.mask else None,
+        "noise_map": os.path.abspath(args.noise_map) if args.noise_map else None,
+        "hits": os.path.abspath(args.hits) if args.hits else None,
+        "maps_masked": maps_masked,
     }
     timings["inputs"] = time.perf_counter() - start
 
@@ -152,20 +169,30 @@ def run(args) -> int:
             bar.n = done
             bar.refresh()
 
-    result = lensrec.reconstruct(
-        maps,
-        source_experiment,
-        estimator=estimator,
-        lmax_L=args.lmax_L,
-        mask=mask,
-        lmax=args.lmax,
-        nthreads=args.nthreads,
-        lensed_weights=not args.unlensed_weights,
-        lensing_iterations=iterations,
-        progress=progress if iterations else None,
-    )
-    if bar is not None:
-        bar.close()
+    cg_callback, close = cg_progress()
+    try:
+        result = lensrec.reconstruct(
+            maps,
+            source_experiment,
+            estimator=estimator,
+            lmax_L=args.lmax_L,
+            mask=mask,
+            lmax=lmax,
+            nthreads=args.nthreads,
+            lensed_weights=not args.unlensed_weights,
+            lensing_iterations=iterations,
+            progress=progress if iterations else None,
+            filter=args.filter,
+            noise=noise,
+            maps_masked=maps_masked,
+            cg_tolerance=args.cg_tolerance,
+            cg_max_iterations=args.cg_max_iterations,
+            cg_progress=cg_callback,
+        )
+    finally:
+        close()
+        if bar is not None:
+            bar.close()
     timings["reconstruction"] = time.perf_counter() - start
 
     start = time.perf_counter()
@@ -185,6 +212,7 @@ def run(args) -> int:
                 "lensed_weights": not args.unlensed_weights,
                 "lensing_iterations": iterations,
                 "b_excluded_ell_max": args.exclude_delensed_b,
+                "filter": result.settings.get("filter_choice", "isotropic"),
             }
         },
     )
@@ -204,6 +232,12 @@ def run(args) -> int:
     )
     write_json(paths["run.json"], record, force=args.force)
     transforms = result.settings["transforms"]
+    filtered = result.settings.get("filter", {})
+    if result.settings.get("filter_choice") == "optimal":
+        print(
+            f"lensrec reconstruct: optimal filter converged in {filtered['cg_iterations']} conjugate-gradient "
+            f"iterations (residual {filtered['cg_residual']:.2e} < {filtered['cg_tolerance']:g})"
+        )
     print(
         f"lensrec reconstruct: {estimator} to L = {result.lmax_L} from nside {nside} maps "
         f"({transforms['synthesis']} syntheses + {transforms['analysis_spin1']} analyses on a "

@@ -21,7 +21,7 @@ OUTPUTS = ("maps.fits", "phi_input_alm.fits", "run.json")
 
 def add_arguments(parser) -> None:
     from ..sky import DEFAULT_LMAX_MARGIN
-    from .options import add_common
+    from .options import add_common, add_noise_model
 
     add_common(parser, experiment=True, out=True, seed=True)
     parser.add_argument("--nside", type=int, required=True, help="HEALPix nside of the maps (a power of two)")
@@ -35,6 +35,7 @@ def add_arguments(parser) -> None:
     )
     parser.add_argument("--no-noise", action="store_true", help="noise-free maps")
     parser.add_argument("--mask", default=None, help="HEALPix FITS mask (values in [0, 1], same nside)")
+    add_noise_model(parser)
     parser.add_argument("--r", type=float, default=0.0, help="tensor-to-scalar ratio (default: %(default)s)")
     parser.add_argument(
         "--tracer",
@@ -56,6 +57,9 @@ def run(args) -> int:
     start = time.perf_counter()
     experiment = lensrec.load_experiment(args.experiment)
     mask = lensrec.load_mask(args.mask, args.nside) if args.mask else None
+    from .options import load_noise_model
+
+    pixel_noise = load_noise_model(args, experiment, args.nside)
     tracer_set = None
     if args.tracer:
         from ..tracers import load_tracers
@@ -76,6 +80,7 @@ def run(args) -> int:
         lmax_margin=args.lmax_margin,
         noise=not args.no_noise,
         mask=mask,
+        pixel_noise=pixel_noise,
         nthreads=args.nthreads,
     )
     timings["simulation"] = time.perf_counter() - start

@@ -2,7 +2,8 @@
 
 ``filter="auto"`` chooses the optimal filter (:class:`lensrec.OptimalFilter`) when there is a mask or a
 per-pixel noise map, and the isotropic filter (:class:`lensrec.IsotropicFilter`) for a full sky with
-uniform noise, where the two agree to HEALPix quadrature accuracy and the isotropic one is cheaper.
+uniform noise, where the two agree to HEALPix quadrature accuracy and the isotropic one is cheaper, and
+for maps already multiplied by an apodized mask, which the optimal filter cannot use.
 
 The analytic normalization of the estimators assumes an isotropic filter of some white-noise level. Each
 filter is normalized with the level that describes it (:mod:`lensrec.pixel_noise`): the isotropic filter
@@ -105,10 +106,13 @@ def build_filter(
     if maps_masked and mask is None:
         raise ValueError("maps_masked=True needs the mask that multiplies the maps (mask=)")
     choice = resolve_filter(filter, mask, noise)
+    binary = mask is None or bool(np.all((mask == 0.0) | (mask == 1.0)))
+    if filter == "auto" and maps_masked and not binary:
+        choice = "isotropic"  # apodized maps cannot be unweighted for the optimal filter
     if noise is not None and mask is not None:
         noise = PixelNoise(noise.variance, np.array(check_mask(mask, nside)) * noise.observed)
     if choice == "optimal":
-        if maps_masked and not np.all((mask == 0.0) | (mask == 1.0)):
+        if maps_masked and not binary:
             raise ValueError(
                 "the maps are already multiplied by an apodized mask, which the optimal filter cannot undo; "
                 "give it unmasked maps (or maps masked with a binary mask), or use filter='isotropic'"

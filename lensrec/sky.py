@@ -250,6 +250,8 @@ class SimulatedSky:
         The mask applied to ``maps``.
     settings : mapping
         Everything needed to reproduce the simulation (see :func:`simulate_sky`).
+    pixel_noise : PixelNoise or None
+        The per-pixel noise model the noise was drawn from (for the optimal filter), if one was given.
     """
 
     maps: np.ndarray
@@ -258,6 +260,7 @@ class SimulatedSky:
     lensed_alm: np.ndarray
     mask: np.ndarray | None
     settings: Mapping = field(default_factory=dict)
+    pixel_noise: object = None
 
     @property
     def nside(self) -> int:
@@ -553,4 +556,5 @@ def simulate_sky(
         lensed_alm=_readonly(lensed),
         mask=_readonly(mask),
         settings=MappingProxyType(settings),
+        pixel_noise=pixel_noise,
     )

@@ -17,6 +17,7 @@ import numpy as np
 
 import lensrec
 from lensrec import harmonics, power
+from lensrec.filter_choice import FILTERS
 from lensrec.labels import ESTIMATORS
 
 from .plotting import (
@@ -73,6 +74,8 @@ class ReconstructionSection(Section):
                                   "18em")  # fmt: skip
         self.estimator.add_class("lensrec-reconstruction-estimator")
         self.lmax_L = labelled(widgets.IntText(value=0, description="lmax_L"), "16em")
+        self.filter = labelled(widgets.Dropdown(options=list(FILTERS), value="auto", description="filter"), "16em")
+        self.filter.add_class("lensrec-reconstruction-filter")
         self.hint = widgets.HTML("<span style='color:#515a5a'>&nbsp;0 = the sky's lmax</span>")
         self.lensing_iterations = labelled(
             widgets.BoundedIntText(value=0, min=0, max=10, description="lensing iterations"), "16em"
@@ -100,7 +103,7 @@ class ReconstructionSection(Section):
         state.observe(self._on_sky, names="sky")
         self._on_sky({"new": state.sky})
         self.layout(
-            controls=[widgets.HBox([self.estimator, self.lmax_L, self.hint]),
+            controls=[widgets.HBox([self.estimator, self.filter, self.lmax_L, self.hint]),
                       widgets.HBox([self.lensing_iterations, self.iterations_hint]),
                       widgets.HBox([self.run_button, self.cancel_button, self.task.widget])],
             outputs=[self.maps_view.widget, self.spectra_view.widget],
@@ -131,6 +134,8 @@ class ReconstructionSection(Section):
         nthreads = self.nthreads
         iterations = self.lensing_iterations.value
 
+        choice = self.filter.value
+
         def work(report, cancel):
             report(0.05, f"filtering the maps and forming the {estimator} estimate…")
             steps = {}
@@ -144,8 +149,17 @@ class ReconstructionSection(Section):
                         check_cancel=False,
                     ),
                 }
+
+            def cg_step(iteration, residual):  # the optimal filter's progress; report() raises on Cancel
+                report(min(0.6, 0.05 + 0.005 * iteration), f"optimal filter: iteration {iteration}, residual "
+                       f"{residual:.1e}")  # fmt: skip
+
+            # the sky's maps already carry its mask: maps_masked keeps it from being applied twice
+            masking = {"maps_masked": True} if sky.mask is not None and not iterations else {}
             result = lensrec.reconstruct(sky.maps, experiment, spectra, estimator=estimator, lmax_L=lmax_L,
-                                         mask=sky.mask, lmax=sky.lmax, nthreads=nthreads, **steps)  # fmt: skip
+                                         mask=sky.mask, lmax=sky.lmax, nthreads=nthreads, filter=choice,
+                                         noise=sky.pixel_noise, cg_progress=cg_step, **masking,
+                                         **steps)  # fmt: skip
             if result.settings.get("cancelled"):
                 report(0.7, "cancelled")  # raises Cancelled: the iterations stopped early, nothing is shown
             report(0.7, "Wiener filter, κ maps and spectra…")

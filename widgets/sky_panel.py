@@ -17,6 +17,7 @@ import numpy as np
 
 import lensrec
 from lensrec import harmonics
+from lensrec.demo_patch import patch_footprint
 
 from .plotting import MAP_CMAP, POSITIVE_CMAP, FigureView, symmetric_limit
 from .section import Section, heading, labelled
@@ -25,7 +26,7 @@ from .work import LiveUpdate, LongTask
 __all__ = ["SkySection", "FIELDS", "MASKS"]
 
 NSIDES = (16, 32, 64, 128, 256, 512, 1024)
-MASKS = {"none": "none", "latitude cut": "latitude", "cap": "cap"}
+MASKS = {"none": "none", "latitude cut": "latitude", "cap": "cap", "deep patch (Quiet Hollow)": "patch"}
 # field key -> (button label, title, unit label, signed)
 FIELDS = {
     "T": ("T", "observed T", "µK", True),
@@ -146,7 +147,16 @@ class SkySection(Section):
         if kind == "cap":
             return lensrec.cap_mask(nside, self.cap_lon.value, self.cap_lat.value, self.cap_radius.value,
                                     width=self.taper.value)  # fmt: skip
+        if kind == "patch":
+            return patch_footprint(nside)[0]
         return None
+
+    def build_noise(self, experiment, nside: int):
+        """The per-pixel noise of the deep patch (its hit map), or None for the experiment's uniform noise."""
+        if self.mask.value != "patch" or not self.noise.value:
+            return None
+        mask, hits = patch_footprint(nside)
+        return lensrec.PixelNoise.from_hits(experiment, hits, mask)
 
     # ---------------------------------------------------------------------------------- simulate
     def simulate(self) -> bool:
@@ -157,8 +167,10 @@ class SkySection(Section):
         def work(report, cancel):
             report(0.05, "building the mask…")
             mask = self.build_mask(settings["nside"])
+            pixel_noise = self.build_noise(experiment, settings["nside"])
             report(0.15, f"simulating the lensed sky at nside {settings['nside']}…")
-            sky = lensrec.simulate_sky(experiment, spectra, mask=mask, nthreads=self.nthreads, **settings)
+            sky = lensrec.simulate_sky(experiment, spectra, mask=mask, pixel_noise=pixel_noise,
+                                       nthreads=self.nthreads, **settings)  # fmt: skip
             report(0.85, "preparing the map viewer…")
             maps = self._field_maps(sky)
             return sky, maps

@@ -72,7 +72,8 @@ def add_arguments(parser) -> None:
         "--lmax",
         type=int,
         default=None,
-        help="band limit of E, B and the template (default: min(3*nside-1, the experiment's polarization l_max))",
+        help="band limit of E, B and the template (default: min(2*nside, the experiment's polarization l_max); "
+        "HEALPix analysis is accurate to 2*nside)",
     )
 
 
@@ -229,7 +230,7 @@ def run(args) -> int:
         )
     maps_digest = file_sha256(args.maps)
     same_maps = source.get("maps_sha256") == maps_digest if source.get("maps_sha256") else None
-    lmax = min(3 * nside - 1, experiment.ell_max_polarization) if args.lmax is None else args.lmax
+    lmax = min(2 * nside, experiment.ell_max_polarization) if args.lmax is None else args.lmax
     if lmax < 2 or lmax > 3 * nside - 1:
         raise InputError(f"--lmax {lmax} must lie in [2, 3*nside-1 = {3 * nside - 1}] for the maps' nside {nside}")
     if spectra.lmax < max(lmax, 0 if args.phi_exact else lmax_phi or 0):

@@ -5,7 +5,7 @@
 Rows (each in its own process, so that each reports its own peak RSS):
 
   * ``mv``:  ``lensrec.reconstruct(maps, experiment, estimator="MV", lmax_L=lmax)`` on T, Q, U maps: filter,
-    five estimators, normalisation;
+    five estimators, normalization;
   * ``gmv``: the same with ``estimator="GMV"`` (joint filter, one spin-1 analysis);
   * ``simulate``: ``lensrec.simulate_sky`` (lensed T, Q, U with noise) at that nside and lmax;
   * ``suite``: one index of a lensing suite (simulate, filter, reconstruct with GMV).

@@ -11,7 +11,7 @@ measurement before and one after the rows, since the machine's load drifts):
     minimum for the position-space form (one synthesis per distinct (field, ℓ-weight, |spin|) leg, one spin-1
     analysis per estimator; see lensrec.reconstruction);
   * the isotropic filter of (T, Q, U) maps at that nside (HEALPix analysis with 3 Jacobi iterations);
-  * the normalisation (exact full-sky responses, N0 and MV weights, lensrec.reconstruction_noise);
+  * the normalization (exact full-sky responses, N0 and MV weights, lensrec.reconstruction_noise);
   * the peak RSS of the process.
 
 Filtered fields are Gaussian with the lensed spectra (the cost does not depend on their values).
@@ -137,7 +137,7 @@ def main() -> int:
     )
     rows.append(
         {
-            "row": "normalisation (responses, N0, MV weights)",
+            "row": "normalization (responses, N0, MV weights)",
             "seconds": noise_seconds,
             "cpu_seconds": noise_cpu,
             "peak_rss_mb": peak_rss_mb(),

@@ -35,7 +35,7 @@ def children_rss_mb() -> float:
 def suite_rate(settings: dict, executor: str, workers: int, threads: int) -> dict:
     from lensrec.suites import run_lensing_suite
 
-    settings = dict(settings, threads_per_task=threads)
+    settings = dict(settings, nthreads=threads)
     folder = tempfile.mkdtemp(prefix="bench_suite_")
     client = cluster = None
     try:
@@ -51,7 +51,7 @@ def suite_rate(settings: dict, executor: str, workers: int, threads: int) -> dic
         else:
             target = executor
         startup = time.perf_counter() - start
-        suite = run_lensing_suite(settings, folder, executor=target, max_workers=workers, progress=False)
+        suite = run_lensing_suite(settings, folder, executor=target, workers=workers, progress=False)
         seconds = time.perf_counter() - start
         stages = {stage: run.seconds for stage, run in suite.runs.items()}
     finally:
@@ -64,7 +64,7 @@ def suite_rate(settings: dict, executor: str, workers: int, threads: int) -> dic
     return {
         "executor": executor,
         "workers": workers,
-        "threads_per_task": threads,
+        "nthreads": threads,
         "n_sims": n,
         "seconds": seconds,
         "startup_seconds": startup,
@@ -82,7 +82,7 @@ def scheduling_overhead(n_tasks: int) -> list[dict]:
 
     from lensrec.suite_runner import gaussian_field_task, run_suite
 
-    settings = {"seed": 1, "nside": 16, "lmax": 32, "threads_per_task": 1, "n_sims": n_tasks}
+    settings = {"seed": 1, "nside": 16, "lmax": 32, "nthreads": 1, "n_sims": n_tasks}
     rows = []
     for name in ("processes", "dask"):
         folder = tempfile.mkdtemp(prefix="bench_overhead_")
@@ -101,7 +101,7 @@ def scheduling_overhead(n_tasks: int) -> list[dict]:
                 folder,
                 gaussian_field_task,
                 executor=client if client else "processes",
-                max_workers=2,
+                workers=2,
                 progress=False,
             )
             # the pool's start-up (spawning and importing in 2 workers) happens inside the run
@@ -153,7 +153,7 @@ def main() -> None:
             f"({row['seconds']:.1f} s)",
             flush=True,
         )
-    base = {r["executor"] + str(r["threads_per_task"]): r["sims_per_minute"] for r in rows}
+    base = {r["executor"] + str(r["nthreads"]): r["sims_per_minute"] for r in rows}
     for row in rows:
         row["speed_vs_serial_1_thread"] = row["sims_per_minute"] / base["serial1"]
         row["speed_vs_serial_2_threads"] = row["sims_per_minute"] / base["serial2"]

@@ -3,7 +3,7 @@
     python benchmarks/filter_accuracy.py [--quick]
 
 For each nside and ℓ_max/nside, a Gaussian sky with the fiducial lensed T, E, B spectra, band-limited at ℓ_max,
-is synthesised on HEALPix and analysed back with ``jacobi_iterations`` = 0 … 4 (lensrec.harmonics.map2alm,
+is synthesized on HEALPix and analyzed back with ``jacobi_iterations`` = 0 … 4 (lensrec.harmonics.map2alm,
 healpy's scheme) and with ducc0's LSMR pseudo-analysis (``ducc0.sht.pseudo_analysis``) for a few iteration
 caps. Reported per field (T, E, B), over 2 ≤ ℓ ≤ ℓ_max:
 

@@ -15,7 +15,7 @@ The data bandpowers (:func:`lensing_bandpowers`, notation of :mod:`lensrec.biase
 
 with C^{split} the half-split mean-field-subtracted spectrum (eq. 4), RDN0 from data × simulation and
 simulation × simulation pairs (eq. 1), the Monte-Carlo N1 (eq. 3, zero when the suite has none) and the
-normalisation correction 1/ρ² from the simulations' cross-spectra with their input φ. Each simulation's
+normalization correction 1/ρ² from the simulations' cross-spectra with their input φ. Each simulation's
 own bandpowers are debiased the same way with the Monte-Carlo N0 (eq. 2) in place of RDN0 and
 mean-field halves that leave it out; their sample covariance, plus the (diagonal) Monte-Carlo variance of
 the RDN0 and N1 that the data subtracts, is the covariance of the data bandpowers (slightly conservative:
@@ -33,7 +33,7 @@ model uses the inverse sample covariance with the factor (n − n_b − 2)/(n �
 Schneider 2007 (A&A 464, 399) when n > n_b + 2 simulations are available, and the diagonal otherwise.
 
 For the curl component, and for a suite of Gaussian (unlensed) skies, the model is zero: the debiased
-bandpowers are a null test (χ² to zero), and no normalisation correction or amplitude applies.
+bandpowers are a null test (χ² to zero), and no normalization correction or amplitude applies.
 """
 
 from __future__ import annotations
@@ -45,13 +45,14 @@ from types import MappingProxyType
 import numpy as np
 
 from ._checks import as_int, readonly_copy
+from ._deprecation import deprecated_property
 from .biases import (
     half_split_mean_fields,
     mean_field_power,
     mean_field_split_spectrum,
     monte_carlo_n0,
     monte_carlo_n1,
-    normalisation_correction,
+    normalization_correction,
     realization_dependent_n0,
 )
 from .power import bin_spectrum, binning_matrix, cross_spectrum, mask_corrected, mask_moment_order
@@ -223,7 +224,7 @@ class LensingBandpowers:
     terms, term_errors : mapping name → ndarray
         "mean_field" (the mean-field's own power, already excluded from ``raw`` by the split),
         "rdn0", "mc_n0", "n1" (zero without N1 pairs), "analytic_n0"; errors are Monte-Carlo 1σ.
-    normalisation, normalisation_error : ndarray
+    normalization, normalization_error : ndarray
         The factor 1/ρ² applied to the bias-subtracted spectrum (1 for the curl), and its error.
     debiased, errors : ndarray
         Ĉ_b of the data and √diag(covariance).
@@ -250,8 +251,8 @@ class LensingBandpowers:
     raw: np.ndarray
     terms: Mapping
     term_errors: Mapping
-    normalisation: np.ndarray
-    normalisation_error: np.ndarray
+    normalization: np.ndarray
+    normalization_error: np.ndarray
     debiased: np.ndarray
     errors: np.ndarray
     covariance: np.ndarray
@@ -267,6 +268,10 @@ class LensingBandpowers:
     n1_computed: bool
     unbinned: Mapping
     settings: Mapping
+
+    # the British spellings answer until 0.2 with a DeprecationWarning
+    normalisation = deprecated_property("normalization", "normalisation")
+    normalisation_error = deprecated_property("normalization_error", "normalisation_error")
 
     @property
     def L_eff(self) -> np.ndarray:
@@ -284,8 +289,8 @@ class LensingBandpowers:
             "raw": self.raw.tolist(),
             "terms": {k: v.tolist() for k, v in self.terms.items()},
             "term_errors": {k: v.tolist() for k, v in self.term_errors.items()},
-            "normalisation_correction": self.normalisation.tolist(),
-            "normalisation_correction_error": self.normalisation_error.tolist(),
+            "normalization_correction": self.normalization.tolist(),
+            "normalization_correction_error": self.normalization_error.tolist(),
             "debiased": self.debiased.tolist(),
             "errors": self.errors.tolist(),
             "covariance": self.covariance.tolist(),
@@ -420,7 +425,7 @@ def lensing_bandpowers(
             [mask_corrected(cross_spectrum(a, p), moments, input_order) for a, p in zip(autos, inputs, strict=True)]
         )
         input_auto = np.array([cross_spectrum(p) for p in inputs])
-        correction = normalisation_correction(cross, input_auto, binning=matrix)
+        correction = normalization_correction(cross, input_auto, binning=matrix)
         factor, factor_error = correction.value, correction.error
     else:
         theory_unbinned = np.zeros(lmax_L + 1)
@@ -483,8 +488,8 @@ def lensing_bandpowers(
         raw=_frozen(raw),
         terms=MappingProxyType({k: _frozen(v) for k, v in terms.items()}),
         term_errors=MappingProxyType({k: _frozen(v) for k, v in term_errors.items()}),
-        normalisation=_frozen(factor),
-        normalisation_error=_frozen(factor_error),
+        normalization=_frozen(factor),
+        normalization_error=_frozen(factor_error),
         debiased=_frozen(debiased),
         errors=_frozen(errors),
         covariance=_frozen(covariance),
@@ -553,8 +558,8 @@ def bias_budget(result: LensingBandpowers) -> dict:
             "raw": float(result.raw[b]),
             "debiased": float(result.debiased[b]),
             "error": float(result.errors[b]),
-            "normalisation_correction": float(result.normalisation[b]),
-            "normalisation_correction_error": float(result.normalisation_error[b]),
+            "normalization_correction": float(result.normalization[b]),
+            "normalization_correction_error": float(result.normalization_error[b]),
         }
         for name in TERMS:
             row[name] = float(result.terms[name][b])

@@ -6,8 +6,8 @@ answer is known, and reused on any suite.
 
 Notation
 ========
-φ̂[a, b] is the normalised quadratic estimate whose first leg (T of TE, E of EB, …) comes from the filtered
-fields a and second leg from b. The functions below take spectra of the *symmetrised* pair estimate
+φ̂[a, b] is the normalized quadratic estimate whose first leg (T of TE, E of EB, …) comes from the filtered
+fields a and second leg from b. The functions below take spectra of the *symmetrized* pair estimate
 
     φ̂{a, b} = (φ̂[a, b] + φ̂[b, a]) / 2 ,           φ̂{a, a} = φ̂[a, a] ,
 
@@ -30,8 +30,8 @@ Monte-Carlo N0 (the Gaussian bias of a simulation's own spectrum; the average of
 Monte-Carlo N1 (the term of Kesden, Cooray & Kamionkowski 2003, PRD 67, 123507, first order in C^φφ from
 the connected four-point function): pairs that share φ but have independent CMB, minus pairs whose φ are
 independent. With a_i = CMB_i lensed by φ_i, b_i = CMB'_i lensed by φ_i and b'_i = CMB'_i lensed by an
-independent φ_j (the same unlensed CMB'_i, which makes the two terms nearly equal realisation by
-realisation and removes most of the Gaussian scatter)::
+independent φ_j (the same unlensed CMB'_i, which makes the two terms nearly equal realization by
+realization and removes most of the Gaussian scatter)::
 
     N1_MC = 2 ⟨C^{a_i b_i} − C^{a_i b'_i}⟩_i .                                           (3)
 
@@ -49,9 +49,9 @@ Monte-Carlo noise of a mean-field estimate (N0/N_half per mode) adds nothing to 
 mean of N simulations from both sides would add ≈ C_L^{φ̂}/N. The power of the mean-field itself is
 estimated without that noise by the cross-spectrum of the halves, C^{MF₁ MF₂}.
 
-Normalisation correction: the response of the analytic normalisation to the input φ, measured from the
+Normalization correction: the response of the analytic normalization to the input φ, measured from the
 simulations' cross-spectra with their input, ρ = ⟨C^{φ̂ φ}⟩ / ⟨C^{φ φ}⟩ (⟨w²⟩ divides the masked cross).
-Power spectra are multiplied by 1/ρ² (common practice: a Monte-Carlo correction of the normalisation).
+Power spectra are multiplied by 1/ρ² (common practice: a Monte-Carlo correction of the normalization).
 """
 
 from __future__ import annotations
@@ -61,6 +61,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ._checks import as_finite_array, as_int
+from ._deprecation import deprecated_alias
 from .power import cross_spectrum
 
 __all__ = [
@@ -71,7 +72,7 @@ __all__ = [
     "realization_dependent_n0",
     "monte_carlo_n0",
     "monte_carlo_n1",
-    "normalisation_correction",
+    "normalization_correction",
 ]
 
 
@@ -88,7 +89,7 @@ class BiasEstimate:
     count : int
         Number of simulation terms averaged.
     name : str
-        "RDN0", "MC-N0", "MC-N1", "normalisation".
+        "RDN0", "MC-N0", "MC-N1", "normalization".
     """
 
     value: np.ndarray
@@ -188,7 +189,7 @@ def mean_field_power(mean_field_1, mean_field_2, lmax: int | None = None) -> np.
 
 # -------------------------------------------------------------------------------------- N0 and N1
 def realization_dependent_n0(data_sim, sim_sim) -> BiasEstimate:
-    """Eq. (1): RDN0 = 4⟨C^{d s_i}⟩ − 2⟨C^{s_i s_j}⟩ from spectra of symmetrised pair estimates.
+    """Eq. (1): RDN0 = 4⟨C^{d s_i}⟩ − 2⟨C^{s_i s_j}⟩ from spectra of symmetrized pair estimates.
 
     Parameters
     ----------
@@ -202,7 +203,7 @@ def realization_dependent_n0(data_sim, sim_sim) -> BiasEstimate:
     BiasEstimate
         ``error`` adds the standard errors of the two means in quadrature (16 var/n + 4 var/m); the
         two averages share simulations only through terms whose correlation is of the order of the
-        realised-power scatter of one simulation, which is negligible against N0's own scatter.
+        realized-power scatter of one simulation, which is negligible against N0's own scatter.
 
     References
     ----------
@@ -225,7 +226,7 @@ def realization_dependent_n0(data_sim, sim_sim) -> BiasEstimate:
 
 
 def monte_carlo_n0(sim_sim) -> BiasEstimate:
-    """Eq. (2): N0_MC = 2⟨C^{s_i s_j}⟩ from spectra of symmetrised estimates of independent pairs.
+    """Eq. (2): N0_MC = 2⟨C^{s_i s_j}⟩ from spectra of symmetrized estimates of independent pairs.
 
     Parameters
     ----------
@@ -275,7 +276,7 @@ def monte_carlo_n1(shared_phi, independent_phi) -> BiasEstimate:
     return BiasEstimate(difference.mean(axis=0), _standard_error(difference), int(shared.shape[0]), "MC-N1")
 
 
-def normalisation_correction(cross_input, input_auto, binning=None) -> BiasEstimate:
+def normalization_correction(cross_input, input_auto, binning=None) -> BiasEstimate:
     """The multiplicative correction 1/ρ² of the power spectrum, ρ = ⟨C^{φ̂ φ}⟩ / ⟨C^{φ φ}⟩.
 
     Parameters
@@ -297,13 +298,13 @@ def normalisation_correction(cross_input, input_auto, binning=None) -> BiasEstim
 
     References
     ----------
-    Common practice (Monte-Carlo correction of the analytic normalisation from the cross-spectrum with the
+    Common practice (Monte-Carlo correction of the analytic normalization from the cross-spectrum with the
     input lensing potential).
 
     Examples
     --------
     >>> import numpy as np
-    >>> c = normalisation_correction(np.full((3, 4), 0.5), np.full((3, 4), 1.0))
+    >>> c = normalization_correction(np.full((3, 4), 0.5), np.full((3, 4), 1.0))
     >>> c.value.tolist()
     [4.0, 4.0, 4.0, 4.0]
     """
@@ -326,4 +327,8 @@ def normalisation_correction(cross_input, input_auto, binning=None) -> BiasEstim
         var_rho = (var_x / mean_i**2 + mean_x**2 * var_i / mean_i**4 - 2.0 * mean_x * cov_xi / mean_i**3) / n
         factor = 1.0 / rho**2
         error = 2.0 * np.sqrt(np.clip(var_rho, 0.0, None)) / np.abs(rho) ** 3
-    return BiasEstimate(factor, error, n, "normalisation")
+    return BiasEstimate(factor, error, n, "normalization")
+
+
+# The British spelling answers until 0.2 with a DeprecationWarning.
+normalisation_correction = deprecated_alias(normalization_correction, "normalisation_correction")

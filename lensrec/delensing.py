@@ -6,7 +6,7 @@ lensing potential; subtracting it from the observed B modes removes (part of) th
     φ^WF_LM = C_L^φφ / (C_L^φφ + N0_L) · φ̂_LM,         E^WF_ℓm = C̃_ℓ^EE · Ē_ℓm,
     B^template = B[ remap(E^WF, B = 0) by ∇φ^WF ],     B^residual = B^observed − B^template,
 
-with φ̂ the normalised (unit-response) gradient reconstruction of Gaussian noise N0, Ē the
+with φ̂ the normalized (unit-response) gradient reconstruction of Gaussian noise N0, Ē the
 inverse-variance-filtered E modes (on the full sky with isotropic noise, Ē = E / (C̃^EE + N^EE), so
 E^WF = C̃^EE/(C̃^EE + N^EE) · E) and C̃^EE the lensed E spectrum.
 
@@ -24,7 +24,7 @@ re-exported here, and :func:`delens` runs filter → template → spectra.
    an apparent A_lens^res of 0.28 where the forecast without the bias is 0.40 (the residual ~30% low; 0.35
    measured against the noise-free lensed B, the rest from the B noise), while an EE reconstruction of the
    same sky gives 0.89 against 0.88. Published estimates are of the same order, tens of percent of the
-   residual for deep polarization-based reconstructions (from memory; Namikawa 2017, PRD 95, 103514;
+   residual for deep polarization-based reconstructions (Namikawa 2017, PRD 95, 103514;
    Baleato Lizancos, Challinor & Carron 2021, JCAP 03, 016). Reusing the template's E modes inside an EE or
    TE reconstruction gives a much smaller correlation. Avoid the bias by reconstructing φ without the
    delensed B modes (TT, TE, EE only, disjoint multipole ranges, or independent data), or calibrate it with
@@ -46,6 +46,7 @@ import numpy as np
 
 from . import harmonics
 from ._checks import as_int
+from ._deprecation import renamed_arguments
 from .lensing_templates import (  # noqa: F401  (re-exported: template construction lived here)
     DEFAULT_EPSILON,
     DEFAULT_TEMPLATE_METHOD,
@@ -93,7 +94,7 @@ def delensing_efficiency(observed_bb, residual_bb, noise_bb=None) -> np.ndarray:
         Power of the observed B modes and of the delensed residual (µK², from ℓ = 0, one length).
     noise_bb : array_like, optional
         Expected noise power of the observed B modes (µK², beam-deconvolved, ``inf`` outside the cuts);
-        default zero. The noise realisation's own scatter and any correlation of the template with the noise
+        default zero. The noise realization's own scatter and any correlation of the template with the noise
         (delensing bias) are not removed by the subtraction.
 
     Returns
@@ -123,8 +124,9 @@ def delensing_efficiency(observed_bb, residual_bb, noise_bb=None) -> np.ndarray:
     return out
 
 
+@renamed_arguments(iterations="fit_iterations")
 def measured_alens_residual(
-    residual_bb, lensed_bb, noise_bb=None, ell_min: int = 2, ell_max: int | None = None, iterations: int = 8
+    residual_bb, lensed_bb, noise_bb=None, ell_min: int = 2, ell_max: int | None = None, fit_iterations: int = 8
 ) -> float:
     """A_lens^res of a measured residual: the Fisher-weighted fit of A · C^lens + N to the delensed BB.
 
@@ -146,8 +148,9 @@ def measured_alens_residual(
         Noise power in ``residual_bb`` (µK², ``inf`` allowed); default zero.
     ell_min, ell_max : int
         Inclusive multipole range (default 2 … the end of ``residual_bb``).
-    iterations : int, default 8
-        Fixed-point iterations of the weights (the fit converges in a few).
+    fit_iterations : int, default 8
+        Fixed-point iterations of the fit's weights (it converges in a few); ``iterations`` is the
+        deprecated old name.
 
     Returns
     -------
@@ -165,7 +168,7 @@ def measured_alens_residual(
     ell_max = size - 1 if ell_max is None else ell_max
     ell_min = as_int(ell_min, "ell_min", minimum=2)
     ell_max = as_int(ell_max, "ell_max", minimum=ell_min)
-    iterations = as_int(iterations, "iterations", minimum=1, maximum=100)
+    fit_iterations = as_int(fit_iterations, "fit_iterations", minimum=1, maximum=100)
     residual = _spectrum(residual_bb, "residual_bb", ell_max)[ell_min:]
     lensed = _spectrum(lensed_bb, "lensed_bb", ell_max)[ell_min:]
     noise = (np.zeros(ell_max + 1) if noise_bb is None else _spectrum(noise_bb, "noise_bb", ell_max, allow_inf=True))[
@@ -178,7 +181,7 @@ def measured_alens_residual(
     lensed, residual, noise = lensed[usable], residual[usable], noise[usable]
     ratio = (residual - noise) / lensed
     amplitude = 1.0
-    for _ in range(iterations):
+    for _ in range(fit_iterations):
         model = max(amplitude, 0.0) * lensed + noise
         if np.any(model <= 0):  # no noise and A ≤ 0: fall back to the noise-free weights (2ℓ+1)
             weights = 2.0 * ell + 1.0
@@ -216,7 +219,7 @@ class DelensingResult:
     method : str
         Template method.
     notes : tuple of str
-        Caveats travelling with the numbers (the delensing bias first).
+        Caveats traveling with the numbers (the delensing bias first).
     """
 
     ell: np.ndarray
@@ -278,8 +281,8 @@ MEASURED_BIAS_NOTE = (
     "lower than the true one: the efficiency and A_lens^res are then optimistic and an r analysis of the residual "
     "biased low. On a full-sky simulation at 1.4 uK-arcmin (EB to L = 1000, E to l = 1500) lensrec measured an "
     "apparent A_lens^res of 0.28 against 0.40 forecast without the bias (the residual ~30% low); an EE "
-    "reconstruction of the same sky gave 0.89 against 0.88. Published estimates are of the same order (from "
-    "memory; Namikawa 2017, PRD 95, 103514; Baleato Lizancos, Challinor & Carron 2021, JCAP 03, 016). Avoid it "
+    "reconstruction of the same sky gave 0.89 against 0.88. Published estimates are of the same order "
+    "(Namikawa 2017, PRD 95, 103514; Baleato Lizancos, Challinor & Carron 2021, JCAP 03, 016). Avoid it "
     "by reconstructing phi without the delensed B modes (TT, TE, EE, disjoint multipoles or independent data) or "
     "calibrate it with simulations; nothing here corrects it."
 )
@@ -484,7 +487,7 @@ def delens_maps(
     maps : array, shape (3, 12·nside²)
         Observed T, Q, U (µK, RING).
     reconstruction : Reconstruction or complex array
-        The lensing reconstruction (its ``phi_alm`` and gradient N0 are used), or normalised φ̂_LM with
+        The lensing reconstruction (its ``phi_alm`` and gradient N0 are used), or normalized φ̂_LM with
         ``n0`` given.
     experiment : Experiment or str
         The experiment the maps were observed with (filter, beam, B-mode noise).

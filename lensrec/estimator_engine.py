@@ -1,9 +1,9 @@
 # Over 600 lines: one algorithm (plan, legs, ring blocks, products) sharing one workspace and derivation.
-r"""Position-space engine of the quadratic estimators: unnormalised ḡ_LM from pairs of filtered fields.
+r"""Position-space engine of the quadratic estimators: unnormalized ḡ_LM from pairs of filtered fields.
 
 The estimators are those of :mod:`lensrec.estimator_weights` (TT, TE, EE, TB, EB; weights [f^XY]* of
 Okamoto & Hu 2003, PRD 67, 083002), evaluated in position space as products of filtered maps and
-normalised with the exact full-sky responses of :mod:`lensrec.estimator_noise`.
+normalized with the exact full-sky responses of :mod:`lensrec.estimator_noise`.
 
 Position-space form
 ===================
@@ -43,7 +43,7 @@ Transform counts (full-sky equivalents, ``Reconstruction.settings["transforms"]`
 TT 2 syntheses (spin 0 T̄, spin 1 √(ℓ(ℓ+1)) C^TT T̄) + 1 spin-1 analysis; EE 3 + 1 (Ē at spin 2, C^EE Ē
 at spins 1 and 3); TB 3 + 1; TE 5 + 1; EB 6 + 1 (3 + 1 when C^BB = 0 in the weights); MV 11 + 5, every
 leg shared between the estimators that use it. Each distinct (field, ℓ-weight, |spin|) needs its own
-synthesis and each estimator its own analysis (its normalisation and MV weight depend on L), so these are
+synthesis and each estimator its own analysis (its normalization and MV weight depend on L), so these are
 the minimum for this form. Two different inputs need both sides' legs (e.g. MV: 16 syntheses + 5).
 
 Leg order of ḡ[a, b]: the first field of the label comes from the first input, the second from the
@@ -63,7 +63,7 @@ one input: T̄ (spin 0), P̄ = Ē + iB̄ (spin 2), and √(ℓ(ℓ+1)) W^T (spin
 with the spin-2 ladder weights: 5 syntheses + 1 spin-1 analysis (10 + 1 for a mixed pair), against 11 + 5
 for MV. It is checked against brute-force 3j sums of its definition in tests/test_joint_estimator.py.
 
-The normalised public API (:func:`lensrec.reconstruct`, :func:`lensrec.reconstruct_filtered`) is in
+The normalized public API (:func:`lensrec.reconstruct`, :func:`lensrec.reconstruct_filtered`) is in
 :mod:`lensrec.reconstruction`.
 """
 
@@ -80,6 +80,7 @@ from types import MappingProxyType
 import numpy as np
 
 from ._checks import as_float, as_int, readonly_copy, resolve_nthreads
+from ._deprecation import renamed_arguments
 from .estimator_noise import JOINT_ESTIMATOR
 from .estimator_weights import (
     ESTIMATOR_FIELDS,
@@ -197,7 +198,7 @@ def _joint_products(component: str, factors: FactorTable, shared: bool) -> dict:
     return {key: value for key, value in out.items() if abs(value) > 1e-15}
 
 
-def _symmetrised(products: dict) -> dict:
+def _symmetrized(products: dict) -> dict:
     """½ (H[a, b] + H[b, a]): the products with the two inputs exchanged (side 0 ↔ 1) averaged in."""
 
     def swap(item):
@@ -211,17 +212,17 @@ def _symmetrised(products: dict) -> dict:
     return {key: value for key, value in out.items() if abs(value) > 1e-15}
 
 
-def _plan(labels, factors: FactorTable, shared: bool, symmetrise: bool = False) -> dict:
+def _plan(labels, factors: FactorTable, shared: bool, symmetrize: bool = False) -> dict:
     """Per estimator: its products (gradient form) and η; checks H^curl = −i H^grad term by term.
 
-    With ``symmetrise`` (two inputs), the products of ½ (ḡ[a, b] + ḡ[b, a]) in one plan: the legs of each
-    input are synthesised once and the two orderings share one spin-1 analysis.
+    With ``symmetrize`` (two inputs), the products of ½ (ḡ[a, b] + ḡ[b, a]) in one plan: the legs of each
+    input are synthesized once and the two orderings share one spin-1 analysis.
     """
     plan = {}
     for label in labels:
         build = _joint_products if label == JOINT_ESTIMATOR else functools.partial(_products, label)
-        if symmetrise and not shared and label != JOINT_ESTIMATOR:  # the joint plan is symmetric already
-            build = functools.partial(lambda inner, *args: _symmetrised(inner(*args)), build)
+        if symmetrize and not shared and label != JOINT_ESTIMATOR:  # the joint plan is symmetric already
+            build = functools.partial(lambda inner, *args: _symmetrized(inner(*args)), build)
         gradient = build("gradient", factors, shared)
         curl = build("curl", factors, shared)
         if set(gradient) != set(curl) or any(
@@ -241,7 +242,7 @@ def _key_number(value: complex) -> complex:
     return complex(round(value.real, 13) + 0.0, round(value.imag, 13) + 0.0)
 
 
-def _normalised(combination: dict) -> tuple[tuple, complex]:
+def _normalized(combination: dict) -> tuple[tuple, complex]:
     """(key, scale) with combination = scale · key; the key's first coefficient is one."""
     items = sorted(combination.items())
     scale = items[0][1]
@@ -265,9 +266,9 @@ def _combined_plan(plan: dict, merge: set) -> tuple[list, list]:
     per_label = []
 
     def leg_index(spin, combination: dict, conj: bool) -> tuple[int, complex]:
-        # Σ w_i conj(L_i) = conj(Σ conj(w_i) L_i): synthesise the conjugated weights, conjugate the scale back
+        # Σ w_i conj(L_i) = conj(Σ conj(w_i) L_i): synthesize the conjugated weights, conjugate the scale back
         synth = {leg: (np.conj(value) if conj else value) for leg, value in combination.items()}
-        key, scale = _normalised(synth)
+        key, scale = _normalized(synth)
         index = legs.setdefault((spin, key), len(legs))
         return index, (np.conj(scale) if conj else scale)
 
@@ -294,7 +295,7 @@ def _combined_plan(plan: dict, merge: set) -> tuple[list, list]:
         for (_sa, spin_a, conj_a, _sb, spin_b, conj_b), rows in blocks.items():
             grouped: dict = {}
             for base_a, combination in rows.items():
-                key, scale = _normalised(combination)  # row = scale · B_key
+                key, scale = _normalized(combination)  # row = scale · B_key
                 grouped.setdefault(key, {})[base_a] = scale
             for key, a_combination in grouped.items():
                 ia, scale_a = leg_index(spin_a, a_combination, conj_a)
@@ -314,12 +315,12 @@ def _readonly(values, dtype=None) -> np.ndarray:
 
 @dataclass(frozen=True, eq=False)
 class QuadraticEstimates:
-    """Unnormalised estimates ḡ^XY_LM of a pair of filtered inputs (read-only).
+    """Unnormalized estimates ḡ^XY_LM of a pair of filtered inputs (read-only).
 
     Attributes
     ----------
     gradient, curl : mapping label → complex ndarray, shape (nalm(lmax_L),)
-        ḡ for the lensing (φ) and curl (Ω) weights, healpy layout; normalise with A_L = 1/R_L.
+        ḡ for the lensing (φ) and curl (Ω) weights, healpy layout; normalize with A_L = 1/R_L.
     lmax_L : int
     shared : bool
         True when both legs came from the same filtered fields.
@@ -448,7 +449,7 @@ class _Workspace:
 def _synthesise_legs(legs, coefficients, layout, lmax, geometry, npix, nthreads, workspace: _Workspace) -> None:
     """Leg maps on the rings of ``geometry`` into the workspace: Σ w u X̄ ₛY (real for spin 0).
 
-    Legs of one spin are synthesised in one batched ducc0 call (one set-up of the recursions per call).
+    Legs of one spin are synthesized in one batched ducc0 call (one set-up of the recursions per call).
     """
     import ducc0
     from numpy.lib.stride_tricks import as_strided
@@ -504,6 +505,7 @@ def _multiply_block(block, legs_maps, products, out, scratch):
             acc[...] = 0.0
 
 
+@renamed_arguments(symmetrise="symmetrize")
 def quadratic_estimates(
     first: FilteredFields,
     second: FilteredFields | None = None,
@@ -513,9 +515,9 @@ def quadratic_estimates(
     lensed_weights: bool = True,
     nthreads: int | None = None,
     workspace_mb: int | None = None,
-    symmetrise: bool = False,
+    symmetrize: bool = False,
 ) -> QuadraticEstimates:
-    """Unnormalised quadratic estimates ḡ^XY_LM[a, b] in position space (gradient and curl weights).
+    """Unnormalized quadratic estimates ḡ^XY_LM[a, b] in position space (gradient and curl weights).
 
     Parameters
     ----------
@@ -537,8 +539,8 @@ def quadratic_estimates(
         Memory for one block of rings (the legs and products of those rings), in MB; default 1024. The grid
         is processed in as many blocks of north/south ring pairs as this requires; fewer, larger blocks
         save per-call set-up in the transforms.
-    symmetrise : bool
-        With two inputs: return ½ (ḡ[a, b] + ḡ[b, a]) in one pass (each input's legs synthesised once, one
+    symmetrize : bool
+        With two inputs: return ½ (ḡ[a, b] + ḡ[b, a]) in one pass (each input's legs synthesized once, one
         analysis per estimator), as realization-dependent N0 and N1 use mixed pairs; about half the cost of
         two calls. Ignored for one input (ḡ[a, a] is its own mirror).
 
@@ -591,8 +593,8 @@ def quadratic_estimates(
     nthreads = resolve_nthreads(nthreads)
     signal = spectra.cmb(lensed=bool(lensed_weights))
     factors = FactorTable({f"cmb:{key}": signal[key][: lmax + 1] for key in ("TT", "EE", "BB", "TE")})
-    symmetrise = bool(symmetrise) and not shared
-    plan = _plan(labels, factors, shared, symmetrise)
+    symmetrize = bool(symmetrize) and not shared
+    plan = _plan(labels, factors, shared, symmetrize)
     fields = (first, second)
 
     # legs sorted by |spin|: each spin is one batched synthesis
@@ -676,7 +678,7 @@ def quadratic_estimates(
         "lmax_L": lmax_L,
         "lensed_weights": bool(lensed_weights),
         "estimators": list(labels),
-        "symmetrised": symmetrise,
+        "symmetrized": symmetrize,
         "grid": [grid.ntheta, grid.nphi],
         "ring_blocks": len(blocks),
         "transforms": {

@@ -1,12 +1,12 @@
 # Over 600 lines: responses, N0, covariance and combined labels come from one pass of the quadrature.
 """Exact full-sky responses and Gaussian reconstruction noise (N0) of the quadratic lensing estimators.
 
-The estimators, their response R_L, normalisation A_L = 1/R_L and the noise covariance are defined in
+The estimators, their response R_L, normalization A_L = 1/R_L and the noise covariance are defined in
 :mod:`lensrec.estimator_weights` (module docstring, with Okamoto & Hu 2003 references); every double sum
 over (ℓ1, ℓ2) is evaluated exactly with the Gauss–Legendre identity of :mod:`lensrec.quadrature`, in O(ℓ²).
 
 The minimum-variance (MV) combination uses, per L, the inverse of the full N0 covariance of the five
-normalised estimators (cross terms included): weights w = C⁻¹1 / (1ᵀC⁻¹1), N0_MV = 1/(1ᵀC⁻¹1), unit response.
+normalized estimators (cross terms included): weights w = C⁻¹1 / (1ᵀC⁻¹1), N0_MV = 1/(1ᵀC⁻¹1), unit response.
 Estimators whose N0 is undefined at some L (zero response) are left out of the MV at that L.
 
 Beyond :func:`reconstruction_noise`, :func:`estimator_responses` and :func:`noise_covariance` accept any
@@ -147,7 +147,7 @@ def joint_estimator_parts(component: str = "gradient", spectra: str = "cmb") -> 
 
     References
     ----------
-    Maniyar, Ali-Haïmoud, Carron, Lewis & Madhavacheril 2021, PRD 103, 083524 (generalised minimum-variance
+    Maniyar, Ali-Haïmoud, Carron, Lewis & Madhavacheril 2021, PRD 103, 083524 (generalized minimum-variance
     estimator); Okamoto & Hu 2003, PRD 67, 083002 (the response functions f).
     """
     return {
@@ -204,7 +204,7 @@ def _register_joint_noise(sums: KernelSums, component: str, filtered: str = "joi
 
 
 def estimator_responses(estimators, sources, factors: FactorTable, lmax: int, lmax_L: int, nthreads=None):
-    """Responses R_L of unnormalised estimators to source kernels: ⟨ḡ_LM⟩ = R_L ψ_LM.
+    """Responses R_L of unnormalized estimators to source kernels: ⟨ḡ_LM⟩ = R_L ψ_LM.
 
     Parameters
     ----------
@@ -236,7 +236,7 @@ def estimator_responses(estimators, sources, factors: FactorTable, lmax: int, lm
 
 
 def noise_covariance(estimators, factors: FactorTable, lmax: int, lmax_L: int, total: str = "total", nthreads=None):
-    """Gaussian noise covariance N^{ab}_L of unnormalised estimators (divide by R^a R^b for N0).
+    """Gaussian noise covariance N^{ab}_L of unnormalized estimators (divide by R^a R^b for N0).
 
     Parameters
     ----------
@@ -273,7 +273,7 @@ def minimum_variance(covariance) -> tuple[np.ndarray, np.ndarray]:
     Parameters
     ----------
     covariance : array_like, shape (n, n, nL)
-        N0 covariance of normalised estimators; estimators with a non-finite or non-positive diagonal at
+        N0 covariance of normalized estimators; estimators with a non-finite or non-positive diagonal at
         some L are excluded there.
 
     Returns
@@ -336,13 +336,13 @@ class ReconstructionNoise:
     L : ndarray
         0 … lmax_L.
     n0 : mapping label → component → ndarray
-        Gaussian N0 of the normalised estimators in C_L^φφ units (C_L^ΩΩ units for the curl), NaN for L < 2
+        Gaussian N0 of the normalized estimators in C_L^φφ units (C_L^ΩΩ units for the curl), NaN for L < 2
         and wherever the response vanishes.
     response : mapping label → component → ndarray
-        R_L of the unnormalised estimator to its own source (A_L = 1/R_L); for "MV", 1/N0_MV (the MV
-        combination is optimal, so its normalisation equals its noise).
+        R_L of the unnormalized estimator to its own source (A_L = 1/R_L); for "MV", 1/N0_MV (the MV
+        combination is optimal, so its normalization equals its noise).
     covariance : mapping component → ndarray, shape (n_est, n_est, lmax_L+1)
-        N0 cross-covariance of the normalised estimators listed in ``covariance_labels``.
+        N0 cross-covariance of the normalized estimators listed in ``covariance_labels``.
     covariance_labels : tuple of str
     mv_weights : mapping component → ndarray, shape (n_est, lmax_L+1)
         Per-L MV weights over ``covariance_labels`` (only when "MV" was requested).

@@ -6,8 +6,8 @@ reproduce ``R_L`` below exactly)
 Fields X, Y, Z, V ∈ {T, E, B} have harmonic coefficients X_ℓm in healpy's convention, X_{ℓ,−m} = (−1)^m X*_ℓm,
 with the spin-2 combinations ₊₂a_ℓm = −(E_ℓm + iB_ℓm), ₋₂a_ℓm = −(E_ℓm − iB_ℓm). The source ψ is either the
 lensing potential φ (component "gradient") or the curl potential Ω (component "curl"); the spin-1
-deflection is ₁d = −ð(φ + iΩ), so ₁d_LM = −√(L(L+1)) (φ_LM + iΩ_LM) … CONVENTIONS.md up to the sign of Ω,
-which no response or N0 depends on. N = √((2ℓ1+1)(2L+1)(2ℓ2+1)/4π), (ℓ1 L ℓ2; m1 m2 m3) a Wigner 3j symbol.
+deflection is ₁d = −ð(φ + iΩ), so ₁d_LM = −√(L(L+1)) (φ_LM + iΩ_LM) (docs/conventions.md, "Signs"; the
+sign of Ω is a convention no response or N0 depends on). N = √((2ℓ1+1)(2L+1)(2ℓ2+1)/4π), (ℓ1 L ℓ2; m1 m2 m3) a Wigner 3j symbol.
 
 1. Response functions (Okamoto & Hu 2003, PRD 67, 083002 [OH03], §II and Table I). To first order in ψ,
    for (ℓ1, m1) ≠ (ℓ2, −m2)::
@@ -30,7 +30,8 @@ which no response or N0 depends on. N = √((2ℓ1+1)(2L+1)(2ℓ2+1)/4π), (ℓ1
    OH03's Table I. The sign of the C^BB term of f^EB is the one derived here,
    f^EB = i [C^EE_ℓ1 S⁻_{ℓ2Lℓ1} + C^BB_ℓ2 S⁻_{ℓ1Lℓ2}]: it is fixed by the exact symmetry that a field with
    C^EE = C^BB and no EB has ⟨₂a ₂a⟩ = 0 before and after remapping (tested); printed tables with a minus
-   sign there differ from it only through lensed or primordial C^BB in the weights.
+   sign there differ from it only through lensed or primordial C^BB in the weights. The derivation from the
+   spin-2 remapping, and a simulation with C^BB = C^EE that confirms it, are in docs/conventions.md.
 
 2. Estimator. With diagonal (per-field) inverse-variance filtering X̄_ℓm = X_ℓm / C^XX_tot,ℓ (C_tot = lensed
    CMB + beam-deconvolved noise, infinite outside the field's ℓ cuts so X̄ = 0 there)::
@@ -42,7 +43,7 @@ which no response or N0 depends on. N = √((2ℓ1+1)(2L+1)(2ℓ2+1)/4π), (ℓ1
 
        R_L = 1/(η (2L+1)) · Σ_{ℓ1 ℓ2} [f^XY_{ℓ1Lℓ2}]* f^XY,source_{ℓ1Lℓ2} / (C^XX_tot,ℓ1 C^YY_tot,ℓ2) ,
 
-   the normalisation is A_L = 1/R_L and ψ̂_LM = A_L ḡ_LM. These are OH03's optimal weights for TT, EE, EB
+   the normalization is A_L = 1/R_L and ψ̂_LM = A_L ḡ_LM. These are OH03's optimal weights for TT, EE, EB
    and TB (TB's exact optimum, because C^TB = 0); for TE they are not the optimum, whose weight mixes both
    orderings through C^TE.
 
@@ -84,7 +85,7 @@ Representation
 ==============
 :class:`SeparableTerm` holds (c, (s1, sL, s2), first, lensing, second), where first/lensing/second are tuples
 of names of ℓ-weights multiplied together, looked up in a :class:`FactorTable`. Named factors make identical
-series recognisable across estimators, components and covariance terms, so each Wigner-d series is computed
+series recognizable across estimators, components and covariance terms, so each Wigner-d series is computed
 once. Built-in names: ``"ladder(q)"`` = √((ℓ−q)(ℓ+q+1)) (0 where negative), plus any array the caller adds
 (lensrec uses ``"cmb:TT"`` … for the spectra in the weights, ``"inverse:T"`` … for 1/C_tot and
 ``"total:TT"`` … for C_tot). A :class:`PairKernel` is a tuple of terms acting on the ordered field pair
@@ -124,7 +125,7 @@ _ODD_CROSS = re.compile(r"^[^:]+:(TB|EB)$")
 
 
 def spectrum_name(prefix: str, first: str, second: str) -> str:
-    """Factor name of a cross-spectrum, field order normalised (``spectrum_name("cmb", "E", "T") == "cmb:TE"``)."""
+    """Factor name of a cross-spectrum, field order normalized (``spectrum_name("cmb", "E", "T") == "cmb:TE"``)."""
     a, b = sorted((first, second), key=_ORDER.__getitem__)
     return f"{prefix}:{a}{b}"
 
@@ -342,7 +343,7 @@ def response_kernel(fields, component: str = "gradient", spectra: str = "cmb") -
 
 @dataclass(frozen=True)
 class QuadraticEstimator:
-    """An unnormalised estimator ḡ = (1/η) Σ (−1)^M (3j) W X Y with weight kernel W on the pair (X, Y).
+    """An unnormalized estimator ḡ = (1/η) Σ (−1)^M (3j) W X Y with weight kernel W on the pair (X, Y).
 
     Attributes
     ----------

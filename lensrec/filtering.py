@@ -5,8 +5,8 @@ coefficients T̄, Ē, B̄ that every quadratic estimator of :mod:`lensrec.recons
 Any object with a method ``filter(maps) -> FilteredFields`` is a filter (the :class:`FieldFilter`
 protocol), so a better one (conjugate-gradient inversion of the full pixel covariance, anisotropic noise,
 a joint T/E filter) plugs in without touching the estimators. The estimators use the filtered fields as
-they are; their analytic normalisation assumes the isotropic filter below (on a masked sky, or with any
-other filter, the normalisation is only approximate and simulations calibrate it).
+they are; their analytic normalization assumes the isotropic filter below (on a masked sky, or with any
+other filter, the normalization is only approximate and simulations calibrate it).
 
 Isotropic filter (:class:`IsotropicFilter`)
 ===========================================
@@ -28,7 +28,7 @@ for lensing reconstruction.
 Joint filter (``IsotropicFilter(..., joint=True)``): the same analysis, then X̄_ℓm = (C_ℓ⁻¹ X_ℓm) / b_ℓ with
 C_ℓ the 3×3 total (T, E, B) covariance (TE correlation kept; :func:`joint_inverse_spectra`), so Ē draws on
 T and T̄ on E. These are the inputs of the joint "GMV" estimator (Maniyar et al. 2021, PRD 103, 083524),
-which is normalised for exactly this filter; :attr:`FilteredFields.joint` records which filter was used and
+which is normalized for exactly this filter; :attr:`FilteredFields.joint` records which filter was used and
 the estimators refuse fields filtered the other way. This is the seam a conjugate-gradient filter of the
 full pixel covariance plugs into: it too returns C⁻¹-filtered T̄, Ē, B̄ with ``joint=True``.
 
@@ -67,7 +67,7 @@ from . import harmonics
 from ._checks import as_finite_array, as_float, as_int, check_lmax_for_nside, resolve_nthreads
 from .experiment import Experiment, load_experiment
 from .harmonics import ell_of_alm, nalm, npix_to_nside, truncate_alm
-from .masks import apodize_binary_mask, check_mask, sky_fraction_moments
+from .masks import MaskMoments, apodize_binary_mask, check_mask, sky_fraction_moments
 from .spectra import Spectra, fiducial_spectra
 
 __all__ = ["FIELDS", "FilteredFields", "FieldFilter", "IsotropicFilter", "joint_inverse_spectra"]
@@ -107,7 +107,7 @@ def joint_inverse_spectra(total: Mapping) -> dict[str, np.ndarray]:
     References
     ----------
     Maniyar, Ali-Haïmoud, Carron, Lewis & Madhavacheril 2021, PRD 103, 083524 (the joint filter C⁻¹ of the
-    generalised minimum-variance estimator).
+    generalized minimum-variance estimator).
 
     Examples
     --------
@@ -163,10 +163,10 @@ class FilteredFields:
         CMB spectra ``"TT"``, ``"EE"``, ``"BB"``, ``"TE"`` (µK², ℓ = 0 … lmax) that define the Wiener filter
         C^XX · X̄ (lensed spectra for :class:`IsotropicFilter`).
     mask_moments : mapping or None
-        ⟨wⁿ⟩ of the mask (``"w1"`` … ``"w4"``, ``"fsky"``, ``"fsky_spectra"``; see
+        ⟨wⁿ⟩ of the mask (``"w1"`` … ``"w4"``, ``"sky_fraction"``, ``"sky_fraction_spectra"``; see
         :func:`lensrec.masks.sky_fraction_moments`), None for a full, unmasked sky.
     settings : mapping
-        How the fields were filtered (filter name, experiment, nside, Jacobi iterations, …).
+        How the fields were filtered (filter name, experiment, nside, jacobi_iterations, …).
     joint : bool
         False (default): each field filtered by its own total spectrum, X̄ = X / C^XX_tot (the pair
         estimators' filter). True: T, E, B filtered jointly, X̄ = C_tot⁻¹ X with the 3×3 total covariance
@@ -209,7 +209,7 @@ class FilteredFields:
             signal[key] = _readonly(values[: lmax + 1])
         object.__setattr__(self, "signal", MappingProxyType(signal))
         if self.mask_moments is not None:
-            object.__setattr__(self, "mask_moments", MappingProxyType(dict(self.mask_moments)))
+            object.__setattr__(self, "mask_moments", MappingProxyType(MaskMoments.upgraded(self.mask_moments)))
         object.__setattr__(self, "settings", MappingProxyType(dict(self.settings)))
 
     @property
@@ -471,7 +471,7 @@ class IsotropicFilter:
         iterations = self.jacobi_iterations
         if iterations == "auto":
             iterations = harmonics.jacobi_iterations_for(self.lmax, nside)
-        alm = harmonics.map2alm_tqu(array, self.lmax, iterations=iterations, nthreads=self.nthreads)
+        alm = harmonics.map2alm_tqu(array, self.lmax, jacobi_iterations=iterations, nthreads=self.nthreads)
         return self._finish(alm, moments, nside=nside, source="maps", jacobi_iterations=iterations)
 
     def filter_alm(self, alm) -> FilteredFields:

@@ -22,6 +22,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ._checks import as_finite_array, as_float, as_int, check_lmax_for_nside, check_nside, resolve_nthreads
+from ._deprecation import renamed_arguments
 
 __all__ = [
     "SPINS",
@@ -220,7 +221,7 @@ def healpix_geometry(nside: int) -> dict:
 def alm2map(
     alm, nside: int, lmax: int, spin: int = 0, nthreads: int | None = None, allow_high_lmax: bool = False
 ) -> np.ndarray:
-    """Synthesise HEALPix RING maps from harmonic coefficients (healpy's ``alm2map`` / ``alm2map_spin``).
+    """Synthesize HEALPix RING maps from harmonic coefficients (healpy's ``alm2map`` / ``alm2map_spin``).
 
     Parameters
     ----------
@@ -348,12 +349,18 @@ def _adjoint_healpix(array: np.ndarray, nside: int, lmax: int, spin: int, nthrea
     )
 
 
+@renamed_arguments(iterations="jacobi_iterations")
 def map2alm(
-    maps, lmax: int, spin: int = 0, iterations: int = 3, nthreads: int | None = None, allow_high_lmax: bool = False
+    maps,
+    lmax: int,
+    spin: int = 0,
+    jacobi_iterations: int = 3,
+    nthreads: int | None = None,
+    allow_high_lmax: bool = False,
 ) -> np.ndarray:
     """Harmonic analysis of HEALPix maps by Jacobi iteration, as ``healpy.map2alm(iter=n, use_weights=False)``.
 
-    With w = 4π/npix and A the synthesis operator, a⁰ = w Aᵀ m, then ``iterations`` times
+    With w = 4π/npix and A the synthesis operator, a⁰ = w Aᵀ m, then ``jacobi_iterations`` times
     a ← a + w Aᵀ (m − A a). HEALPix quadrature is not exact, so the result is approximate (it converges
     towards the least-squares a_ℓm for band-limited maps).
 
@@ -364,7 +371,7 @@ def map2alm(
     lmax : int
         Band limit of the output (≤ 3·nside − 1 unless ``allow_high_lmax``).
     spin : {0, 1, 2, 3}
-    iterations : int
+    jacobi_iterations : int
         Number of Jacobi refinement steps (default 3, healpy's default); 0 gives the plain quadrature.
     nthreads : int, optional
 
@@ -385,17 +392,17 @@ def map2alm(
     1.0
     """
     spin = check_spin(spin)
-    iterations = as_int(iterations, "iterations", minimum=0, maximum=100)
+    jacobi_iterations = as_int(jacobi_iterations, "jacobi_iterations", minimum=0, maximum=100)
     array, nside, was_1d = _as_maps(maps, spin)
     lmax = check_lmax_for_nside(lmax, nside, allow_high_lmax=allow_high_lmax)
     nthreads = resolve_nthreads(nthreads)
     weight = 4.0 * np.pi / array.shape[-1]
     alm = _adjoint_healpix(array, nside, lmax, spin, nthreads)
     alm *= weight
-    if iterations:
-        # one residual buffer, synthesised into and subtracted in place (no map-sized temporaries per step)
+    if jacobi_iterations:
+        # one residual buffer, synthesized into and subtracted in place (no map-sized temporaries per step)
         residual = np.empty_like(array)
-        for _ in range(iterations):
+        for _ in range(jacobi_iterations):
             _synthesis_healpix(alm, nside, lmax, spin, nthreads, residual)
             np.subtract(array, residual, out=residual)
             correction = _adjoint_healpix(residual, nside, lmax, spin, nthreads)
@@ -467,15 +474,16 @@ def alm2map_tqu(alm, nside: int, lmax: int, nthreads: int | None = None, allow_h
     return out
 
 
+@renamed_arguments(iterations="jacobi_iterations")
 def map2alm_tqu(
-    maps, lmax: int, iterations: int = 3, nthreads: int | None = None, allow_high_lmax: bool = False
+    maps, lmax: int, jacobi_iterations: int = 3, nthreads: int | None = None, allow_high_lmax: bool = False
 ) -> np.ndarray:
     """(T, Q, U) HEALPix maps to (T, E, B) coefficients, as ``healpy.map2alm(maps, iter=3, use_weights=False)``.
 
     Parameters
     ----------
     maps : real array, shape (3, npix)
-    lmax, iterations, nthreads, allow_high_lmax : see :func:`map2alm`
+    lmax, jacobi_iterations, nthreads, allow_high_lmax : see :func:`map2alm`
 
     Returns
     -------
@@ -491,8 +499,8 @@ def map2alm_tqu(
     if array.shape[0] != 3:
         raise ValueError(f"maps must have shape (3, npix) for T, Q, U, got {array.shape}")
     out = np.empty((3, nalm(as_int(lmax, "lmax", minimum=0))), dtype=np.complex128)
-    out[0] = map2alm(array[0], lmax, 0, iterations, nthreads, allow_high_lmax)
-    out[1:] = map2alm(array[1:], lmax, 2, iterations, nthreads, allow_high_lmax)
+    out[0] = map2alm(array[0], lmax, 0, jacobi_iterations, nthreads, allow_high_lmax)
+    out[1:] = map2alm(array[1:], lmax, 2, jacobi_iterations, nthreads, allow_high_lmax)
     return out
 
 

@@ -10,7 +10,7 @@ PRD 68, 083002 and Seljak & Hirata 2004, PRD 69, 043005)::
         B_d += ε_ℓ B_obs                                   (undo the B modes' self-term, see below)
         C̃_k = CMB spectra lensed by C^φφ N_{k−1}/(C^φφ + N_{k−1})            (partially delensed spectra)
         ψ̂_k = EB estimate from (E_d, B_d), filtered with C̃_k + noise, weights from C̃_k,
-              normalised with the analytic response R_k of that estimator to lensing (C̃_k in f^EB)
+              normalized with the analytic response R_k of that estimator to lensing (C̃_k in f^EB)
         φ̂_k = φ^WF + ψ̂_k,           noise N_k = 1/R_k (the N0 of step k)
 
 Why the estimates add: the delensed fields are lensed by what the delensing left, φ − φ^WF (the inverse
@@ -39,7 +39,7 @@ X(n) = X̃(n + d⁻¹(n)) with n + d⁻¹(n) + d(n + d⁻¹(n)) = n, i.e. the fi
 (each pass shrinks the error by ~|∇d|, a few 10⁻², so ``INVERSE_PASSES`` = 2 leaves ~10⁻⁴ of d; Carron & Lewis 2017,
 PRD 96, 063510, appendix). −∇φ^WF is only its first-order approximation; the difference (d·∇)d is of the
 order of the lensing B modes' own size at small scales. d⁻¹ is a general spin-1 field (it has a curl
-part), analysed into potentials (φ_inv, Ω_inv) and applied with the exact remapping engine.
+part), analyzed into potentials (φ_inv, Ω_inv) and applied with the exact remapping engine.
 
 What is delensed: E and B (the EB estimator's fields); T is left as observed. Noise is remapped with the
 signal; for white noise the remap is area-preserving to first order and leaves its spectrum unchanged.
@@ -54,7 +54,7 @@ operator and its adjoint); its gradient is a likelihood derivative, so the B mod
 handled exactly rather than by the first-order self-term above, and it converges over several steps. The
 scheme here needs only the quadratic estimator and one remap per step, and was chosen for that; its limits
 are the self-term's first-order treatment and the response correction it needs. Full sky, isotropic noise
-only: the analytic normalisation of every step assumes the isotropic filter.
+only: the analytic normalization of every step assumes the isotropic filter.
 
 Cost (benchmarks/bench_iterative.py, nside 2048, ℓ_max 3000, 2 threads, in units of one spin-2 HEALPix
 synthesis of that size timed in the same process): one step 16.2 units with three inverse-deflection passes
@@ -157,19 +157,19 @@ def inverse_deflection(phi_alm, lmax_out=None, passes=INVERSE_PASSES, nthreads=N
     Carron & Lewis 2017, PRD 96, 063510 (inverse deflection by fixed-point iteration).
     """
     phi_alm = np.asarray(phi_alm, dtype=np.complex128)
-    lmax_phi = harmonics.lmax_from_nalm(phi_alm.size, "phi_alm")
-    lmax_out = lmax_phi if lmax_out is None else as_int(lmax_out, "lmax_out", minimum=1)
+    lmax_L = harmonics.lmax_from_nalm(phi_alm.size, "phi_alm")
+    lmax_out = lmax_L if lmax_out is None else as_int(lmax_out, "lmax_out", minimum=1)
     passes = as_int(passes, "passes", minimum=0, maximum=20)
     nthreads = resolve_nthreads(nthreads)
     # d⁻¹ carries products of d with its gradient; as for a lensed field (remapping.LENSED_TAIL), their power
     # beyond L_max + min(L_max, 1000) is negligible, so the grid integrates d⁻¹ to lmax_out as if band-limited there
-    grid = gl_grid_for_band_limits(lmax_out, lmax_phi + min(lmax_phi, LENSED_TAIL))
-    coefficients = _gradient_coefficients(phi_alm, None, lmax_phi)
-    forward = _deflection_on_grid(coefficients, lmax_phi, grid, nthreads)
+    grid = gl_grid_for_band_limits(lmax_out, lmax_L + min(lmax_L, LENSED_TAIL))
+    coefficients = _gradient_coefficients(phi_alm, None, lmax_L)
+    forward = _deflection_on_grid(coefficients, lmax_L, grid, nthreads)
     inverse = -forward
     for _ in range(passes):
         loc, rotation = _displaced_positions(inverse, grid, 1, nthreads)
-        values = harmonics._synthesis_at(coefficients, loc, 1, lmax_phi, _EPSILON, nthreads)
+        values = harmonics._synthesis_at(coefficients, loc, 1, lmax_L, _EPSILON, nthreads)
         _rotate_in_place(values, rotation, nthreads)
         inverse = -values.reshape(2, grid.ntheta, grid.nphi)
     potentials = grid.analysis(inverse, lmax_out, spin=1, nthreads=nthreads)
@@ -284,7 +284,7 @@ def iterate_reconstruction(
     observed = harmonics.map2alm_tqu(
         np.asarray(maps, dtype=np.float64),
         lmax,
-        iterations=fields.settings["jacobi_iterations"],  # the count the filter used ("auto" resolved)
+        jacobi_iterations=fields.settings["jacobi_iterations"],  # the count the filter used ("auto" resolved)
         nthreads=nthreads,
     )
     current = reconstruct_filtered(
@@ -349,7 +349,7 @@ def iterate_reconstruction(
             "cancelled": cancelled,
             "n0_per_iteration": history,
             "seconds_per_iteration": seconds,
-            "combination": "phi_k = WienerFilter(phi_{k-1}) + normalised estimate from the delensed fields",
+            "combination": "phi_k = WienerFilter(phi_{k-1}) + normalized estimate from the delensed fields",
             "delensed_fields": ["E", "B"],
             "inverse_passes": INVERSE_PASSES,
         }

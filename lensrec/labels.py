@@ -6,12 +6,12 @@ here. Adding an estimator means one entry in one of the tables below plus its we
 
 - :data:`ESTIMATOR_FIELDS`: the quadratic estimators built on one pair of fields (Okamoto & Hu 2003, PRD 67,
   083002), label -> (first field, second field). :data:`PAIR_ESTIMATORS` lists them in display order.
-- :data:`COMBINED_ESTIMATORS`: a label -> the pair estimators it combines, each normalised, with weights
+- :data:`COMBINED_ESTIMATORS`: a label -> the pair estimators it combines, each normalized, with weights
   from the inverse of their N0 covariance (Okamoto & Hu 2003, §III). "MV" combines all five; "TT+TE+EE"
   combines the three that read no B modes, so that delensing the same maps' B modes with it carries no
   B-mode reuse bias (Namikawa 2017, PRD 95, 103514; Baleato Lizancos, Challinor & Carron 2021, JCAP 03, 016).
 - :data:`JOINT_ESTIMATORS`: a label -> the pair estimators whose weights are derived jointly from the full
-  T, E, B covariance rather than combined after normalisation. "GMV", the joint ("generalised")
+  T, E, B covariance rather than combined after normalization. "GMV", the joint ("generalized")
   minimum-variance estimator (Maniyar et al. 2021, PRD 103, 083524), spans all five pairs.
 
 :data:`ESTIMATORS` is every label, in display order (pairs, then combinations, then joint estimators).
@@ -60,7 +60,7 @@ ESTIMATOR_FIELDS = MappingProxyType(
 )
 PAIR_ESTIMATORS = tuple(ESTIMATOR_FIELDS)
 
-# label -> pair estimators combined with inverse-N0-covariance weights after normalisation.
+# label -> pair estimators combined with inverse-N0-covariance weights after normalization.
 COMBINED_ESTIMATORS = MappingProxyType({"MV": PAIR_ESTIMATORS, "TT+TE+EE": ("TT", "TE", "EE")})
 
 # label -> pair estimators whose weights are derived jointly from the full T, E, B covariance.

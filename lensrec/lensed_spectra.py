@@ -10,10 +10,10 @@ Phys. Rep. 429, 1, §4–5):
     σ²(β)     = C_gl(0) − C_gl(β).
 
 The σ² dependence is kept to all orders through exponentials; the expansion in C_gl,2 is kept to second
-order, which Challinor & Lewis (2005) show is accurate to better than 0.1% for ℓ ≲ 3000 (from memory of
-their accuracy discussion). Each lensed correlation function is a sum of Wigner-d series whose
+order, which Challinor & Lewis (2005) show is accurate to better than 0.1% for ℓ ≲ 3000 (Challinor &
+Lewis 2005, PRD 71, 103010, accuracy discussion). Each lensed correlation function is a sum of Wigner-d series whose
 coefficients depend on the node through σ²(β); the changes ξ̃ − ξ are projected back to ΔC_ℓ with the
-exact Gauss–Legendre projection, so the unlensed part is never re-synthesised and zero lensing returns
+exact Gauss–Legendre projection, so the unlensed part is never re-synthesized and zero lensing returns
 the unlensed spectra exactly.
 
 With the convention ξ_{mn}(β) = Σ_ℓ (2ℓ+1)/4π C_ℓ d^ℓ_{mn}(β) and Gauss–Legendre weights w_k,

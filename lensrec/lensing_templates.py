@@ -18,7 +18,7 @@ Three templates are built by :func:`lensing_b_template` (``"first_order"`` is th
     d = −ðφ is the spin-1 map of G = √(L(L+1)) φ_LM; ðP is the spin-3 map of G = √((ℓ−2)(ℓ+3)) E_ℓm;
     −ð̄P is the spin-1 map of G = √((ℓ+2)(ℓ−1)) E_ℓm. Hence d·∇P = ½ [d · S₁ − d̄ · S₃] with S₁, S₃ those
     two maps, and the B part of its spin-2 analysis is the template. All products are formed on a
-    Gauss–Legendre grid on which the analysis to ℓ_max is exact for the band limit L_max + ℓ_max^E of the
+    Gauss–Legendre grid on which the analysis to ℓ_max is exact for the band limit lmax_L + ℓ_max^E of the
     product, so the only approximation is the truncation of the Taylor series. The signs are checked
     against the remapping in the small-deflection limit (tests/test_lensing_templates.py).
 ``"remap_delensed_e"``
@@ -47,7 +47,7 @@ choice for the true unlensed E (99.7% removed against 81%).
 
 Cost (benchmarks/bench_delensing.py, E and φ to 3000, template to 3000, 2 threads): the remapped template
 costs 1.8–2.4 spin-2 HEALPix syntheses at nside 2048, the first-order one 3.2–3.6 (four exact transforms on
-a grid for the band L_max + ℓ_max^E, against one synthesis, one non-uniform synthesis and one analysis on the
+a grid for the band lmax_L + ℓ_max^E, against one synthesis, one non-uniform synthesis and one analysis on the
 remapping's smaller grid); peak memory 2.4 and 2.7 GB. At ℓ_max = 1000 the first-order one is the faster
 (0.8 of the remapping).
 
@@ -92,7 +92,7 @@ def lensing_b_template(
     e_alm : complex array, shape (nalm(ℓ_max^E),)
         E modes in µK (sky units, beam removed), e.g. from :func:`wiener_filter_e`; the template takes the
         unlensed B modes to be zero.
-    phi_alm : complex array, shape (nalm(L_max),)
+    phi_alm : complex array, shape (nalm(lmax_L),)
         Lensing potential (dimensionless), e.g. from :func:`wiener_filter_phi`.
     lmax : int
         Band limit of the template, 2 ≤ lmax ≤ ℓ_max^E (B modes above the E band limit would miss most of
@@ -122,10 +122,10 @@ def lensing_b_template(
     Notes
     -----
     ``"remap"`` evaluates the lensed field on the Gauss–Legendre grid of :func:`lensrec.remapping.lensing_grid`
-    (exact up to the aliasing of the lensed tail beyond ℓ_max^E + min(L_max, 1000), < 0.6% of lensed BB
+    (exact up to the aliasing of the lensed tail beyond ℓ_max^E + min(lmax_L, 1000), < 0.6% of lensed BB
     near lmax). ``"first_order"`` is exact for its truncated series: its grid integrates products of
-    band limit L_max + ℓ_max^E exactly. Both templates are of the E modes given: B modes sourced by E
-    above ℓ_max^E or φ above L_max are missing from them.
+    band limit lmax_L + ℓ_max^E exactly. Both templates are of the E modes given: B modes sourced by E
+    above ℓ_max^E or φ above lmax_L are missing from them.
 
     .. warning:: If φ was reconstructed partly from the B modes the template is subtracted from (EB, TB,
        MV), the residual measured on those B modes is biased low (delensing bias; module docstring).
@@ -151,16 +151,16 @@ def lensing_b_template(
     True
     """
     e_alm, lmax_e = _coefficients(e_alm, "e_alm")
-    phi_alm, lmax_phi = _coefficients(phi_alm, "phi_alm")
+    phi_alm, lmax_L = _coefficients(phi_alm, "phi_alm")
     method = _check_method(method)
     lmax = as_int(lmax, "lmax", minimum=2)
     if lmax > lmax_e:
         raise ValueError(
             f"lmax={lmax} exceeds the band limit of e_alm ({lmax_e}); the template can reach at most the E band "
-            "limit (lower lmax, or analyse E to a higher lmax)"
+            "limit (lower lmax, or analyze E to a higher lmax)"
         )
-    if lmax_phi < 1:
-        raise ValueError(f"phi_alm must reach L >= 1, got L_max = {lmax_phi}")
+    if lmax_L < 1:
+        raise ValueError(f"phi_alm must reach L >= 1, got lmax_L = {lmax_L}")
     epsilon = as_float(epsilon, "epsilon", minimum=2e-13, maximum=0.1)
     nthreads = resolve_nthreads(nthreads)
     if method == "remap_delensed_e":
@@ -175,7 +175,7 @@ def lensing_b_template(
         fields = np.zeros((2, e_alm.size), dtype=np.complex128)
         fields[0] = e_alm
         return lens_alm(fields, phi_alm, lmax, spin=2, lmax_in=lmax_e, epsilon=epsilon, nthreads=nthreads)[1]
-    return _first_order_template(e_alm, lmax_e, phi_alm, lmax_phi, lmax, nthreads)
+    return _first_order_template(e_alm, lmax_e, phi_alm, lmax_L, lmax, nthreads)
 
 
 def _ell_factor(lmax: int, function) -> np.ndarray:
@@ -189,10 +189,10 @@ def _ell_factor(lmax: int, function) -> np.ndarray:
 _GRADIENT_ONLY_SPINS = (3,)
 
 
-def _first_order_template(e_alm, lmax_e, phi_alm, lmax_phi, lmax, nthreads) -> np.ndarray:
+def _first_order_template(e_alm, lmax_e, phi_alm, lmax_L, lmax, nthreads) -> np.ndarray:
     """B part of d·∇P = ½ [d S₁ − d̄ S₃] on an exact Gauss–Legendre grid (module docstring)."""
     sht = harmonics._ducc_sht()
-    grid = gl_grid_for_band_limits(lmax, lmax_phi + lmax_e)
+    grid = gl_grid_for_band_limits(lmax, lmax_L + lmax_e)
     shape = {"ntheta": grid.ntheta, "nphi": grid.nphi, "geometry": "GL", "nthreads": nthreads}
 
     def gradient_map(alm, band, spin):
@@ -202,9 +202,7 @@ def _first_order_template(e_alm, lmax_e, phi_alm, lmax_phi, lmax, nthreads) -> n
         coefficients[0] = alm
         return sht.synthesis_2d(alm=coefficients, lmax=band, spin=spin, **shape)
 
-    deflection = gradient_map(
-        scale_alm(phi_alm, _ell_factor(lmax_phi, lambda ell: ell * (ell + 1.0)), lmax_phi), lmax_phi, 1
-    )
+    deflection = gradient_map(scale_alm(phi_alm, _ell_factor(lmax_L, lambda ell: ell * (ell + 1.0)), lmax_L), lmax_L, 1)
     product = gradient_map(
         scale_alm(e_alm, _ell_factor(lmax_e, lambda ell: (ell - 2.0) * (ell + 3.0)), lmax_e), lmax_e, 3
     )

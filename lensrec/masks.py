@@ -8,7 +8,7 @@ cosine profile of C¹ or C² smoothness:
 
 and w = 1 for x ≥ 1 (Grain, Tristram & Stompor 2009, PRD 79, 123515, eqs. 31–32). For latitude cuts and
 circular caps the distance to the edge is exact; for an arbitrary binary mask it is the angular distance
-from each observed pixel centre to the nearest unobserved pixel centre (accurate to about half a pixel).
+from each observed pixel center to the nearest unobserved pixel center (accurate to about half a pixel).
 """
 
 from __future__ import annotations
@@ -18,6 +18,7 @@ import os
 import numpy as np
 
 from ._checks import as_finite_array, as_float, check_nside
+from ._deprecation import RenamedKeys, upgrade_keys
 from .harmonics import npix_to_nside
 
 __all__ = [
@@ -46,7 +47,7 @@ def taper_profile(x, taper: str = "C2") -> np.ndarray:
     Parameters
     ----------
     x : array
-        Normalised distance inside the observed region; values < 0 give 0, values > 1 give 1.
+        Normalized distance inside the observed region; values < 0 give 0, values > 1 give 1.
     taper : {'C1', 'C2'}
         Profile (Grain, Tristram & Stompor 2009, PRD 79, 123515, eqs. 31–32).
 
@@ -120,7 +121,7 @@ def cap_mask(nside: int, lon: float, lat: float, radius: float, width: float = 0
     nside : int
         HEALPix resolution.
     lon, lat : float
-        Centre longitude and latitude in degrees (latitude in [−90, 90]).
+        Center longitude and latitude in degrees (latitude in [−90, 90]).
     radius : float
         Cap radius in degrees, 0 < radius ≤ 180.
     width : float
@@ -148,9 +149,9 @@ def cap_mask(nside: int, lon: float, lat: float, radius: float, width: float = 0
     if width > radius:
         raise ValueError(f"width={width} degrees must not exceed the cap radius={radius} degrees")
     taper = _check_taper(taper)
-    centre = healpy.ang2vec(np.radians(90.0 - lat), np.radians(lon))
+    center = healpy.ang2vec(np.radians(90.0 - lat), np.radians(lon))
     vectors = _pixel_vectors(nside)
-    separation = np.arctan2(np.linalg.norm(np.cross(vectors, centre), axis=1), vectors @ centre)
+    separation = np.arctan2(np.linalg.norm(np.cross(vectors, center), axis=1), vectors @ center)
     return _taper_from_distance(np.radians(radius) - separation, width, taper)
 
 
@@ -262,6 +263,18 @@ def load_mask(path, nside: int | None = None) -> np.ndarray:
     return check_mask(mask, nside, name=f"mask in {path!r}")
 
 
+class MaskMoments(RenamedKeys):
+    """The dict of :func:`sky_fraction_moments` (a plain dict that also answers the old key names)."""
+
+    RENAMED = {"fsky": "sky_fraction", "fsky_spectra": "sky_fraction_spectra"}
+    WHERE = "sky_fraction_moments()"
+
+    @classmethod
+    def upgraded(cls, moments) -> MaskMoments:
+        """The moments of a mapping that may use the old key names (e.g. read from an older file)."""
+        return cls(upgrade_keys(dict(moments), cls.RENAMED, "mask moments"))
+
+
 def sky_fraction_moments(mask, orders=(1, 2, 3, 4)) -> dict[str, float]:
     """Moments ⟨wⁿ⟩ of the mask weights over the full sky, and the usual effective sky fractions.
 
@@ -275,25 +288,26 @@ def sky_fraction_moments(mask, orders=(1, 2, 3, 4)) -> dict[str, float]:
     Returns
     -------
     dict
-        ``"w1"``, ``"w2"``, … for each order; ``"fsky"`` = ⟨w⟩; ``"fsky_spectra"`` = ⟨w²⟩²/⟨w⁴⟩, the
-        effective fraction for the variance of pseudo-C_ℓ (Hivon et al. 2002, ApJ 567, 2, §4).
+        ``"w1"``, ``"w2"``, … for each order; ``"sky_fraction"`` = ⟨w⟩; ``"sky_fraction_spectra"`` =
+        ⟨w²⟩²/⟨w⁴⟩, the effective fraction for the variance of pseudo-C_ℓ (Hivon et al. 2002, ApJ 567, 2,
+        §4). The old keys ``"fsky"`` and ``"fsky_spectra"`` still answer, with a DeprecationWarning.
 
     Examples
     --------
     >>> import numpy as np
     >>> m = sky_fraction_moments(np.r_[np.ones(6), np.zeros(6)])
-    >>> m["fsky"], m["w2"], m["fsky_spectra"]
+    >>> m["sky_fraction"], m["w2"], m["sky_fraction_spectra"]
     (0.5, 0.5, 0.5)
     """
     array = check_mask(mask)
-    result = {}
+    result = MaskMoments()
     for order in orders:
         order = int(order)
         if order < 1:
             raise ValueError(f"orders must be positive integers, got {order}")
         result[f"w{order}"] = float(np.mean(array**order))
-    result["fsky"] = float(np.mean(array))
+    result["sky_fraction"] = float(np.mean(array))
     w2 = float(np.mean(array**2))
     w4 = float(np.mean(array**4))
-    result["fsky_spectra"] = w2 * w2 / w4
+    result["sky_fraction_spectra"] = w2 * w2 / w4
     return result

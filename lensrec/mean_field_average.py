@@ -18,7 +18,7 @@ __all__ = ["MeanField", "mean_field"]
 
 @dataclass(frozen=True, eq=False)
 class MeanField:
-    """The average of normalised reconstructions of simulations: the estimate's mean-field ⟨φ̂⟩.
+    """The average of normalized reconstructions of simulations: the estimate's mean-field ⟨φ̂⟩.
 
     Attributes
     ----------
@@ -55,7 +55,7 @@ def _check_mean_field(mean_field, estimator: str, lmax_L: int):
 
 
 def mean_field(reconstructions) -> MeanField:
-    """The mean-field ⟨φ̂⟩ (and ⟨Ω̂⟩): the average of normalised reconstructions of simulations.
+    """The mean-field ⟨φ̂⟩ (and ⟨Ω̂⟩): the average of normalized reconstructions of simulations.
 
     A mask, inhomogeneous noise or any other statistical anisotropy makes the quadratic estimate non-zero
     on average even without lensing; subtract it with ``reconstruct(..., mean_field=...)``. Simulations

@@ -23,7 +23,7 @@ Joint or separate
 the fields of the joint "GMV" estimator (``FilteredFields.joint`` True). ``joint=False`` (default) drops C^TE
 from S; the noise does not couple temperature and polarization either, so T and (E, B) are then filtered
 separately: these are the per-field filtered inputs that the pair estimators TT … EB and their MV
-combination are normalised for. Both run in one conjugate-gradient solve (the cost is the same: one spin-0
+combination are normalized for. Both run in one conjugate-gradient solve (the cost is the same: one spin-0
 and one spin-2 synthesis and adjoint per iteration).
 
 Solver

@@ -21,6 +21,7 @@ import os
 
 import numpy as np
 
+from ._deprecation import renamed_arguments
 from .labels import ESTIMATORS
 
 __all__ = ["read_phi_noise"]
@@ -33,11 +34,11 @@ def _values(items, where: str) -> np.ndarray:
         raise ValueError(f"{where} is not a list of numbers ({exc})") from None
 
 
-def _check(values: np.ndarray, lmax_phi: int, where: str) -> np.ndarray:
-    if values.ndim != 1 or values.size != lmax_phi + 1:
+def _check(values: np.ndarray, lmax_L: int, where: str) -> np.ndarray:
+    if values.ndim != 1 or values.size != lmax_L + 1:
         raise ValueError(
-            f"{where} has {values.size} values but phi reaches L_max = {lmax_phi}: one noise value per L = 0 ... "
-            f"{lmax_phi} ({lmax_phi + 1} values) is needed; the noise belongs to another reconstruction"
+            f"{where} has {values.size} values but phi reaches lmax_L = {lmax_L}: one noise value per L = 0 ... "
+            f"{lmax_L} ({lmax_L + 1} values) is needed; the noise belongs to another reconstruction"
         )
     if np.any(np.isnan(values[2:])):
         bad = int(np.argmax(np.isnan(values[2:]))) + 2
@@ -48,15 +49,17 @@ def _check(values: np.ndarray, lmax_phi: int, where: str) -> np.ndarray:
     return values
 
 
-def read_phi_noise(path, lmax_phi: int, estimator: str | None = None) -> tuple[np.ndarray, str]:
+@renamed_arguments(lmax_phi="lmax_L")
+def read_phi_noise(path, lmax_L: int, estimator: str | None = None) -> tuple[np.ndarray, str]:
     """The noise N_L of a φ estimate from a JSON or text file (see the module docstring for which noise).
 
     Parameters
     ----------
     path : str or path
         ``.json`` (forecast/reconstruct layout) or a text table.
-    lmax_phi : int
-        L_max of the φ coefficients; the file must give exactly L = 0 … lmax_phi.
+    lmax_L : int
+        Band limit of the φ coefficients; the file must give exactly L = 0 … lmax_L (``lmax_phi`` is the
+        deprecated old name).
     estimator : str, optional
         The label whose noise to read from a JSON file holding several.
 
@@ -111,7 +114,7 @@ def read_phi_noise(path, lmax_phi: int, estimator: str | None = None) -> tuple[n
                 if extra.shape == values.shape:
                     values = values + np.nan_to_num(extra, nan=0.0)
                     kind = "N0 + N1"
-        return _check(values, lmax_phi, f"the noise in {path!r}"), f"{kind} of {label} (gradient) from {name}"
+        return _check(values, lmax_L, f"the noise in {path!r}"), f"{kind} of {label} (gradient) from {name}"
     try:
         table = np.loadtxt(path, ndmin=2)
     except (OSError, ValueError) as exc:
@@ -126,4 +129,4 @@ def read_phi_noise(path, lmax_phi: int, estimator: str | None = None) -> tuple[n
         values = table[:, 0]
     else:
         raise ValueError(f"{path!r} has {table.shape[1]} columns; give one column N_L or two (L, N_L)")
-    return _check(values, lmax_phi, f"the noise in {path!r}"), f"noise as given in {name}"
+    return _check(values, lmax_L, f"the noise in {path!r}"), f"noise as given in {name}"

@@ -32,14 +32,14 @@ replaced by either one (1/f knees and beam kept), for N0 forecasts of each filte
 1/f noise
 =========
 When the experiment sets ``ell_knee_*``, simulated noise is a harmonic Gaussian field with the shape
-1 + (ℓ/ℓ_knee)^α normalised so that its white part has unit pixel variance, then multiplied by σ_p:
+1 + (ℓ/ℓ_knee)^α normalized so that its white part has unit pixel variance, then multiplied by σ_p:
 the variance map modulates the 1/f field exactly as it modulates white noise (:meth:`PixelNoise.simulate`).
 
 Pixel window
 ============
 :func:`pixel_window` computes the HEALPix pixel window w_ℓ offline (no data file, no download): the
 average over pixels of the harmonic transform of each pixel's top-hat, w²_ℓ = ⟨ ∬ P_ℓ(n̂·n̂′) ⟩_pixels
-(Górski et al. 2005, ApJ 622, 759, §4), evaluated on sub-pixel centres (see its docstring).
+(Górski et al. 2005, ApJ 622, 759, §4), evaluated on sub-pixel centers (see its docstring).
 """
 
 from __future__ import annotations
@@ -134,7 +134,7 @@ class PixelNoise:
 
     @classmethod
     def from_hits(cls, experiment, hits, mask=None) -> PixelNoise:
-        """Noise variance ∝ 1/hits, normalised so that the inverse-variance depth is the experiment's Δ."""
+        """Noise variance ∝ 1/hits, normalized so that the inverse-variance depth is the experiment's Δ."""
         experiment = load_experiment(experiment)
         hits = as_finite_array(hits, "hits", ndim=1)
         nside = npix_to_nside(hits.size, "hits")
@@ -215,7 +215,7 @@ class PixelNoise:
 
     # ------------------------------------------------------------------------------------- simulation
     def simulate(self, experiment, lmax: int, rng: np.random.Generator, nthreads: int | None = None) -> np.ndarray:
-        """One T, Q, U noise realisation (µK), shape (3, npix), following the variance map.
+        """One T, Q, U noise realization (µK), shape (3, npix), following the variance map.
 
         White noise σ_p g_p, or, when the experiment sets a 1/f knee, a harmonic Gaussian field with power
         Ω_pix (1 + (ℓ/ℓ_knee)^α) for ℓ ≥ 2 to ``lmax`` (unit white pixel variance) times σ_p. Zero outside
@@ -255,7 +255,7 @@ def pixel_window(nside: int, lmax: int | None = None, subdivision: int = 8, pixe
 
     w²_ℓ is the pixel average of ∬ t_p(n̂) t_p(n̂′) P_ℓ(n̂·n̂′) dn̂ dn̂′ for the unit-integral top-hat t_p of
     pixel p (Górski et al. 2005, ApJ 622, 759, §4: the window is the pixel-averaged isotropic part of the
-    pixel's transform). The double integral is a sum over the ``subdivision``² sub-pixel centres at
+    pixel's transform). The double integral is a sum over the ``subdivision``² sub-pixel centers at
     nside·subdivision (their NEST children), times the window of one sub-pixel taken as a square top-hat,
     exp(−ℓ(ℓ+1) a²/24) with a² its area (error ≈ (ℓa)⁴/1000, < 1e-4 at ℓ = 3·nside for subdivision 8).
     The pixel average uses ``pixels`` pixels evenly spaced in RING index (all pixels when there are

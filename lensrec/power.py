@@ -209,7 +209,7 @@ def bin_spectrum(cl, edges, weights=None, scale=None, skip_nan: bool = False) ->
 
     This is lensrec's one binning rule, for data and theory alike: bin exactly the quantity that is plotted
     (``scale``), weighted within the bin, so a binned theory curve is comparable with binned data. Binning C_ℓ
-    and multiplying by the factor of the bin centre instead overshoots wherever the factor varies across the
+    and multiplying by the factor of the bin center instead overshoots wherever the factor varies across the
     bin (for [L(L+1)]² C_L^φφ/2π over L = 2–33 by more than an order of magnitude).
 
     Parameters
@@ -224,11 +224,11 @@ def bin_spectrum(cl, edges, weights=None, scale=None, skip_nan: bool = False) ->
         The factor f_ℓ of the binned quantity (:func:`spectrum_scale`): C_ℓ (default), D_ℓ = ℓ(ℓ+1)C_ℓ/2π,
         [L(L+1)]² C_L/2π or C_L^κκ = [L(L+1)]² C_L^φφ/4.
     skip_nan : bool
-        Leave NaN entries out of their bin (its weights renormalised) instead of making the bin NaN.
+        Leave NaN entries out of their bin (its weights renormalized) instead of making the bin NaN.
 
     Returns
     -------
-    centres : ndarray, shape (n_bins,)
+    centers : ndarray, shape (n_bins,)
         Weighted mean ℓ of each bin (of its finite entries, for one spectrum with ``skip_nan``).
     values : ndarray, shape (..., n_bins)
         Σ w_ℓ f_ℓ C_ℓ / Σ w_ℓ in each bin; NaN where a bin has zero total weight, or holds a NaN entry
@@ -236,8 +236,8 @@ def bin_spectrum(cl, edges, weights=None, scale=None, skip_nan: bool = False) ->
 
     Examples
     --------
-    >>> centres, values = bin_spectrum([0.0, 1.0, 2.0, 3.0, 4.0], [1, 3, 5])
-    >>> centres.tolist(), values.tolist()
+    >>> centers, values = bin_spectrum([0.0, 1.0, 2.0, 3.0, 4.0], [1, 3, 5])
+    >>> centers.tolist(), values.tolist()
     ([1.5, 3.5], [1.5, 3.5])
     >>> bin_spectrum([0.0, 1.0, float("nan"), 3.0], [1, 4], skip_nan=True)[1].tolist()
     [2.0]
@@ -261,20 +261,20 @@ def bin_spectrum(cl, edges, weights=None, scale=None, skip_nan: bool = False) ->
     with np.errstate(invalid="ignore", divide="ignore"):
         out = (np.where(finite, values * factor, 0.0) @ weighted.T) / totals
         if skip_nan and values.ndim == 1:
-            centres = (finite * ell) @ weighted.T / totals
+            centers = (finite * ell) @ weighted.T / totals
         else:
             all_weights = weighted.sum(axis=1)
-            centres = (weighted @ ell) / all_weights
+            centers = (weighted @ ell) / all_weights
     out = np.where(totals > 0, out, np.nan)
     if not skip_nan:
         out = np.where((~finite).astype(np.float64) @ (weighted > 0).T > 0, np.nan, out)
     middle = 0.5 * (edges[:-1] + edges[1:] - 1)
-    centres = np.where(np.isfinite(centres), centres, middle)
-    return np.asarray(centres, dtype=np.float64), out
+    centers = np.where(np.isfinite(centers), centers, middle)
+    return np.asarray(centers, dtype=np.float64), out
 
 
 def binned_cross_spectrum(alm1, alm2, edges, lmax: int | None = None, weights=None):
-    """Binned :func:`cross_spectrum` (``alm2=None`` for the auto-spectrum); returns (centres, values).
+    """Binned :func:`cross_spectrum` (``alm2=None`` for the auto-spectrum); returns (centers, values).
 
     Examples
     --------

@@ -17,7 +17,7 @@ for which the identity above holds with the 3j symbols of ``wigners.wigner_3j`` 
 
 Implementation: ducc0's spin-weighted Legendre transforms (``ducc0.sht.alm2leg`` / ``leg2alm``) evaluate
 Σ_l a_l λ^s_{lm}(θ) at arbitrary colatitudes with stable, SIMD-vectorised recursions. With
-λ^s_{lm} expressed through d^l_{m,±s} (normalisation √((2l+1)/4π); the signs were measured against
+λ^s_{lm} expressed through d^l_{m,±s} (normalization √((2l+1)/4π); the signs were measured against
 ``wigners`` and are recorded in ``_ducc_forward`` / ``_ducc_adjoint``), one spin-s call evaluates four real
 d-series (two with d_{m,s}, two with d_{m,−s}) and one spin-0 call two. Calls run concurrently in a small
 thread pool (ducc0 releases the GIL).

@@ -2,15 +2,15 @@ r"""Curved-sky quadratic-estimator reconstruction of the lensing potential φ (a
 
 The estimators are those of :mod:`lensrec.estimator_weights` (TT, TE, EE, TB, EB; weights [f^XY]* of
 Okamoto & Hu 2003, PRD 67, 083002), evaluated in position space as products of filtered maps and
-normalised with the exact full-sky responses of :mod:`lensrec.estimator_noise`.
+normalized with the exact full-sky responses of :mod:`lensrec.estimator_noise`.
 
-The unnormalised estimates ḡ are evaluated in position space by :mod:`lensrec.estimator_engine` (its
+The unnormalized estimates ḡ are evaluated in position space by :mod:`lensrec.estimator_engine` (its
 docstring gives the form, the transform counts and the leg order of mixed pairs); the mean-field is in
 :mod:`lensrec.mean_field_average`. Both are re-exported here.
 
-Normalisation: φ̂_LM = A_L ḡ_LM with A_L = 1/R_L from :func:`lensrec.reconstruction_noise` (full sky,
+Normalization: φ̂_LM = A_L ḡ_LM with A_L = 1/R_L from :func:`lensrec.reconstruction_noise` (full sky,
 lensed weights by default); the MV estimate is Σ_i w_i(L) φ̂^i_LM with the MV weights of the N0
-covariance. On a masked sky the same full-sky normalisation is used, so φ̂ ≈ w²φ locally; correct
+covariance. On a masked sky the same full-sky normalization is used, so φ̂ ≈ w²φ locally; correct
 spectra with the mask moments (:mod:`lensrec.power`) and subtract the mean-field
 (:func:`mean_field`). L < 2 is set to zero.
 """
@@ -25,6 +25,7 @@ from types import MappingProxyType
 import numpy as np
 
 from ._checks import as_int
+from ._deprecation import deprecated_property, renamed_arguments
 from .estimator_engine import (  # noqa: F401  (re-exported: the engine lived here)
     _POSITION_LABELS,
     BASE_ESTIMATORS,
@@ -60,7 +61,7 @@ __all__ = [
 # ------------------------------------------------------------------------------------------- result
 @dataclass(frozen=True, eq=False)
 class Reconstruction:
-    """A normalised quadratic-estimator reconstruction (all arrays read-only).
+    """A normalized quadratic-estimator reconstruction (all arrays read-only).
 
     Attributes
     ----------
@@ -74,14 +75,14 @@ class Reconstruction:
     n0 : mapping component → ndarray
         Analytic Gaussian N0 of ``phi_alm`` ("gradient") and ``curl_alm`` ("curl"), C_L units, NaN below L = 2.
     response : mapping component → ndarray
-        R_L of the unnormalised estimator (A_L = 1/R_L); for "MV", 1/N0_MV (the convention of
+        R_L of the unnormalized estimator (A_L = 1/R_L); for "MV", 1/N0_MV (the convention of
         :class:`lensrec.ReconstructionNoise`).
-    unnormalised : mapping label → mapping component → ndarray
+    unnormalized : mapping label → mapping component → ndarray
         The ḡ_LM that were combined (the five estimators for "MV").
     mv_weights : mapping component → ndarray or None
-        For "MV": per-L weights of the five normalised estimators (shape (5, lmax_L + 1)).
+        For "MV": per-L weights of the five normalized estimators (shape (5, lmax_L + 1)).
     noise : ReconstructionNoise
-        The full noise calculation used for the normalisation.
+        The full noise calculation used for the normalization.
     mask_moments : mapping or None
         ⟨wⁿ⟩ of the mask of the first input (None on the full sky).
     mean_field_subtracted : bool
@@ -95,12 +96,15 @@ class Reconstruction:
     lmax_L: int
     n0: Mapping
     response: Mapping
-    unnormalised: Mapping
+    unnormalized: Mapping
     mv_weights: Mapping | None
     noise: ReconstructionNoise
     mask_moments: Mapping | None
     mean_field_subtracted: bool
     settings: Mapping
+
+    # the British spelling answers until 0.2 with a DeprecationWarning
+    unnormalised = deprecated_property("unnormalized", "unnormalised")
 
     @property
     def L(self) -> np.ndarray:
@@ -114,10 +118,10 @@ class Reconstruction:
         return self.phi_alm if component == "gradient" else self.curl_alm
 
 
-# ------------------------------------------------------------------------------------ normalisation
+# ------------------------------------------------------------------------------------ normalization
 def _check_filter_kind(estimator: str, *inputs) -> None:
     """The joint estimator needs jointly filtered fields, the others per-field filtered ones (their
-    normalisations assume it); a mismatch would silently give a wrongly normalised estimate."""
+    normalizations assume it); a mismatch would silently give a wrongly normalized estimate."""
     for item in inputs:
         if item is None or not isinstance(item, FilteredFields):
             continue
@@ -129,10 +133,11 @@ def _check_filter_kind(estimator: str, *inputs) -> None:
         if estimator != JOINT_ESTIMATOR and item.joint:
             raise ValueError(
                 f"estimator {estimator} needs fields filtered field by field (joint=False); these were filtered "
-                f"jointly, which only the {JOINT_ESTIMATOR} estimator is normalised for"
+                f"jointly, which only the {JOINT_ESTIMATOR} estimator is normalized for"
             )
 
 
+@renamed_arguments(symmetrise="symmetrize")
 def reconstruct_filtered(
     first: FilteredFields,
     experiment,
@@ -144,16 +149,16 @@ def reconstruct_filtered(
     lensed_weights: bool = True,
     noise: ReconstructionNoise | None = None,
     nthreads: int | None = None,
-    symmetrise: bool = False,
+    symmetrize: bool = False,
 ) -> Reconstruction:
-    """Normalised reconstruction from filtered fields (one input, or a mixed pair [a, b]).
+    """Normalized reconstruction from filtered fields (one input, or a mixed pair [a, b]).
 
     Parameters
     ----------
     first : FilteredFields
         Input a (first field of the label).
     experiment : Experiment or str
-        The experiment whose full-sky response normalises the estimate (for an :class:`IsotropicFilter`,
+        The experiment whose full-sky response normalizes the estimate (for an :class:`IsotropicFilter`,
         its ``experiment`` attribute).
     second : FilteredFields, optional
         Input b (second field of the label); default ``first``.
@@ -165,15 +170,15 @@ def reconstruct_filtered(
     lmax_L : int, optional
         Highest L (default and maximum: the fields' lmax).
     mean_field : MeanField, optional
-        Subtracted from the normalised estimate.
+        Subtracted from the normalized estimate.
     lensed_weights : bool
         Lensed (default) or unlensed CMB spectra in the weights and response.
     noise : ReconstructionNoise, optional
         A precomputed :func:`lensrec.reconstruction_noise` result for the same experiment, spectra, lmax_L
         and weights (it must contain the estimator, and all five for "MV"); saves recomputing it.
     nthreads : int, optional
-    symmetrise : bool
-        For a mixed pair: the symmetrised φ̂{a, b} = ½ (φ̂[a, b] + φ̂[b, a]) in one pass (see
+    symmetrize : bool
+        For a mixed pair: the symmetrized φ̂{a, b} = ½ (φ̂[a, b] + φ̂[b, a]) in one pass (see
         :func:`lensrec.reconstruction.quadratic_estimates`), as realization-dependent N0 and N1 need it.
 
     Returns
@@ -182,7 +187,7 @@ def reconstruct_filtered(
 
     References
     ----------
-    Okamoto & Hu 2003, PRD 67, 083002, §III (normalisation and minimum-variance combination).
+    Okamoto & Hu 2003, PRD 67, 083002, §III (normalization and minimum-variance combination).
     """
     if not isinstance(first, FilteredFields):
         raise TypeError(f"first must be FilteredFields, got {type(first).__name__}")
@@ -196,7 +201,7 @@ def reconstruct_filtered(
     if largest > first.lmax:
         raise ValueError(
             f"the experiment uses l up to {largest} but the filtered fields stop at lmax={first.lmax}; "
-            "normalise with the experiment the filter used (IsotropicFilter.experiment)"
+            "normalize with the experiment the filter used (IsotropicFilter.experiment)"
         )
     if lmax_L is None:
         lmax_L = largest
@@ -228,7 +233,7 @@ def reconstruct_filtered(
             f"{list(noise.n0)} to lmax_L={int(noise.L[-1])}"
         )
     estimates = quadratic_estimates(
-        first, second, labels, lmax_L, spectra, lensed_weights, nthreads, symmetrise=symmetrise
+        first, second, labels, lmax_L, spectra, lensed_weights, nthreads, symmetrize=symmetrize
     )
 
     ell = ell_of_alm(lmax_L)
@@ -276,7 +281,7 @@ def reconstruct_filtered(
         lmax_L=lmax_L,
         n0=MappingProxyType({c: noise.n0[estimator][c] for c in COMPONENTS}),
         response=MappingProxyType({c: noise.response[estimator][c] for c in COMPONENTS}),
-        unnormalised=MappingProxyType(
+        unnormalized=MappingProxyType(
             {
                 label: MappingProxyType({"gradient": estimates.gradient[label], "curl": estimates.curl[label]})
                 for label in labels
@@ -316,7 +321,7 @@ def reconstruct(
     """Reconstruct the lensing potential φ (and the curl Ω) from observed T, Q, U maps.
 
     Filters the maps (:class:`lensrec.filtering.IsotropicFilter` unless ``field_filter`` is given), forms
-    the quadratic estimate in position space and normalises it with the exact full-sky response.
+    the quadratic estimate in position space and normalizes it with the exact full-sky response.
 
     Parameters
     ----------
@@ -345,7 +350,7 @@ def reconstruct(
         Lensed (default, common practice) or unlensed spectra in the weights and response.
     field_filter : FieldFilter, optional
         Another filter (anything with ``filter(maps) -> FilteredFields``); ``mask`` and ``lmax`` then belong
-        to it. The analytic normalisation still assumes ``experiment``'s isotropic filter.
+        to it. The analytic normalization still assumes ``experiment``'s isotropic filter.
     lensing_iterations : int
         0 (default): the quadratic estimator. N > 0: N steps of the iterative estimator (delens E and B with
         the current estimate, estimate again; :func:`lensrec.iterative_reconstruction.iterate_reconstruction`),
@@ -374,7 +379,7 @@ def reconstruct(
     Returns
     -------
     Reconstruction
-        ``phi_alm``, ``curl_alm`` (normalised), ``n0``, ``response``, ``unnormalised``, ``settings``.
+        ``phi_alm``, ``curl_alm`` (normalized), ``n0``, ``response``, ``unnormalized``, ``settings``.
 
     Raises
     ------
@@ -502,7 +507,7 @@ class InputComparison:
 
     @property
     def auto_minus_n0(self) -> np.ndarray:
-        """C_L^{φ̂φ̂} − N0_L: the input power plus N1 and the scatter of one realisation."""
+        """C_L^{φ̂φ̂} − N0_L: the input power plus N1 and the scatter of one realization."""
         return self.auto - self.n0
 
     @property

@@ -33,6 +33,7 @@ from ._checks import (
     resolve_nthreads,
     run_parallel,
 )
+from ._deprecation import renamed_arguments
 from .harmonics import GLGrid, ell_of_alm, gl_grid_for_band_limits, nalm, truncate_alm
 
 __all__ = ["DeflectionMaps", "lens_alm", "lens_tqu_alm", "deflection_maps", "kappa_map", "lensing_grid"]
@@ -42,11 +43,11 @@ DEFAULT_EPSILON = 1e-7
 
 
 # ------------------------------------------------------------------------------------------ remapping
-def _gradient_coefficients(phi_alm, curl_alm, lmax_phi: int) -> np.ndarray:
+def _gradient_coefficients(phi_alm, curl_alm, lmax_L: int) -> np.ndarray:
     """Spin-1 (gradient, curl) coefficients √(L(L+1)) (φ_LM, Ω_LM) of the deflection field."""
-    ell = ell_of_alm(lmax_phi).astype(np.float64)
+    ell = ell_of_alm(lmax_L).astype(np.float64)
     factor = np.sqrt(ell * (ell + 1.0))
-    coefficients = np.zeros((2, nalm(lmax_phi)), dtype=np.complex128)
+    coefficients = np.zeros((2, nalm(lmax_L)), dtype=np.complex128)
     coefficients[0] = phi_alm * factor
     if curl_alm is not None:
         coefficients[1] = curl_alm * factor
@@ -81,7 +82,7 @@ def _displace_rings(
     In the frame rotated about the z axis to the point's longitude, n = (sin θ, 0, cos θ),
     e_θ = (cos θ, 0, −sin θ), e_φ = (0, 1, 0) and d = d_θ e_θ + d_φ e_φ with |d| = α. The geodesic gives
     n′ = cos α n + (sin α / α) d, and its tangent at n′ (scaled by α) is α t′ = −α sin α n + cos α d.
-    With the unnormalised basis at n′, e_θ′ ∝ (z′x′, z′y′, −ρ′²), e_φ′ ∝ (−y′, x′, 0) (ρ′² = x′² + y′²,
+    With the unnormalized basis at n′, e_θ′ ∝ (z′x′, z′y′, −ρ′²), e_φ′ ∝ (−y′, x′, 0) (ρ′² = x′² + y′²,
     one common positive factor 1/ρ′), the angles β of d at n and β′ of t′ at n′ (from e_θ towards e_φ)
     give e^{iχ} = e^{i(β − β′)} ∝ (d_θ + i d_φ)(t′_θ − i t′_φ). ``rotation`` receives (cos sχ, sin sχ).
     """
@@ -128,12 +129,12 @@ def _displace_rings(
     rotation[1] = sin_s
 
 
-def _deflection_on_grid(coefficients: np.ndarray, lmax_phi: int, grid: GLGrid, nthreads: int) -> np.ndarray:
+def _deflection_on_grid(coefficients: np.ndarray, lmax_L: int, grid: GLGrid, nthreads: int) -> np.ndarray:
     """(d_θ, d_φ) in radians on the grid, shape (2, ntheta, nphi), from the spin-1 coefficients."""
     # the full (gradient, curl) transform even when the curl is zero: ducc0's gradient-only mode is
     # slower here (measured 3.4 s against 2.1-2.6 s at lmax 4000 on a 4001 x 8064 grid)
     return harmonics._ducc_sht().synthesis_2d(
-        alm=coefficients, lmax=lmax_phi, spin=1, geometry="GL", ntheta=grid.ntheta, nphi=grid.nphi, nthreads=nthreads
+        alm=coefficients, lmax=lmax_L, spin=1, geometry="GL", ntheta=grid.ntheta, nphi=grid.nphi, nthreads=nthreads
     )
 
 
@@ -163,26 +164,26 @@ def _displaced_positions(deflection: np.ndarray, grid: GLGrid, spin: int, nthrea
     return loc.reshape(-1, 2), None if rotation is None else rotation.reshape(2, -1)
 
 
-def _check_lensing_inputs(phi_alm, curl_alm, lmax_phi):
+def _check_lensing_inputs(phi_alm, curl_alm, lmax_L):
     phi_alm = as_finite_array(phi_alm, "phi_alm", ndim=1, dtype=np.complex128)
-    if lmax_phi is None:
-        lmax_phi = harmonics.lmax_from_nalm(phi_alm.size, "phi_alm")
-    lmax_phi = as_int(lmax_phi, "lmax_phi", minimum=1)
-    if phi_alm.size != nalm(lmax_phi):
-        raise ValueError(f"phi_alm has {phi_alm.size} coefficients but lmax_phi={lmax_phi} needs {nalm(lmax_phi)}")
+    if lmax_L is None:
+        lmax_L = harmonics.lmax_from_nalm(phi_alm.size, "phi_alm")
+    lmax_L = as_int(lmax_L, "lmax_L", minimum=1)
+    if phi_alm.size != nalm(lmax_L):
+        raise ValueError(f"phi_alm has {phi_alm.size} coefficients but lmax_L={lmax_L} needs {nalm(lmax_L)}")
     if curl_alm is not None:
         curl_alm = as_finite_array(curl_alm, "curl_alm", shape=phi_alm.shape, dtype=np.complex128)
-    return phi_alm, curl_alm, lmax_phi
+    return phi_alm, curl_alm, lmax_L
 
 
 def _lens_fields(
-    fields, phi_alm, curl_alm, lmax_phi: int, lmax_in: int, lmax_out: int, epsilon: float, nthreads: int
+    fields, phi_alm, curl_alm, lmax_L: int, lmax_in: int, lmax_out: int, epsilon: float, nthreads: int
 ) -> list[np.ndarray]:
     """Lens several fields ((alm (ncomp, nalm(lmax_in)), spin), …) with one deflection; return their
     lensed coefficients to ``lmax_out``."""
-    grid = lensing_grid(lmax_in, lmax_out, lmax_phi)
-    coefficients = _gradient_coefficients(phi_alm, curl_alm, lmax_phi)
-    deflection = _deflection_on_grid(coefficients, lmax_phi, grid, nthreads)
+    grid = lensing_grid(lmax_in, lmax_out, lmax_L)
+    coefficients = _gradient_coefficients(phi_alm, curl_alm, lmax_L)
+    deflection = _deflection_on_grid(coefficients, lmax_L, grid, nthreads)
     del coefficients
     spins = sorted({spin for _, spin in fields if spin > 0})
     if len(spins) > 1:
@@ -221,16 +222,17 @@ def _rotate_in_place(values: np.ndarray, rotation: np.ndarray, nthreads: int) ->
 
 
 # Lensing moves power from the unlensed band ℓ ≤ lmax_in to ℓ′ ≈ ℓ ± L over the multipoles L where the
-# deflection power matters, so the lensed field has a tail above lmax_in about this wide (or lmax_phi,
+# deflection power matters, so the lensed field has a tail above lmax_in about this wide (or lmax_L,
 # if smaller). Aliasing of that tail is what limits the quadrature: sizing the grid for a tail of 500
 # still left +2% in lensed BB near lmax, 1000 leaves < 0.6%, 1500 and 2500 agree to 0.05%.
 LENSED_TAIL = 1000
 
 
-def lensing_grid(lmax_in: int, lmax_out: int, lmax_phi: int | None = None) -> GLGrid:
+@renamed_arguments(lmax_phi="lmax_L")
+def lensing_grid(lmax_in: int, lmax_out: int, lmax_L: int | None = None) -> GLGrid:
     """The Gauss–Legendre grid on which lensed coefficients to ``lmax_out`` are computed.
 
-    The lensed field is treated as band-limited at lmax_in + min(lmax_phi, 1000) (its tail above the
+    The lensed field is treated as band-limited at lmax_in + min(lmax_L, 1000) (its tail above the
     unlensed band limit); the grid of :func:`lensrec.harmonics.gl_grid_for_band_limits` for that band and
     ``lmax_out``, i.e. ⌊(lmax_in + tail + lmax_out)/2⌋ + 1 rings and ≥ lmax_in + tail + lmax_out + 1
     points per ring, integrates the product of such a field with any harmonic of ℓ ≤ lmax_out exactly.
@@ -241,7 +243,7 @@ def lensing_grid(lmax_in: int, lmax_out: int, lmax_phi: int | None = None) -> GL
     (4001, 8064)
     """
     lmax_in = as_int(lmax_in, "lmax_in", minimum=1)
-    tail = LENSED_TAIL if lmax_phi is None else min(LENSED_TAIL, as_int(lmax_phi, "lmax_phi", minimum=1))
+    tail = LENSED_TAIL if lmax_L is None else min(LENSED_TAIL, as_int(lmax_L, "lmax_L", minimum=1))
     return gl_grid_for_band_limits(lmax_out, lmax_in + tail)
 
 
@@ -275,7 +277,7 @@ def lens_alm(
     alm : complex array
         Unlensed coefficients to ``lmax_in``: spin 0 shape (nalm,); spin > 0 shape (2, nalm) (gradient and
         curl, i.e. E and B for spin 2; a zero curl part is skipped).
-    phi_alm : complex array, shape (nalm(lmax_phi),)
+    phi_alm : complex array, shape (nalm(lmax_L),)
         Lensing potential φ_LM (dimensionless); its band limit is read from its size.
     lmax_out : int
         Band limit of the lensed output (≤ ``lmax_in``).
@@ -297,8 +299,8 @@ def lens_alm(
     Notes
     -----
     Exact remapping along great circles with parallel transport of the spin basis (see the module
-    docstring). The lensed field is analysed on the Gauss–Legendre grid of :func:`lensing_grid`, exact for
-    a lensed field band-limited at lmax_in + min(lmax_phi, 1000): the lensed field has a tail of that
+    docstring). The lensed field is analyzed on the Gauss–Legendre grid of :func:`lensing_grid`, exact for
+    a lensed field band-limited at lmax_in + min(lmax_L, 1000): the lensed field has a tail of that
     width above the unlensed band limit, and the residual is the aliasing of what lies beyond it
     (< 0.6% of lensed BB near lmax_out for CMB spectra, the smallest lensed spectrum).
 
@@ -320,10 +322,10 @@ def lens_alm(
     raw = np.asarray(alm)
     lmax_in, lmax_out = _lensing_band_limits(raw.shape[-1] if raw.ndim else 1, lmax_in, lmax_out, "alm")
     array, _ = harmonics._as_alm(alm, lmax_in, spin, stacked_spin0=False)
-    phi_alm, curl_alm, lmax_phi = _check_lensing_inputs(phi_alm, curl_alm, None)
+    phi_alm, curl_alm, lmax_L = _check_lensing_inputs(phi_alm, curl_alm, None)
     epsilon = as_float(epsilon, "epsilon", minimum=2e-13, maximum=0.1)
     (out,) = _lens_fields(
-        [(array, spin)], phi_alm, curl_alm, lmax_phi, lmax_in, lmax_out, epsilon, resolve_nthreads(nthreads)
+        [(array, spin)], phi_alm, curl_alm, lmax_L, lmax_in, lmax_out, epsilon, resolve_nthreads(nthreads)
     )
     return out[0] if spin == 0 else out
 
@@ -354,13 +356,13 @@ def lens_tqu_alm(
     raw = np.asarray(alm)
     lmax_in, lmax_out = _lensing_band_limits(raw.shape[-1] if raw.ndim else 1, lmax_in, lmax_out, "alm")
     array = as_finite_array(alm, "alm", shape=(3, nalm(lmax_in)), dtype=np.complex128)
-    phi_alm, curl_alm, lmax_phi = _check_lensing_inputs(phi_alm, curl_alm, None)
+    phi_alm, curl_alm, lmax_L = _check_lensing_inputs(phi_alm, curl_alm, None)
     epsilon = as_float(epsilon, "epsilon", minimum=2e-13, maximum=0.1)
     lensed_t, lensed_p = _lens_fields(
         [(array[:1], 0), (array[1:], 2)],
         phi_alm,
         curl_alm,
-        lmax_phi,
+        lmax_L,
         lmax_in,
         lmax_out,
         epsilon,
@@ -400,11 +402,11 @@ def deflection_maps(phi_alm, nside: int, lmax: int | None = None, nthreads: int 
 
     Parameters
     ----------
-    phi_alm : complex array, shape (nalm(lmax_phi),)
+    phi_alm : complex array, shape (nalm(lmax_L),)
         Lensing potential.
     nside : int
     lmax : int, optional
-        Band limit used (default min(lmax_phi, 3·nside − 1)); higher multipoles of φ are dropped.
+        Band limit used (default min(lmax_L, 3·nside − 1)); higher multipoles of φ are dropped.
     nthreads : int, optional
 
     Returns
@@ -431,15 +433,15 @@ def deflection_maps(phi_alm, nside: int, lmax: int | None = None, nthreads: int 
 
 
 def _phi_for_maps(phi_alm, nside, lmax):
-    """φ truncated to the map band limit (default min(lmax_phi, 3·nside − 1)), with nside and lmax checked."""
-    phi_alm, _, lmax_phi = _check_lensing_inputs(phi_alm, None, None)
+    """φ truncated to the map band limit (default min(lmax_L, 3·nside − 1)), with nside and lmax checked."""
+    phi_alm, _, lmax_L = _check_lensing_inputs(phi_alm, None, None)
     nside = check_nside(nside)
     if lmax is None:
-        lmax = min(lmax_phi, 3 * nside - 1)
+        lmax = min(lmax_L, 3 * nside - 1)
     lmax = check_lmax_for_nside(lmax, nside)
-    if lmax > lmax_phi:
-        raise ValueError(f"lmax={lmax} exceeds the band limit of phi_alm ({lmax_phi})")
-    return truncate_alm(phi_alm, lmax, lmax_phi), nside, lmax
+    if lmax > lmax_L:
+        raise ValueError(f"lmax={lmax} exceeds the band limit of phi_alm ({lmax_L})")
+    return truncate_alm(phi_alm, lmax, lmax_L), nside, lmax
 
 
 def _kappa_from_phi(phi: np.ndarray, nside: int, lmax: int, nthreads) -> np.ndarray:
@@ -454,11 +456,11 @@ def kappa_map(phi_alm, nside: int, lmax: int | None = None, nthreads: int | None
 
     Parameters
     ----------
-    phi_alm : complex array, shape (nalm(lmax_phi),)
+    phi_alm : complex array, shape (nalm(lmax_L),)
         Lensing potential, e.g. an input φ or a Wiener-filtered reconstruction.
     nside : int
     lmax : int, optional
-        Highest L kept (default min(lmax_phi, 3·nside − 1)); higher multipoles of φ are dropped, e.g. to
+        Highest L kept (default min(lmax_L, 3·nside − 1)); higher multipoles of φ are dropped, e.g. to
         show only the large scales.
     nthreads : int, optional
 

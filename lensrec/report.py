@@ -11,11 +11,13 @@ import os
 
 import numpy as np
 
+from ._deprecation import module_getattr
 from .io import atomic_path, atomic_write_text
 
 __all__ = [
     "PALETTE",
-    "ESTIMATOR_COLOURS",
+    "ESTIMATOR_COLORS",
+    "estimator_color",
     "new_figure",
     "save_figure",
     "tidy_log_axis",
@@ -33,7 +35,7 @@ PALETTE = {
     "good": "#3a7d44",
     "grid": "#d9dde3",
 }
-ESTIMATOR_COLOURS = {
+ESTIMATOR_COLORS = {
     "TT": "#2f6690",
     "TE": "#7b4b94",
     "EE": "#3a7d44",
@@ -41,6 +43,22 @@ ESTIMATOR_COLOURS = {
     "EB": "#d1495b",
     "MV": "#1d2433",
 }
+# ESTIMATOR_COLOURS, the old spelling, answers until 0.2 with a DeprecationWarning.
+__getattr__ = module_getattr(__name__, {"ESTIMATOR_COLOURS": "ESTIMATOR_COLORS"}, globals())
+
+
+def estimator_color(label: str, palette=None) -> str:
+    """The line color of an estimator: its entry in ``palette`` (default ESTIMATOR_COLORS), else one from
+    matplotlib's tab10 cycle (so that a newly added estimator is drawn without touching the palettes)."""
+    palette = ESTIMATOR_COLORS if palette is None else palette
+    if label in palette:
+        return palette[label]
+    from matplotlib import colormaps, colors
+
+    from .labels import ESTIMATORS
+
+    index = ESTIMATORS.index(label) if label in ESTIMATORS else 0
+    return colors.to_hex(colormaps["tab10"](index % 10))
 
 
 def _pyplot():

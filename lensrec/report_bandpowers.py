@@ -42,7 +42,7 @@ def bias_budget_table(result: LensingBandpowers) -> str:
             f"{row['L_min']:>5}-{row['L_max']:<5} {row['L_eff']:>7.1f} {row['signal']:>10.3e} {row['raw']:>10.3e} "
             f"{row['rdn0']:>10.3e} {row['mc_n0']:>10.3e} {row['n1']:>10.3e} {row['analytic_n1']:>10.3e} "
             f"{row['mean_field']:>10.3e} "
-            f"{row['normalisation_correction']:>8.4f} {row['debiased']:>10.3e} {row['error']:>9.2e} "
+            f"{row['normalization_correction']:>8.4f} {row['debiased']:>10.3e} {row['error']:>9.2e} "
             f"{ratio(row['rdn0_over_signal']):>8} {ratio(row['n1_over_signal']):>8} "
             f"{ratio(row['mean_field_over_signal']):>8}"
         )
@@ -68,7 +68,7 @@ _STYLE = {
     "mean_field": "#8e44ad",
     "analytic_n0": "#7f8c8d",
     "analytic_n1": "#d35400",
-    "normalisation": "#27ae60",
+    "normalization": "#27ae60",
 }
 
 
@@ -140,8 +140,8 @@ def plot_bias_budget(result: LensingBandpowers, title: str | None = None):
                 label=f"−{TERM_LABELS[name]} (negative)",
             )
     if result.amplitude is not None:
-        shift = np.abs(result.normalisation - 1.0) * result.theory
-        axes.plot(L_eff, shift, marker="^", ls=":", color=_STYLE["normalisation"], ms=6, label=r"|1/ρ² − 1| × signal")
+        shift = np.abs(result.normalization - 1.0) * result.theory
+        axes.plot(L_eff, shift, marker="^", ls=":", color=_STYLE["normalization"], ms=6, label=r"|1/ρ² − 1| × signal")
     visible = result.debiased > 0
     axes.errorbar(
         L_eff[visible],

@@ -178,7 +178,7 @@ def _noise_figure(path, results: DemoResults, force: bool) -> None:
             ax.plot(L_f[2:], (scale * spectra.phi[: L_f.size])[2:], color=report.PALETTE["signal"], lw=3,
                     label="signal $C_L^{\\phi\\phi}$")  # fmt: skip
         for label in forecast.n0:
-            ax.plot(L_f[2:], (scale * forecast.n0[label][component])[2:], color=report.ESTIMATOR_COLOURS.get(label),
+            ax.plot(L_f[2:], (scale * forecast.n0[label][component])[2:], color=report.estimator_color(label),
                     lw=2.2 if label == "MV" else 1.3, label=f"N0 {label}")  # fmt: skip
         iterative = results.iterative
         for label in () if iterative is None else iterative.n0:
@@ -234,7 +234,7 @@ def _reconstruction_figure(path, results: DemoResults, force: bool) -> None:
     scale = spectrum_scale("lensing", Lr.size)
     ax.plot(Lr[2:], (scale * spectra.phi[: lmax_L + 1])[2:], color=report.PALETTE["signal"], lw=3,
             label="theory $C_L^{\\phi\\phi}$")  # fmt: skip
-    ax.plot(Lr[2:], (scale * comparison.n0)[2:], color=report.ESTIMATOR_COLOURS["MV"], lw=1.2, ls=":",
+    ax.plot(Lr[2:], (scale * comparison.n0)[2:], color=report.estimator_color("MV"), lw=1.2, ls=":",
             label="analytic N0 (MV)")  # fmt: skip
     ax.plot(L_d, debiased_b, "o", color=report.PALETTE["output"], label="auto − N0 (this sim, binned)")
     ax.set(xscale="log", yscale="log", xlabel="lensing multipole $L$", ylabel="$[L(L+1)]^2 C_L / 2\\pi$",
@@ -270,15 +270,15 @@ def _tensor_figure(path, results: DemoResults, force: bool) -> None:
     edges = _log_edges(20, int(ell[-1]) + 1, 30)
     fig, axes = report.new_figure(2, 1, width=5.6)
     ax = axes[0, 0]
-    for values, label, colour, width in (
+    for values, label, color, width in (
         (delensed.observed_bb - np.nan_to_num(finite_noise), "observed − noise", report.PALETTE["ink"], 1.2),
         (delensed.template_bb, "template", report.PALETTE["input"], 1.2),
         (delensed.residual_bb - np.nan_to_num(finite_noise), "residual − noise", report.PALETTE["output"], 1.2),
         (spectra.lensed["BB"][: ell.size], "lensing BB (theory)", report.PALETTE["signal"], 3),
         (finite_noise, "noise", report.PALETTE["accent"], 1.2),
     ):
-        centres, binned = bin_spectrum(values, edges, scale="cmb", skip_nan=True)
-        ax.plot(centres, binned, color=colour, lw=width, label=label)
+        centers, binned = bin_spectrum(values, edges, scale="cmb", skip_nan=True)
+        ax.plot(centers, binned, color=color, lw=width, label=label)
     ax.set(xscale="log", yscale="log", xlabel="multipole $\\ell$", ylabel="$D_\\ell^{BB}$ [µK²]",
            title="B modes before and after delensing (this sim)")  # fmt: skip
     report.tidy_log_axis(ax)
@@ -300,12 +300,12 @@ def _tensor_figure(path, results: DemoResults, force: bool) -> None:
 
 def _efficiency_figure(path, results: DemoResults, force: bool) -> None:
     delensed = results.delensed
-    centres, efficiency = bin_spectrum(
+    centers, efficiency = bin_spectrum(
         delensed.efficiency, _log_edges(30, int(delensed.ell[-1]) + 1, 25), skip_nan=True
     )
     fig, axes = report.new_figure(1, 1, width=6.0, height=3.6)
     ax = axes[0, 0]
-    ax.plot(centres, 100 * efficiency, "o-", color=report.PALETTE["good"])
+    ax.plot(centers, 100 * efficiency, "o-", color=report.PALETTE["good"])
     ax.set(xscale="log", xlabel="multipole $\\ell$", ylabel="lensing B power removed [%]",
            title="delensing efficiency (this sim, noise power subtracted)")  # fmt: skip
     report.tidy_log_axis(ax)

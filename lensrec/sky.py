@@ -122,7 +122,7 @@ def _unit_normal_alm(rng: np.random.Generator, ncomp: int, lmax: int, nthreads: 
 
 
 def gaussian_alm(cl, lmax: int, rng: np.random.Generator, nthreads: int | None = 1) -> np.ndarray:
-    """One Gaussian realisation of a real isotropic field with power ``cl``: ⟨|a_ℓm|²⟩ = C_ℓ, m = 0 real.
+    """One Gaussian realization of a real isotropic field with power ``cl``: ⟨|a_ℓm|²⟩ = C_ℓ, m = 0 real.
 
     Parameters
     ----------

@@ -14,7 +14,7 @@ ndarray]``, and stores its arrays in ``<folder>/sims/sim_<index>.npz`` (written 
 - Executors: ``"serial"``, ``"processes"`` (``concurrent.futures.ProcessPoolExecutor``) or any
   ``dask.distributed.Client`` (a ``LocalCluster`` on a laptop, or a batch-system cluster through
   dask-jobqueue). Tasks are deterministic functions of (settings, index) through
-  :func:`lensrec.seeding.rng_for`, and each runs with the same thread count (``settings["threads_per_task"]``),
+  :func:`lensrec.seeding.rng_for`, and each runs with the same thread count (``settings["nthreads"]``),
   so the stored arrays are bit-identical whichever executor ran them.
 
 Worker processes write their own result files and return only (index, file name, checksum); nothing is
@@ -35,6 +35,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ._checks import as_int
+from ._deprecation import renamed_arguments
 from .io import atomic_path, file_sha256, read_json, write_json
 
 __all__ = ["SuiteCache", "SuiteRun", "run_suite", "settings_fingerprint"]
@@ -49,9 +50,21 @@ def _fingerprinted(key) -> bool:
     return key != "n_sims" and not str(key).startswith("_")
 
 
+# Fingerprints are taken on the key spelling of the first suites ("threads_per_task", mask moments "fsky" and
+# "fsky_spectra"), so that suites written before the names were unified resume with the same fingerprint.
+_FINGERPRINT_SPELLING = {"nthreads": "threads_per_task"}
+_MASK_MOMENT_SPELLING = {"sky_fraction": "fsky", "sky_fraction_spectra": "fsky_spectra"}
+
+
+def _fingerprint_spelling(key, value):
+    if key == "mask_moments" and isinstance(value, dict):
+        value = {_MASK_MOMENT_SPELLING.get(k, k): v for k, v in value.items()}
+    return _FINGERPRINT_SPELLING.get(key, key), value
+
+
 def settings_fingerprint(settings: dict) -> str:
     """SHA-256 of the canonical JSON of ``settings`` (the number of simulations and "_" keys are not part of it)."""
-    canonical = {k: v for k, v in settings.items() if _fingerprinted(k)}
+    canonical = dict(_fingerprint_spelling(k, v) for k, v in settings.items() if _fingerprinted(k))
     text = json.dumps(canonical, sort_keys=True, separators=(",", ":"), default=_plain)
     return hashlib.sha256(text.encode()).hexdigest()
 
@@ -202,12 +215,13 @@ class SuiteRun:
     seconds: float
 
 
+@renamed_arguments(max_workers="workers")
 def run_suite(
     settings: dict,
     directory,
     task: Callable,
     executor="serial",
-    max_workers: int | None = None,
+    workers: int | None = None,
     progress=True,
     cancel: threading.Event | None = None,
     indices=None,
@@ -225,7 +239,7 @@ def run_suite(
         A top-level function ``task(settings, index) -> dict[str, ndarray]``, deterministic in its inputs.
     executor : {"serial", "processes"} or dask.distributed.Client
         Where the tasks run.
-    max_workers : int, optional
+    workers : int, optional
         Process-pool size (default: 2).
     progress : bool or callable
         ``True`` shows a tqdm bar; a callable is called as ``progress(done, total)``.
@@ -286,7 +300,7 @@ def run_suite(
                     break
                 done(execute_one(task_name, settings, index, cache.directory))
         elif executor == "processes":
-            cancelled = _run_pool(task_name, settings, cache.directory, todo, max_workers or 2, cancel, done)
+            cancelled = _run_pool(task_name, settings, cache.directory, todo, workers or 2, cancel, done)
         elif hasattr(executor, "submit") and hasattr(executor, "gather"):
             cancelled = _run_dask(executor, task_name, settings, cache.directory, todo, cancel, done)
         else:
@@ -322,17 +336,17 @@ def _progress(progress, total: int, initial: int, label: str = "simulations"):
     return None, lambda step: None
 
 
-def _run_pool(task_name, settings, directory, todo, max_workers, cancel, done) -> bool:
+def _run_pool(task_name, settings, directory, todo, workers, cancel, done) -> bool:
     import multiprocessing
     from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 
     context = multiprocessing.get_context("spawn")  # fork is unsafe after threaded transforms ran
     pending = list(todo)
     running = set()
-    with ProcessPoolExecutor(max_workers=max_workers, mp_context=context) as pool:
+    with ProcessPoolExecutor(max_workers=workers, mp_context=context) as pool:
         try:
             while pending or running:
-                while pending and len(running) < max_workers and not (cancel is not None and cancel.is_set()):
+                while pending and len(running) < workers and not (cancel is not None and cancel.is_set()):
                     running.add(pool.submit(execute_one, task_name, settings, pending.pop(0), directory))
                 if not running:
                     return True
@@ -367,7 +381,7 @@ def gaussian_field_task(settings: dict, index: int) -> dict[str, np.ndarray]:
     """A cheap reference task: a Gaussian spin-0 field with spectrum 1/(ℓ+1)², its map and its spectrum.
 
     Used to test and benchmark the runner itself (executors, caching, resuming) without the full pipeline.
-    Settings keys: ``seed``, ``nside``, ``lmax``, ``threads_per_task``.
+    Settings keys: ``seed``, ``nside``, ``lmax``, ``nthreads``.
     """
     import ducc0
 
@@ -384,7 +398,7 @@ def gaussian_field_task(settings: dict, index: int) -> dict[str, np.ndarray]:
     base = ducc0.healpix.Healpix_Base(nside, "RING")
     geometry = base.sht_info()
     field_map = ducc0.sht.synthesis(
-        alm=alm[None, :], lmax=lmax, spin=0, nthreads=int(settings.get("threads_per_task", 1)), **geometry
+        alm=alm[None, :], lmax=lmax, spin=0, nthreads=int(settings.get("nthreads", 1)), **geometry
     )[0]
     weight = np.where(np.arange(nalm) <= lmax, 1.0, 2.0)  # the first lmax+1 entries are m = 0
     power = np.bincount(ell, weights=weight * np.abs(alm) ** 2, minlength=lmax + 1) / (2 * np.arange(lmax + 1) + 1)

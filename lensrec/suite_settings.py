@@ -12,7 +12,16 @@ import os
 import numpy as np
 
 from ._checks import as_float, as_int, check_lmax_for_nside, check_nside
-from .labels import COMBINED_ESTIMATORS, JOINT_ESTIMATORS, PAIR_ESTIMATORS, SUITE_STAGES, is_symmetric
+from ._deprecation import renamed_arguments, upgrade_keys
+from .labels import (  # noqa: F401  (COMPONENTS re-exported: it lived here)
+    COMBINED_ESTIMATORS,
+    COMPONENTS,
+    JOINT_ESTIMATORS,
+    PAIR_ESTIMATORS,
+    SUITE_STAGES,
+    is_symmetric,
+    parse_estimators,
+)
 
 __all__ = ["lensing_suite_settings", "estimate_key"]
 
@@ -20,12 +29,13 @@ SUITE_KIND = "lensing_suite"
 SUITE_FORMAT = 1
 SUITE_FILE = "suite.json"
 STAGES = SUITE_STAGES
-COMPONENTS = ("gradient", "curl")
 # every pair estimator, every combination of them and the joint estimator (lensrec.labels); suites store
 # per-field filtered fields and derive the joint ones from them (IsotropicFilter.joint_fields)
 ESTIMATORS = PAIR_ESTIMATORS + tuple(COMBINED_ESTIMATORS) + tuple(JOINT_ESTIMATORS)
 # φ̂[a, b] = φ̂[b, a] (lensrec.reconstruction, leg order; the joint estimator sums both orders)
 SYMMETRIC_ESTIMATORS = tuple(label for label in PAIR_ESTIMATORS if is_symmetric(label)) + tuple(JOINT_ESTIMATORS)
+# Settings written before the names were unified (format 1 keeps them readable): old key -> new key.
+RENAMED_SETTINGS = {"threads_per_task": "nthreads"}
 MIN_SIMS = 4  # RDN0 needs two data × sim and two sim × sim pairs; each simulation's half-split needs two others
 DEFAULT_LMAX_MARGIN = 1000
 
@@ -47,22 +57,10 @@ def _array_digest(array: np.ndarray) -> str:
 
 
 def _parse_estimators(estimators) -> list[str]:
-    if isinstance(estimators, str):
-        estimators = [part.strip() for part in estimators.split(",") if part.strip()]
-    try:
-        labels = list(estimators)
-    except TypeError:
-        raise TypeError(f"estimators must be labels from {ESTIMATORS}, got {estimators!r}") from None
-    if not labels:
-        raise ValueError(f"estimators must name at least one of {ESTIMATORS}, got none")
-    for label in labels:
-        if label not in ESTIMATORS:
-            raise ValueError(f"unknown estimator {label!r}; allowed: {', '.join(ESTIMATORS)}")
-    if len(set(labels)) != len(labels):
-        raise ValueError(f"estimators lists a label twice: {labels}")
-    return labels
+    return list(parse_estimators(estimators, allowed=ESTIMATORS))
 
 
+@renamed_arguments(threads_per_task="nthreads")
 def lensing_suite_settings(
     experiment="deep_highland",
     nside: int = 512,
@@ -77,7 +75,7 @@ def lensing_suite_settings(
     noise: bool = True,
     lensing: bool = True,
     lmax_margin: int = DEFAULT_LMAX_MARGIN,
-    threads_per_task: int = 1,
+    nthreads: int = 1,
     data_seed: int | None = None,
     data_maps=None,
     epsilon: float = 1e-7,
@@ -118,14 +116,14 @@ def lensing_suite_settings(
         Add instrument noise to the simulations (default True).
     lensing : bool
         True (default): skies lensed by a Gaussian φ (exact remapping). False: *Gaussian* skies, Gaussian
-        realisations of the lensed CMB spectra with the same noise and no lensing signal (φ = 0), the
+        realizations of the lensed CMB spectra with the same noise and no lensing signal (φ = 0), the
         standard check of N0 and of the filters: their quadratic estimates have exactly the Gaussian
         noise of :func:`lensrec.reconstruction_noise`. N1 needs lensing.
     lmax_margin : int
         Multipoles of the unlensed fields beyond lmax (see :func:`lensrec.simulate_sky`); default 1000.
-    threads_per_task : int
+    nthreads : int
         Threads of every transform in a task (default 1); fixed so that results do not depend on the
-        executor.
+        executor. (``threads_per_task`` is the deprecated old name.)
     data_seed : int, optional
         Seed of the simulated data (index 0 of that seed); default ``seed + 1``; must differ from ``seed``.
     data_maps : str or path, optional
@@ -221,7 +219,7 @@ def lensing_suite_settings(
         "lensing": bool(lensing),
         "lmax_margin": lmax_margin,
         "epsilon": as_float(epsilon, "epsilon", minimum=2e-13, maximum=0.1),
-        "threads_per_task": as_int(threads_per_task, "threads_per_task", minimum=1, maximum=256),
+        "nthreads": as_int(nthreads, "nthreads", minimum=1, maximum=256),
         "seed": seed,
         "n_sims": as_int(n_sims, "n_sims", minimum=MIN_SIMS, maximum=100000),
         "n1": bool(n1),
@@ -270,7 +268,26 @@ def _check_settings(settings) -> dict:
             f"settings are not lensing-suite settings of format {SUITE_FORMAT} (kind={settings.get('kind')!r}, "
             f"format={settings.get('format')!r}); build them with lensing_suite_settings(...)"
         )
-    return settings
+    return upgrade_settings(settings)
+
+
+def upgrade_settings(settings: dict) -> dict:
+    """Settings with the names of this version: old keys (from a suite written earlier) renamed, with a warning."""
+    if not any(old in settings for old in RENAMED_SETTINGS) and not _old_mask_keys(settings):
+        return settings
+    from .masks import MaskMoments
+
+    out = upgrade_keys(settings, RENAMED_SETTINGS, "suite settings")
+    if _old_mask_keys(out):
+        out["mask_moments"] = dict(MaskMoments.upgraded(out["mask_moments"]))
+    return out
+
+
+def _old_mask_keys(settings: dict) -> bool:
+    from .masks import MaskMoments
+
+    moments = settings.get("mask_moments")
+    return isinstance(moments, dict) and any(old in moments for old in MaskMoments.RENAMED)
 
 
 def _stage_settings(settings: dict, stage: str, directory: str | None = None) -> dict:

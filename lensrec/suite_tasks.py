@@ -45,7 +45,7 @@ _CONTEXT_LOCK = threading.Lock()
 
 
 def _context(settings: dict) -> _Context:
-    """Filter, normalisation and mask of a suite, built once per process (they depend only on the settings)."""
+    """Filter, normalization and mask of a suite, built once per process (they depend only on the settings)."""
     from .estimator_noise import reconstruction_noise
     from .experiment import Experiment
     from .filtering import IsotropicFilter
@@ -57,7 +57,7 @@ def _context(settings: dict) -> _Context:
             return _CONTEXTS[key]
     spectra = suite_spectra(settings)
     experiment = Experiment.from_dict(dict(settings["experiment"]))
-    nthreads = int(settings["threads_per_task"])
+    nthreads = int(settings["nthreads"])
     mask = None
     if settings["mask_sha256"] is not None:
         path = settings.get("_mask_path")
@@ -97,7 +97,7 @@ def suite_spectra(settings: dict):
 def suite_analytic_n0(settings: dict, estimator: str, component: str = "gradient", nthreads: int | None = None):
     """Analytic Gaussian N0 (C_L, L = 0 … lmax_L; NaN below L = 2) of one estimator of a suite.
 
-    The full-sky N0 of the normalisation the suite's reconstructions use: the suite's experiment with its
+    The full-sky N0 of the normalization the suite's reconstructions use: the suite's experiment with its
     multipoles cut at the suite's lmax, the suite's spectra, lensed weights (Okamoto & Hu 2003, PRD 67,
     083002). Only this estimator is computed (and its pairs, for a combination); no filter or mask is built.
     """
@@ -112,14 +112,14 @@ def suite_analytic_n0(settings: dict, estimator: str, component: str = "gradient
     experiment = IsotropicFilter(
         Experiment.from_dict(dict(settings["experiment"])), spectra, lmax=settings["lmax"]
     ).experiment  # its multipoles cut at lmax, as in the suite's filter
-    nthreads = int(settings["threads_per_task"]) if nthreads is None else nthreads
+    nthreads = int(settings["nthreads"]) if nthreads is None else nthreads
     noise = reconstruction_noise(
         experiment, spectra, estimators=(estimator,), lmax_L=settings["lmax_L"], nthreads=nthreads
     )
     return np.asarray(noise.n0[estimator][component])
 
 
-def _reconstruct(first, second, estimator: str, context: _Context, settings: dict, symmetrise: bool = False):
+def _reconstruct(first, second, estimator: str, context: _Context, settings: dict, symmetrize: bool = False):
     from .labels import JOINT_ESTIMATORS
     from .reconstruction import reconstruct_filtered
 
@@ -135,7 +135,7 @@ def _reconstruct(first, second, estimator: str, context: _Context, settings: dic
         lmax_L=settings["lmax_L"],
         noise=context.noise,
         nthreads=context.nthreads,
-        symmetrise=symmetrise,
+        symmetrize=symmetrize,
     )
     return {"gradient": np.array(result.phi_alm), "curl": np.array(result.curl_alm)}
 
@@ -158,9 +158,9 @@ def _iterated(maps, estimator: str, context: _Context, settings: dict) -> dict:
 
 
 def _symmetric_pair(first, second, estimator: str, context: _Context, settings: dict) -> dict:
-    """φ̂{a, b} = (φ̂[a, b] + φ̂[b, a]) / 2 for both components, in one pass (each input's legs synthesised
+    """φ̂{a, b} = (φ̂[a, b] + φ̂[b, a]) / 2 for both components, in one pass (each input's legs synthesized
     once, one analysis per estimator; lensrec.reconstruction.quadratic_estimates)."""
-    return _reconstruct(first, second, estimator, context, settings, symmetrise=estimator not in SYMMETRIC_ESTIMATORS)
+    return _reconstruct(first, second, estimator, context, settings, symmetrize=estimator not in SYMMETRIC_ESTIMATORS)
 
 
 def _fields_from_alm(alm: np.ndarray, context: _Context, settings: dict):
@@ -235,7 +235,7 @@ def lensing_simulation_task(settings: dict, index: int) -> dict[str, np.ndarray]
     -------
     dict of arrays
         ``filtered`` (3, nalm(lmax)) T̄, Ē, B̄ (µK⁻¹); ``phi_input`` (nalm(lmax_L)) for simulated skies;
-        ``auto_<component>_<estimator>`` normalised φ̂ / Ω̂ (nalm(lmax_L)); with ``n1``, for simulations,
+        ``auto_<component>_<estimator>`` normalized φ̂ / Ω̂ (nalm(lmax_L)); with ``n1``, for simulations,
         ``n1_shared_…`` and ``n1_independent_…`` (see the module docstring).
     """
     settings = _check_settings(settings)

@@ -1,14 +1,14 @@
 r"""Simulation suites for the lensing power spectrum: simulate → filter → reconstruct, cached and resumable.
 
 A *lensing suite* is an experiment and its analysis settings (nside, lmax, lmax_L, estimators, noise, mask,
-lmax_margin, threads_per_task), a seed and a number of simulations, plus the *data*: the map set being
-analysed, either a simulation of its own seed (``data_seed``, never one of the suite's simulations) or
+lmax_margin, nthreads), a seed and a number of simulations, plus the *data*: the map set being
+analyzed, either a simulation of its own seed (``data_seed``, never one of the suite's simulations) or
 your own T, Q, U maps. :func:`lensing_suite_settings` validates all of it into plain JSON;
 :func:`run_lensing_suite` computes it with :func:`lensrec.suite_runner.run_suite` (caching, checksums,
 resuming, executors, progress bars, cancellation) in three stages, each its own cached folder:
 
 ``DIR/data/``
-    The data: filtered fields T̄, Ē, B̄ and the normalised φ̂ and Ω̂ (curl) of every estimator.
+    The data: filtered fields T̄, Ē, B̄ and the normalized φ̂ and Ω̂ (curl) of every estimator.
 ``DIR/simulations/``
     Per simulation i (:func:`lensing_simulation_task`): a lensed, noisy sky (:func:`lensrec.simulate_sky`,
     seed, index i) filtered (:class:`lensrec.filtering.IsotropicFilter`, with the mask) and reconstructed
@@ -23,9 +23,9 @@ resuming, executors, progress bars, cancellation) in three stages, each its own 
     N0 need, φ̂{d, s_i} and, for i ≥ 1, φ̂{s_{i−1}, s_i}. Pairs never depend on the number of
     simulations, so growing a suite reuses every stored pair.
 
-φ̂{a, b} = (φ̂[a, b] + φ̂[b, a])/2 is the symmetrised pair estimate (one call for TT and EE, whose
+φ̂{a, b} = (φ̂[a, b] + φ̂[b, a])/2 is the symmetrized pair estimate (one call for TT and EE, whose
 estimates are symmetric in their legs; two otherwise). Everything is deterministic in (settings, index)
-through :func:`lensrec.seeding.rng_for`, and every transform of a task uses ``threads_per_task`` threads,
+through :func:`lensrec.seeding.rng_for`, and every transform of a task uses ``nthreads`` threads,
 so the stored arrays are bit-identical whichever executor ran them. The bandpowers, the bias budget and
 the amplitude fit are in :mod:`lensrec.bandpowers`. This module keeps the suite folder (storage, caching,
 running); the settings are validated by :mod:`lensrec.suite_settings` and the per-index science is
@@ -38,7 +38,7 @@ Two worker processes with one thread each are usually fastest on a small machine
     import lensrec
     settings = lensrec.lensing_suite_settings("deep_highland", nside=256, lmax=512, lmax_L=400,
                                               estimators="EB", n_sims=16, seed=1, n1=True, lmax_margin=256)
-    suite = lensrec.run_lensing_suite(settings, "suite_dir", executor="processes", max_workers=2)
+    suite = lensrec.run_lensing_suite(settings, "suite_dir", executor="processes", workers=2)
     result = lensrec.lensing_bandpowers(suite)
     print(result.amplitude, result.amplitude_error)
 
@@ -63,7 +63,7 @@ Each dask worker is one batch job; the suite folder must be on a file system tha
     cluster.scale(jobs=8)                      # 32 workers of one thread
     client = Client(cluster)
     settings = lensrec.lensing_suite_settings("wide_lowland", nside=2048, lmax=3000, lmax_L=2000,
-                                              n_sims=400, seed=7, n1=True, threads_per_task=1)
+                                              n_sims=400, seed=7, n1=True, nthreads=1)
     suite = lensrec.run_lensing_suite(settings, "/shared/scratch/suite_wide", executor=client)
 
 or, from a login node, ``lensrec suite run ... --executor dask --scheduler tcp://HOST:8786``. A job that
@@ -82,6 +82,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ._checks import as_int
+from ._deprecation import renamed_arguments
 from .io import read_json, write_json
 from .suite_runner import SuiteCache, SuiteRun, _task_name, run_suite, settings_fingerprint
 from .suite_settings import (  # noqa: F401  (re-exported: the settings lived here)
@@ -102,6 +103,7 @@ from .suite_settings import (  # noqa: F401  (re-exported: the settings lived he
     _stage_settings,
     estimate_key,
     lensing_suite_settings,
+    upgrade_settings,
 )
 from .suite_tasks import (  # noqa: F401  (re-exported: the per-index science lived here)
     _context,
@@ -222,11 +224,12 @@ def _verify_inputs(settings: dict) -> None:
             )
 
 
+@renamed_arguments(max_workers="workers")
 def run_lensing_suite(
     settings: dict,
     directory,
     executor="serial",
-    max_workers: int | None = None,
+    workers: int | None = None,
     progress=True,
     cancel: threading.Event | None = None,
     force: bool = False,
@@ -242,7 +245,7 @@ def run_lensing_suite(
         verifies are reused; more simulations may be requested); one holding another suite is refused.
     executor : {"serial", "processes"} or dask.distributed.Client
         Where the tasks run (see :func:`lensrec.suite_runner.run_suite`).
-    max_workers : int, optional
+    workers : int, optional
         Process-pool size (default 2).
     progress : bool or callable
         tqdm bars per stage (``True``), none (``False``) or ``progress(done, total, stage)``, called with the
@@ -271,7 +274,7 @@ def run_lensing_suite(
     os.makedirs(directory, exist_ok=True)
     suite_path = os.path.join(directory, SUITE_FILE)
     if os.path.exists(suite_path):
-        old = read_json(suite_path).get("settings", {})
+        old = upgrade_settings(read_json(suite_path).get("settings", {}))
         keys = _differing(old, _jsonable(settings))
         if keys and not force:
             raise ValueError(
@@ -300,7 +303,7 @@ def run_lensing_suite(
             os.path.join(directory, stage),
             _TASKS[stage],
             executor=executor,
-            max_workers=max_workers,
+            workers=workers,
             progress=_stage_progress(progress, stage),
             cancel=cancel,
             label=stage,

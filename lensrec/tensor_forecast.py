@@ -29,6 +29,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ._checks import as_finite_array, as_float, as_int
+from ._deprecation import renamed_arguments
 
 __all__ = [
     "sigma_r",
@@ -48,8 +49,8 @@ DELENSING_BIAS_NOTE = (
     "measured on the data comes out lower than the true residual: a delensing bias that makes the delensed "
     "spectrum look better than it is and, uncorrected, biases r low and makes sigma(r) optimistic. Its size "
     "is comparable to the contribution of the reused B modes to the reconstruction noise and can reach tens "
-    "of percent of the residual lensing power for low-noise polarization-dominated reconstructions (from "
-    "memory; Namikawa 2017, PRD 95, 103514; Baleato Lizancos, Challinor & Carron 2021, JCAP 03, 016). "
+    "of percent of the residual lensing power for low-noise polarization-dominated reconstructions "
+    "(Namikawa 2017, PRD 95, 103514; Baleato Lizancos, Challinor & Carron 2021, JCAP 03, 016). "
     "Avoid it by reconstructing phi without the B modes that are delensed (e.g. TT/TE/EE only, or disjoint "
     "multipole ranges), or remove it with simulations; this forecast does neither."
 )
@@ -76,18 +77,19 @@ def _spectrum(values, name: str, ell_max: int, allow_inf: bool = False) -> np.nd
     return array[: ell_max + 1]
 
 
-def sigma_r(bb_lensing, bb_noise, bb_tensor_r1, sky_fraction, ell_min, ell_max, r=0.0) -> float:
+@renamed_arguments(bb_lensing="lensed_bb", bb_noise="noise_bb", bb_tensor_r1="tensor_bb")
+def sigma_r(lensed_bb, noise_bb, tensor_bb, sky_fraction, ell_min, ell_max, r=0.0) -> float:
     """Fisher forecast of the 1σ uncertainty on r from the B-mode power spectrum alone.
 
     Parameters
     ----------
-    bb_lensing : array_like
+    lensed_bb : array_like
         Lensing B-mode power left in the map, C_ℓ^BB in µK², indexed from ℓ = 0: the lensed BB (no
         delensing), a delensed residual, or a forecast residual. Entries must be finite and ≥ 0.
-    bb_noise : array_like
+    noise_bb : array_like
         Beam-deconvolved B-mode noise power N_ℓ^BB in µK², indexed from ℓ = 0; ``inf`` marks multipoles
         without data (they add nothing to F). NaN is refused.
-    bb_tensor_r1 : array_like
+    tensor_bb : array_like
         Primordial (tensor) B-mode power for r = 1 in µK², indexed from ℓ = 0.
     sky_fraction : float
         Observed sky fraction f_sky in (0, 1].
@@ -139,9 +141,9 @@ def sigma_r(bb_lensing, bb_noise, bb_tensor_r1, sky_fraction, ell_min, ell_max, 
         raise ValueError(f"ell_max={ell_max} must be >= ell_min={ell_min} (the multipole range is inverted)")
     sky_fraction = as_float(sky_fraction, "sky_fraction", minimum=0.0, maximum=1.0, strict_minimum=True)
     r = as_float(r, "r", minimum=0.0)
-    lensing = _spectrum(bb_lensing, "bb_lensing", ell_max)
-    noise = _spectrum(bb_noise, "bb_noise", ell_max, allow_inf=True)
-    tensor = _spectrum(bb_tensor_r1, "bb_tensor_r1", ell_max)
+    lensing = _spectrum(lensed_bb, "lensed_bb", ell_max)
+    noise = _spectrum(noise_bb, "noise_bb", ell_max, allow_inf=True)
+    tensor = _spectrum(tensor_bb, "tensor_bb", ell_max)
     ell = np.arange(ell_min, ell_max + 1, dtype=np.float64)
     used = slice(ell_min, ell_max + 1)
     variance = r * tensor[used] + lensing[used] + noise[used]
@@ -151,7 +153,7 @@ def sigma_r(bb_lensing, bb_noise, bb_tensor_r1, sky_fraction, ell_min, ell_max, 
         where = int(ell[np.argmax(degenerate)])
         raise ValueError(
             f"the Fisher forecast is degenerate at l = {where}: tensor power but zero variance (r = 0 with zero "
-            "lensing and zero noise gives sigma(r) -> 0); give r > 0 or a non-zero bb_lensing or bb_noise"
+            "lensing and zero noise gives sigma(r) -> 0); give r > 0 or a non-zero lensed_bb or noise_bb"
         )
     with np.errstate(divide="ignore", invalid="ignore"):
         ratio = np.where(signal > 0.0, signal / variance, 0.0)  # inf noise gives 0
@@ -251,10 +253,11 @@ class TensorFisher:
         }
 
 
+@renamed_arguments(bb_lensing="lensed_bb", bb_noise="noise_bb", bb_tensor_r1="tensor_bb")
 def tensor_fisher(
-    bb_lensing,
-    bb_noise,
-    bb_tensor_r1,
+    lensed_bb,
+    noise_bb,
+    tensor_bb,
     sky_fraction,
     ell_min,
     ell_max,
@@ -270,8 +273,8 @@ def tensor_fisher(
 
     Parameters
     ----------
-    bb_lensing, bb_noise, bb_tensor_r1, sky_fraction, ell_min, ell_max, r
-        As for :func:`sigma_r`. ``bb_lensing`` is the lensing B-mode power left in the map (lensed or a
+    lensed_bb, noise_bb, tensor_bb, sky_fraction, ell_min, ell_max, r
+        As for :func:`sigma_r`. ``lensed_bb`` is the lensing B-mode power left in the map (lensed or a
         delensed residual); its amplitude A_lens is the lensing nuisance parameter.
     foreground_bb : array_like, optional
         The foreground-residual B-mode power at amplitude 1 (µK², from ℓ = 0, e.g.
@@ -318,9 +321,9 @@ def tensor_fisher(
     if not isinstance(vary_alens, (bool, np.bool_)):
         raise TypeError(f"vary_alens must be True or False, got {vary_alens!r}")
     used = slice(ell_min, ell_max + 1)
-    lensing = _spectrum(bb_lensing, "bb_lensing", ell_max)[used]
-    noise = _spectrum(bb_noise, "bb_noise", ell_max, allow_inf=True)[used]
-    tensor = _spectrum(bb_tensor_r1, "bb_tensor_r1", ell_max)[used]
+    lensing = _spectrum(lensed_bb, "lensed_bb", ell_max)[used]
+    noise = _spectrum(noise_bb, "noise_bb", ell_max, allow_inf=True)[used]
+    tensor = _spectrum(tensor_bb, "tensor_bb", ell_max)[used]
     foreground = None if foreground_bb is None else _spectrum(foreground_bb, "foreground_bb", ell_max)[used]
     ell = np.arange(ell_min, ell_max + 1, dtype=np.float64)
     total = r * tensor + lensing + noise + (0.0 if foreground is None else foreground)
@@ -329,7 +332,7 @@ def tensor_fisher(
         where = int(ell[np.argmax(data & (total == 0.0) & (tensor > 0.0))])
         raise ValueError(
             f"the Fisher forecast is degenerate at l = {where}: tensor power but zero variance; give r > 0 or a "
-            "non-zero bb_lensing, bb_noise or foreground_bb"
+            "non-zero lensed_bb, noise_bb or foreground_bb"
         )
     data &= total > 0.0
     derivatives = {"r": tensor}
@@ -466,7 +469,8 @@ class DelensingForecast:
         return out
 
 
-def alens_residual(lensed_bb, residual_bb, bb_noise, ell_min, ell_max) -> float:
+@renamed_arguments(bb_noise="noise_bb")
+def alens_residual(lensed_bb, residual_bb, noise_bb, ell_min, ell_max) -> float:
     """A_lens^res: the Fisher-weighted mean of C_ℓ^res / C_ℓ^lens over [ell_min, ell_max].
 
     It is the amplitude A that a fit of A·C^lens + N to the delensed BB spectrum would return on average,
@@ -478,7 +482,7 @@ def alens_residual(lensed_bb, residual_bb, bb_noise, ell_min, ell_max) -> float:
     ----------
     lensed_bb, residual_bb : array_like
         Lensing BB before and after delensing (µK², from ℓ = 0).
-    bb_noise : array_like
+    noise_bb : array_like
         B-mode noise (µK², from ℓ = 0; ``inf`` allowed).
     ell_min, ell_max : int
         Inclusive multipole range.
@@ -499,7 +503,7 @@ def alens_residual(lensed_bb, residual_bb, bb_noise, ell_min, ell_max) -> float:
     ell_max = as_int(ell_max, "ell_max", minimum=ell_min)
     lensed = _spectrum(lensed_bb, "lensed_bb", ell_max)[ell_min:]
     residual = _spectrum(residual_bb, "residual_bb", ell_max)[ell_min:]
-    noise = _spectrum(bb_noise, "bb_noise", ell_max, allow_inf=True)[ell_min:]
+    noise = _spectrum(noise_bb, "noise_bb", ell_max, allow_inf=True)[ell_min:]
     ell = np.arange(ell_min, ell_max + 1, dtype=np.float64)
     exact = np.isfinite(noise) & (lensed > 0) & (residual + noise == 0)
     if np.any(exact):

@@ -2,7 +2,7 @@
 
     φ^WF_LM = C_L^φφ / (C_L^φφ + N0_L) · φ̂_LM,         E^WF_ℓm = C̃_ℓ^EE · Ē_ℓm,
 
-with φ̂ the normalised (unit-response) gradient reconstruction of Gaussian noise N0, Ē the
+with φ̂ the normalized (unit-response) gradient reconstruction of Gaussian noise N0, Ē the
 inverse-variance-filtered E modes (on the full sky with isotropic noise, Ē = E / (C̃^EE + N^EE), so
 E^WF = C̃^EE/(C̃^EE + N^EE) · E) and C̃^EE the lensed E spectrum. :func:`template_inputs` filters observed
 maps into the Wiener-filtered E and the beam-deconvolved B that the template of
@@ -49,7 +49,7 @@ def _spectrum(values, name: str, lmax: int, allow_inf: bool = False) -> np.ndarr
 
 
 def wiener_filter_phi(phi_alm, n0, phi_spectrum=None, n1=None) -> np.ndarray:
-    """Wiener-filter a normalised lensing reconstruction: φ^WF_LM = C_L^φφ / (C_L^φφ + N0_L + N1_L) · φ̂_LM.
+    """Wiener-filter a normalized lensing reconstruction: φ^WF_LM = C_L^φφ / (C_L^φφ + N0_L + N1_L) · φ̂_LM.
 
     The filter must use the reconstruction's true noise, N0 + N1. The forecast identity of delensing, that
     the residual lensing potential power C_L^φφ (1 − ρ_L²), ρ_L² = C_L^φφ/(C_L^φφ + N_L), already includes
@@ -61,10 +61,10 @@ def wiener_filter_phi(phi_alm, n0, phi_spectrum=None, n1=None) -> np.ndarray:
 
     Parameters
     ----------
-    phi_alm : complex array, shape (nalm(L_max),)
-        The normalised (unit-response) gradient reconstruction φ̂_LM (dimensionless), healpy layout.
-    n0 : array_like, shape (L_max + 1,)
-        Its Gaussian reconstruction noise N0_L in C_L^φφ units, L = 0 … L_max exactly (the L range of
+    phi_alm : complex array, shape (nalm(lmax_L),)
+        The normalized (unit-response) gradient reconstruction φ̂_LM (dimensionless), healpy layout.
+    n0 : array_like, shape (lmax_L + 1,)
+        Its Gaussian reconstruction noise N0_L in C_L^φφ units, L = 0 … lmax_L exactly (the L range of
         ``phi_alm``). NaN is accepted at L < 2 (lensrec's convention for undefined entries), ``inf`` anywhere
         (no reconstruction: weight 0).
     phi_spectrum : array_like, optional
@@ -81,7 +81,7 @@ def wiener_filter_phi(phi_alm, n0, phi_spectrum=None, n1=None) -> np.ndarray:
     Raises
     ------
     TypeError, ValueError
-        For non-finite or badly shaped ``phi_alm``, an ``n0`` whose length is not L_max + 1, NaN in ``n0`` at
+        For non-finite or badly shaped ``phi_alm``, an ``n0`` whose length is not lmax_L + 1, NaN in ``n0`` at
         L ≥ 2, negative N0, or a C^φφ that is negative, non-finite or too short.
 
     References
@@ -98,18 +98,18 @@ def wiener_filter_phi(phi_alm, n0, phi_spectrum=None, n1=None) -> np.ndarray:
     >>> wiener_filter_phi(phi, n0, phi_spectrum=np.array([0.0, 0.0, 1.0, 1.0])).real.tolist()
     [0.0, 0.0, 0.5, 0.0, 0.0, 0.5, 0.0, 0.5, 0.0, 0.0]
     """
-    phi_alm, lmax_phi = _coefficients(phi_alm, "phi_alm")
-    if lmax_phi < 2:
-        raise ValueError(f"phi_alm must reach L >= 2 to carry any lensing, got L_max = {lmax_phi}")
+    phi_alm, lmax_L = _coefficients(phi_alm, "phi_alm")
+    if lmax_L < 2:
+        raise ValueError(f"phi_alm must reach L >= 2 to carry any lensing, got lmax_L = {lmax_L}")
     if isinstance(n0, (str, bytes)) or n0 is None:
         raise TypeError(f"n0 must be a numeric array, got {type(n0).__name__}")
     noise = np.asarray(n0)
     if not (np.issubdtype(noise.dtype, np.floating) or np.issubdtype(noise.dtype, np.integer)):
         raise TypeError(f"n0 must be a real numeric array, got dtype {noise.dtype}")
     noise = noise.astype(np.float64)
-    if noise.ndim != 1 or noise.size != lmax_phi + 1:
+    if noise.ndim != 1 or noise.size != lmax_L + 1:
         raise ValueError(
-            f"n0 must cover exactly the L range of phi_alm (L = 0 ... {lmax_phi}, {lmax_phi + 1} values), got shape "
+            f"n0 must cover exactly the L range of phi_alm (L = 0 ... {lmax_L}, {lmax_L + 1} values), got shape "
             f"{noise.shape}: the noise belongs to another reconstruction"
         )
     if np.any(np.isnan(noise[2:])):
@@ -134,12 +134,12 @@ def wiener_filter_phi(phi_alm, n0, phi_spectrum=None, n1=None) -> np.ndarray:
         from .spectra import fiducial_spectra
 
         phi_spectrum = fiducial_spectra().phi
-    signal = _spectrum(phi_spectrum, "phi_spectrum", lmax_phi)
-    weight = np.zeros(lmax_phi + 1)
+    signal = _spectrum(phi_spectrum, "phi_spectrum", lmax_L)
+    weight = np.zeros(lmax_L + 1)
     used = np.isfinite(noise) & (signal + np.nan_to_num(noise, nan=0.0) > 0)
     used[:2] = False
     weight[used] = signal[used] / (signal[used] + noise[used])
-    return scale_alm(phi_alm, weight, lmax_phi)
+    return scale_alm(phi_alm, weight, lmax_L)
 
 
 def wiener_filter_e(e_alm, experiment, spectra=None, beam_convolved=True) -> np.ndarray:
@@ -147,12 +147,12 @@ def wiener_filter_e(e_alm, experiment, spectra=None, beam_convolved=True) -> np.
 
     Ē comes from :class:`lensrec.filtering.IsotropicFilter` (Ē = E / (b_ℓ C̃^EE_tot) inside the polarization
     cuts, 0 outside), so E^WF = C̃^EE / (C̃^EE + N^EE) · E / b_ℓ with the beam-deconvolved noise N^EE: the same
-    field as ``IsotropicFilter(...).filter(maps).wiener("E")`` for coefficients already analysed from maps.
+    field as ``IsotropicFilter(...).filter(maps).wiener("E")`` for coefficients already analyzed from maps.
 
     Parameters
     ----------
     e_alm : complex array, shape (nalm(lmax),)
-        Observed E modes in µK on the full sky: as analysed from the maps (beam-convolved) if
+        Observed E modes in µK on the full sky: as analyzed from the maps (beam-convolved) if
         ``beam_convolved``, else already divided by the beam.
     experiment : Experiment or str
         The survey (noise, beam and cuts), or a shipped name / TOML path.

@@ -18,7 +18,7 @@ from lensrec.biases import (
     mean_field_split_spectrum,
     monte_carlo_n0,
     monte_carlo_n1,
-    normalisation_correction,
+    normalization_correction,
     realization_dependent_n0,
 )
 from lensrec.power import cross_spectrum
@@ -54,15 +54,15 @@ def _grid():
             alm=alm[None], lmax=LMAX_FIELD, spin=0, geometry="GL", ntheta=ntheta, nphi=nphi, nthreads=1
         )[0]
 
-    def analyse(values):
+    def analyze(values):
         return ducc0.sht.analysis_2d(map=values[None], lmax=LMAX_Q, spin=0, geometry="GL", nthreads=1)[0]
 
-    return synth, analyse
+    return synth, analyze
 
 
-def _product(synth, analyse, a, b):
+def _product(synth, analyze, a, b):
     """Exact harmonic coefficients of a(n) b(n) to LMAX_Q (Gauss–Legendre quadrature of a band-limited product)."""
-    return analyse(synth(a) * synth(b))
+    return analyze(synth(a) * synth(b))
 
 
 def _gaunt_spectrum(cl_a, cl_b):
@@ -135,7 +135,7 @@ def test_rdn0_of_independent_gaussian_legs_is_the_gaussian_noise(rng, cmb_like):
     # Data with power (1 + eps) C, simulations with C. Exact expectations (Wick, module docstring):
     #   4 C^{ds} - 2 C^{ss'} -> 2 (1 + 2 eps) C1,   2 C^{ss'} -> 2 C1,   true N0 of the data 2 (1 + eps)^2 C1,
     # so RDN0 follows the data's power to first order (Namikawa, Hanson & Takahashi 2013, MNRAS 431, 609, §3).
-    synth, analyse = _grid()
+    synth, analyze = _grid()
     n, repeats = 6, 40
     c1 = _gaunt_spectrum(cmb_like, cmb_like)
     ells = np.arange(2, LMAX_Q + 1)
@@ -144,8 +144,8 @@ def test_rdn0_of_independent_gaussian_legs_is_the_gaussian_noise(rng, cmb_like):
         for _ in range(repeats):
             data = _gaussian(rng, (1.0 + eps) * cmb_like, LMAX_FIELD)
             sims = _gaussian(rng, cmb_like, LMAX_FIELD, count=n)
-            ds = [cross_spectrum(_product(synth, analyse, data, s)) for s in sims]
-            ss = [cross_spectrum(_product(synth, analyse, sims[i - 1], sims[i])) for i in range(1, n)]
+            ds = [cross_spectrum(_product(synth, analyze, data, s)) for s in sims]
+            ss = [cross_spectrum(_product(synth, analyze, sims[i - 1], sims[i])) for i in range(1, n)]
             rdn0.append(realization_dependent_n0(ds, ss).value)
             mcn0.append(monte_carlo_n0(ss).value)
         ratio, sigma = _pooled_ratio(np.array(rdn0), 2 * (1 + 2 * eps) * c1, ells)
@@ -163,15 +163,15 @@ def test_rdn0_of_independent_gaussian_legs_is_the_gaussian_noise(rng, cmb_like):
 
 def test_rdn0_error_matches_its_scatter(rng, cmb_like):
     # The quoted Monte-Carlo error must describe the scatter of the estimate (its chi2 per degree of freedom ~ 1).
-    synth, analyse = _grid()
+    synth, analyze = _grid()
     c1 = _gaunt_spectrum(cmb_like, cmb_like)
     n, repeats, ells = 5, 30, np.arange(4, LMAX_Q + 1)
     pulls = []
     for _ in range(repeats):
         data = _gaussian(rng, cmb_like, LMAX_FIELD)
         sims = _gaussian(rng, cmb_like, LMAX_FIELD, count=n)
-        ds = [cross_spectrum(_product(synth, analyse, data, s)) for s in sims]
-        ss = [cross_spectrum(_product(synth, analyse, sims[i - 1], sims[i])) for i in range(1, n)]
+        ds = [cross_spectrum(_product(synth, analyze, data, s)) for s in sims]
+        ss = [cross_spectrum(_product(synth, analyze, sims[i - 1], sims[i])) for i in range(1, n)]
         estimate = realization_dependent_n0(ds, ss)
         pulls.append((estimate.value[ells] - 2 * c1[ells]) / estimate.error[ells])
     rms = np.sqrt(np.mean(np.square(pulls)))
@@ -183,7 +183,7 @@ def test_rdn0_error_matches_its_scatter(rng, cmb_like):
 def test_mc_n1_recovers_the_cross_contraction_of_a_shared_component(rng, cmb_like):
     # a = x + u, b = y + u (shared u, the analogue of a shared phi), b' = y + u' (independent). For Gaussian
     # fields (Wick) C^{ab} - C^{ab'} = C1[C^u, C^u] exactly, so 2 <C^{ab} - C^{ab'}> = 2 C1[C^u, C^u].
-    synth, analyse = _grid()
+    synth, analyze = _grid()
     cl_u = 0.3 * cmb_like
     expected = 2 * _gaunt_spectrum(cl_u, cl_u)
     n, repeats = 8, 25
@@ -192,14 +192,14 @@ def test_mc_n1_recovers_the_cross_contraction_of_a_shared_component(rng, cmb_lik
     for _ in range(repeats):
         x, y = _gaussian(rng, cmb_like, LMAX_FIELD, 2 * n).reshape(2, n, -1)
         u, u_other = _gaussian(rng, cl_u, LMAX_FIELD, 2 * n).reshape(2, n, -1)
-        shared = [cross_spectrum(_product(synth, analyse, x[i] + u[i], y[i] + u[i])) for i in range(n)]
-        independent = [cross_spectrum(_product(synth, analyse, x[i] + u[i], y[i] + u_other[i])) for i in range(n)]
+        shared = [cross_spectrum(_product(synth, analyze, x[i] + u[i], y[i] + u[i])) for i in range(n)]
+        independent = [cross_spectrum(_product(synth, analyze, x[i] + u[i], y[i] + u_other[i])) for i in range(n)]
         values.append(monte_carlo_n1(shared, independent).value)
     ratio, sigma = _pooled_ratio(np.array(values), expected, ells)
     assert abs(ratio - 1.0) < 4 * sigma  # 4 sigma of the pooled Monte-Carlo mean
 
 
-def test_normalisation_correction_recovers_a_known_response(rng):
+def test_normalization_correction_recovers_a_known_response(rng):
     # phi_hat = rho phi + noise: <C^{phi_hat phi}> / <C^{phi phi}> = rho exactly, so the power correction is 1/rho^2.
     lmax, n, repeats, rho = 64, 10, 200, 0.9
     ell = np.arange(lmax + 1)
@@ -213,7 +213,7 @@ def test_normalisation_correction_recovers_a_known_response(rng):
         noise = _gaussian(rng, 2.0 * cl_phi, lmax, count=n)
         cross = [cross_spectrum(rho * p + e, p) for p, e in zip(phi, noise, strict=True)]
         auto = [cross_spectrum(p) for p in phi]
-        estimate = normalisation_correction(cross, auto, binning=bins)
+        estimate = normalization_correction(cross, auto, binning=bins)
         factors.append(estimate.value)
         errors.append(estimate.error)
     factors, errors = np.array(factors), np.array(errors)
@@ -236,4 +236,4 @@ def test_bad_inputs_are_refused():
     with pytest.raises(ValueError, match="besides the excluded"):
         half_split_mean_fields(np.ones((2, 3), complex), exclude=0)
     with pytest.raises(ValueError, match="columns"):
-        normalisation_correction(np.ones((3, 5)), np.ones((3, 5)), binning=np.ones((2, 4)))
+        normalization_correction(np.ones((3, 5)), np.ones((3, 5)), binning=np.ones((2, 4)))

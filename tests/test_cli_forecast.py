@@ -44,7 +44,7 @@ def test_forecast_writes_the_documented_json(tmp_path, capsys):
         assert set(parts) == {"gradient", "curl"}
         for values in parts.values():
             assert len(values) == 301
-            assert values[0] is None and values[1] is None  # undefined below L = 2 (CONVENTIONS.md)
+            assert values[0] is None and values[1] is None  # undefined below L = 2 (docs/conventions.md)
             assert all(isinstance(v, float) and v > 0 for v in values[2:])
         assert document["snr"][label] > 0
     assert document["provenance"]["command"] == "forecast"

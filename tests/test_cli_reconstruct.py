@@ -71,7 +71,7 @@ def test_reconstruct_writes_estimates_n0_and_provenance(inputs, tmp_path, capsys
     forecast, _ = forecast_document(lensrec.load_experiment(inputs["experiment"]), estimators="EB", lmax_L=100)
     assert set(document) == set(forecast) | {"provenance"}  # the forecast command's layout
     assert document["L"] == forecast["L"] == list(range(101))
-    assert document["n0"]["EB"]["gradient"][0] is None  # NaN below L = 2 is written as null (CONVENTIONS.md)
+    assert document["n0"]["EB"]["gradient"][0] is None  # NaN below L = 2 is written as null (docs/conventions.md)
     assert np.allclose(document["n0"]["EB"]["gradient"][2:], forecast["n0"]["EB"]["gradient"][2:], rtol=1e-12)
     assert np.allclose(document["n0"]["EB"]["curl"][2:], forecast["n0"]["EB"]["curl"][2:], rtol=1e-12)
     assert document["snr"]["EB"] == pytest.approx(forecast["snr"]["EB"], rel=1e-12)

@@ -80,7 +80,7 @@ def test_perfect_knowledge_remap_template_removes_the_lensing_b_modes(true_input
     # Reference: the simulation's own noise-free lensed B modes (lensrec.sky's exact remapping). With the
     # true phi and the true unlensed E the non-perturbative template removes, on this sim, 99.94%, 99.94%,
     # 99.87% and 99.51% of the lensing B power in the four bands (99.71% over 30-1000). What is left is the
-    # aliasing of the lensed tail: the simulation analysed its lensed field on a grid sized for l <= 1500 and
+    # aliasing of the lensed tail: the simulation analyzed its lensed field on a grid sized for l <= 1500 and
     # the template on one for l <= 1000, each good to < 0.6% of lensed BB near its band limit (lens_alm's
     # stated accuracy), so together at most ~1.2%: hence >= 98.5% in every band, beyond the >= 95% required.
     _, _, lensed_b = true_inputs
@@ -100,7 +100,7 @@ def test_first_order_template_removes_less_at_high_ell(true_inputs, perfect_temp
     first = delensing.delensing_spectra(lensed_b, perfect_templates["first_order"], method="first_order")
     exact = delensing.delensing_spectra(lensed_b, perfect_templates["remap"])
     low, high = first.efficiency_in_range(30, 300), first.efficiency_in_range(600, 1000)
-    # The band efficiencies scatter by < 1 percentage point between realisations (residual power over
+    # The band efficiencies scatter by < 1 percentage point between realizations (residual power over
     # > 9e3 modes, module docstring); the differences asserted are 5 points.
     assert high < exact.efficiency_in_range(600, 1000) - 0.05
     assert high < low - 0.05
@@ -111,7 +111,7 @@ def test_first_order_template_removes_less_at_high_ell(true_inputs, perfect_temp
 def test_first_order_template_power_matches_the_full_sky_first_order_kernel(true_inputs, perfect_templates):
     # Reference: Hu 2000, PRD 62, 043007: first-order lensing BB = convolution of C^EE and C^phiphi
     # (lensrec.first_order_lensed_bb, checked against Hu's 3j sums and camb elsewhere). Evaluated with this
-    # realisation's own C^EE and C^phiphi (to l = 2500, the simulation's band), so the phi cosmic variance that
+    # realization's own C^EE and C^phiphi (to l = 2500, the simulation's band), so the phi cosmic variance that
     # moves all bands together drops out; what remains is the Gaussian scatter of the B modes themselves.
     # Tolerance: 4 sigma of the band power (module docstring) plus 0.3% for the non-Gaussian scatter left.
     e_alm, phi_alm, _ = true_inputs
@@ -165,7 +165,7 @@ def template_fields(sky, experiment, fiducial):
 
 
 def efficiency_sigma(efficiency, lo, hi):
-    """Realisation scatter of a measured band efficiency ε = (2 C^{B,T} − C^{T,T}) / C^{B,B}.
+    """Realization scatter of a measured band efficiency ε = (2 C^{B,T} − C^{T,T}) / C^{B,B}.
 
     For a template of power ≈ ε C^BB and cross ≈ ε C^BB, the Gaussian band scatter of the cross is
     √(C^BB C^TT / ν) and of each auto √(2/ν) C; adding the cross (twice), template-auto and reference-auto
@@ -184,7 +184,7 @@ def test_reconstructed_phi_delensing_matches_the_forecast(
     # analytic N0 of the same EE reconstruction, with the same band limits as the simulation (E and phi to 2500,
     # the template's E to 1500 through the E noise cut). Measured against the simulation's noise-free lensed B
     # so that the B noise does not enter. EE reconstruction: no B modes are reused.
-    # Tolerance: 3 sigma of the realisation scatter (efficiency_sigma) plus a 10% (of epsilon) allowance for
+    # Tolerance: 3 sigma of the realization scatter (efficiency_sigma) plus a 10% (of epsilon) allowance for
     # what the forecast leaves out: the higher-order response of phi-hat (a few percent), N1 bias absent from
     # the Wiener filter (a few percent of N0 at this noise, from memory), and the reuse of the template's E
     # modes inside the EE estimate (percent level, from memory).
@@ -229,7 +229,7 @@ def test_reusing_the_b_modes_biases_the_measured_residual_low(sky, experiment, t
     # with an EB reconstruction (the estimator that dominates MV at this noise) from the same maps, the template
     # correlates with the B-mode noise, so the noise-subtracted efficiency measured on the observed B modes
     # exceeds the true efficiency, measured on the simulation's noise-free lensed B modes with the same
-    # template. Without the bias the two differ only by the noise realisation:
+    # template. Without the bias the two differ only by the noise realization:
     # σ ≈ [√(2/ν) N + 2 √(C^res N / ν)] / C^BB ≈ 0.4 points over 30 <= l <= 300 (N/C^BB ≈ 0.08 at
     # 1.4 uK-arcmin); asserted: more than 2 points, 5 sigma.
     # Measured on this sim (remap): 71.3% apparent against 67.1% true over 30-300 (forecast without any bias:

@@ -1,4 +1,4 @@
-"""The position-space estimator engine: unnormalised ḡ_LM against brute-force 3j sums, leg symmetry,
+"""The position-space estimator engine: unnormalized ḡ_LM against brute-force 3j sums, leg symmetry,
 transform counts and its docstring examples.
 
 Sources: the estimator ḡ^XY_LM = (1/η) Σ (−1)^M (l1 l2 L; m1 m2 −M) [f^XY_{l1 L l2}]* X̄ Ȳ and the response

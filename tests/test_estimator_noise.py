@@ -2,7 +2,7 @@
 
 The brute-force sums below are written from the published formulas, independently of lensrec's weight code:
 Okamoto & Hu 2003, PRD 67, 083002 (OH03): Table I response functions with their F functions, the estimator
-normalisation and the Gaussian noise covariance of §III; the curl (rotation) kernel in its spin-±1 form
+normalization and the Gaussian noise covariance of §III; the curl (rotation) kernel in its spin-±1 form
 (Namikawa, Yamauchi & Taruya 2012, JCAP 01, 007), checked here to reproduce OH03's F for the gradient.
 Wigner 3j symbols come from ``wigners`` (reference library).
 """
@@ -389,7 +389,7 @@ def test_mv_beats_each_estimator(survey_results, name):
     for component in ("gradient", "curl"):
         mv = result.n0["MV"][component][L]
         for label in LABELS:
-            # MV minimises variance over unit-response combinations (OH03 §III); allow rounding 1e-12
+            # MV minimizes variance over unit-response combinations (OH03 §III); allow rounding 1e-12
             assert np.all(mv <= result.n0[label][component][L] * (1 + 1e-12)), (label, component)
         weights = result.mv_weights[component][:, L]
         assert np.allclose(weights.sum(axis=0), 1.0, rtol=0, atol=1e-12)
@@ -419,7 +419,7 @@ def test_mv_full_covariance_versus_naive_inverse_sum(survey_results, rng):
     assert np.isclose(n0_diag[0], 1 / np.sum(1 / np.diag(c)), rtol=1e-13)
 
 
-def test_optimal_estimators_have_n0_equal_to_normalisation(survey_results):
+def test_optimal_estimators_have_n0_equal_to_normalization(survey_results):
     # For TT, EE, TB and EB the filtered weights are the optimum, so N0 = A_L = 1/R_L (OH03 §III); TE with
     # diagonal filters is not the optimum (see test_te_noise_is_bounded_by_the_optimal_te_weight).
     result = survey_results["mid"]

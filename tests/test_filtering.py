@@ -91,7 +91,7 @@ def test_filter_zeroes_multipoles_outside_each_fields_cuts(experiment, observed)
     maps, _, _ = observed
     fields = IsotropicFilter(experiment, nthreads=2).filter(maps)
     ell = harmonics.ell_of_alm(LMAX)
-    # CONVENTIONS.md: multipoles outside [ell_min, ell_max] of a field are not used by any filter
+    # docs/conventions.md: multipoles outside [ell_min, ell_max] of a field are not used by any filter
     assert np.all(fields.T[(ell < 5) | (ell > 100)] == 0)
     assert np.all(fields.E[ell < 5] == 0) and np.all(fields.B[ell < 5] == 0)
     assert np.any(fields.E[ell > 100] != 0)  # polarization keeps l up to 128

@@ -116,8 +116,8 @@ def test_mask_of_the_wrong_nside_is_refused():
 
 
 @FAST
-@given(r=st.floats(allow_nan=True, allow_infinity=True), fsky=st.floats(allow_nan=True, allow_infinity=True))
-def test_sigma_r_refuses_bad_scalars(r, fsky):
+@given(r=st.floats(allow_nan=True, allow_infinity=True), f=st.floats(allow_nan=True, allow_infinity=True))
+def test_sigma_r_refuses_bad_scalars(r, f):
     spectra = lensrec.fiducial_spectra()
     ell = slice(0, 301)
     result = _refused_or_valid(
@@ -125,7 +125,7 @@ def test_sigma_r_refuses_bad_scalars(r, fsky):
             spectra.lensed["BB"][ell],
             np.full(301, 1e-6),
             spectra.tensor["BB"][ell],
-            sky_fraction=fsky,
+            sky_fraction=f,
             ell_min=30,
             ell_max=300,
             r=r,

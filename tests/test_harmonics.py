@@ -62,17 +62,17 @@ def test_tqu_synthesis_and_iterative_analysis_match_healpy(rng):
     maps = harmonics.alm2map_tqu(alm, nside, lmax, nthreads=2)
     reference_maps = np.array(healpy.alm2map(list(alm), nside, lmax=lmax, pol=True))  # healpy
     assert relative(maps, reference_maps) < RTOL
-    ours = harmonics.map2alm_tqu(maps, lmax, iterations=3, nthreads=2)
+    ours = harmonics.map2alm_tqu(maps, lmax, jacobi_iterations=3, nthreads=2)
     reference = healpy.map2alm(reference_maps, lmax=lmax, iter=3, use_weights=False)  # healpy
     assert relative(ours, reference) < RTOL
 
 
-@pytest.mark.parametrize("iterations", [0, 1, 3])
-def test_spin0_analysis_matches_healpy(rng, iterations):
+@pytest.mark.parametrize("jacobi_iterations", [0, 1, 3])
+def test_spin0_analysis_matches_healpy(rng, jacobi_iterations):
     nside, lmax = 32, 95
     m = rng.normal(size=12 * nside * nside)
-    ours = harmonics.map2alm(m, lmax, iterations=iterations, nthreads=2)
-    reference = healpy.map2alm(m, lmax=lmax, iter=iterations, use_weights=False)  # healpy
+    ours = harmonics.map2alm(m, lmax, jacobi_iterations=jacobi_iterations, nthreads=2)
+    reference = healpy.map2alm(m, lmax=lmax, iter=jacobi_iterations, use_weights=False)  # healpy
     assert relative(ours, reference) < RTOL
 
 
@@ -120,7 +120,7 @@ def test_gauss_legendre_weights_sum_to_the_sphere():
 
 @pytest.mark.parametrize("spin", [0, 2])
 def test_positions_match_healpix_synthesis(rng, spin):
-    # synthesis at the HEALPix pixel centres equals the HEALPix synthesis (healpy) to the requested accuracy
+    # synthesis at the HEALPix pixel centers equals the HEALPix synthesis (healpy) to the requested accuracy
     nside, lmax = 32, 64
     alm = random_alm(rng, lmax, 1 if spin == 0 else 2, spin)
     theta, phi = healpy.pix2ang(nside, np.arange(12 * nside * nside))

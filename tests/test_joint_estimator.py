@@ -1,4 +1,4 @@
-"""The joint ("generalised") minimum-variance estimator GMV: joint filter, normalisation, N0, position space.
+"""The joint ("generalized") minimum-variance estimator GMV: joint filter, normalization, N0, position space.
 
 Sources: the estimator ḡ = ½ Σ_pq Σ (3j) [f^pq]* (C⁻¹X)^p (C⁻¹X)^q over the nine ordered field pairs with the
 3×3 total covariance C per ℓ, its response R = 1/(2(2L+1)) Σ f* C⁻¹ f C⁻¹ and N0 = 1/R, and the result that
@@ -154,7 +154,7 @@ def test_joint_filter_applies_the_inverse_covariance_and_its_wiener_filter(fiduc
     assert not np.allclose(joint.E, diagonal.E)  # the TE correlation changes the filtered E
 
 
-# ---------------------------------------------------------------------------------- normalisation and N0
+# ---------------------------------------------------------------------------------- normalization and N0
 @pytest.fixture(scope="module")
 def brute(fiducial):
     """Module result and brute-force 3j sums of R^GMV and N^GMV for an experiment with distinct T and P cuts."""
@@ -208,7 +208,7 @@ def brute(fiducial):
 
 
 @pytest.mark.parametrize("component", ["gradient", "curl"])
-def test_normalisation_and_n0_match_brute_force_3j_sums(brute, component):
+def test_normalization_and_n0_match_brute_force_3j_sums(brute, component):
     result, reference = brute
     for L in L_CHECK:
         R, N = reference[component, L]
@@ -218,7 +218,7 @@ def test_normalisation_and_n0_match_brute_force_3j_sums(brute, component):
         assert result.n0["GMV"][component][L] == pytest.approx(N.real / R.real**2, rel=1e-8), (component, L)
 
 
-def test_gmv_noise_is_at_most_the_mv_noise_and_equals_its_normalisation(fiducial):
+def test_gmv_noise_is_at_most_the_mv_noise_and_equals_its_normalization(fiducial):
     # Maniyar et al. 2021: N0_GMV <= N0_MV at every L; an optimal quadratic estimator has N0 = 1/R (OH03 §III)
     for noise, lmax in ((1.0, 600), (8.0, 400)):
         experiment = lensrec.Experiment(
@@ -413,7 +413,7 @@ def test_forecast_document_reuses_a_given_noise_object(fiducial):
 
 
 @pytest.mark.parametrize("label", ["TE", "EB", "MV", "GMV"])
-def test_symmetrised_pair_in_one_pass_equals_the_average_of_both_orders(tiny, label):
+def test_symmetrized_pair_in_one_pass_equals_the_average_of_both_orders(tiny, label):
     # φ̂{a, b} = ½ (φ̂[a, b] + φ̂[b, a]) (Namikawa, Hanson & Takahashi 2013, MNRAS 431, 609): the one-pass
     # form must equal the two calls to rounding, at fewer transforms
     lmax, cl, spectra, a, b = tiny
@@ -426,7 +426,7 @@ def test_symmetrised_pair_in_one_pass_equals_the_average_of_both_orders(tiny, la
     common = dict(spectra=spectra, estimator=label, lmax_L=6, nthreads=1)
     forward = reconstruct_filtered(fa, experiment, second=fb, **common)
     backward = reconstruct_filtered(fb, experiment, second=fa, **common)
-    both = reconstruct_filtered(fa, experiment, second=fb, symmetrise=True, **common)
+    both = reconstruct_filtered(fa, experiment, second=fb, symmetrize=True, **common)
     for component in ("gradient", "curl"):
         want = 0.5 * (forward.alm(component) + backward.alm(component))
         assert np.allclose(both.alm(component), want, rtol=0, atol=1e-12 * np.abs(want).max())

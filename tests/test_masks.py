@@ -19,7 +19,7 @@ def test_cap_sky_fraction_is_the_spherical_cap_area(radius):
     nside = 128
     w = masks.cap_mask(nside, lon=40.0, lat=-20.0, radius=radius)
     expected = (1 - np.cos(np.radians(radius))) / 2
-    assert abs(masks.sky_fraction_moments(w)["fsky"] - expected) < pixel_error(nside)
+    assert abs(masks.sky_fraction_moments(w)["sky_fraction"] - expected) < pixel_error(nside)
 
 
 @pytest.mark.parametrize("b_min", [0.0, 20.0, 60.0])
@@ -61,7 +61,7 @@ def test_taper_is_monotonic_along_a_meridian():
 
 
 def test_binary_apodization_matches_the_analytic_latitude_taper():
-    # the k-d-tree distance to the nearest unobserved pixel centre agrees with the exact distance to the
+    # the k-d-tree distance to the nearest unobserved pixel center agrees with the exact distance to the
     # edge within about one pixel (0.46 deg at nside 128): compare the weights at that distance
     nside, width = 128, 8.0
     binary = masks.latitude_mask(nside, 20.0)
@@ -78,7 +78,7 @@ def test_moments():
     m = masks.sky_fraction_moments(w)
     assert m["w1"] == pytest.approx(np.mean(w)) and m["w2"] == pytest.approx(np.mean(w**2))
     assert m["w4"] <= m["w2"] <= m["w1"]  # weights in [0, 1]
-    assert m["fsky_spectra"] == pytest.approx(m["w2"] ** 2 / m["w4"])
+    assert m["sky_fraction_spectra"] == pytest.approx(m["w2"] ** 2 / m["w4"])
 
 
 def test_load_mask_round_trip_and_refusals(tmp_path):

@@ -51,10 +51,10 @@ def test_cross_spectrum_of_different_band_limits_uses_the_common_range(rng):
 
 def test_binning_is_the_weighted_mean_in_half_open_bins():
     cl = np.arange(11, dtype=float) ** 2
-    centres, values = bin_spectrum(cl, [2, 5, 11])
+    centers, values = bin_spectrum(cl, [2, 5, 11])
     # direct numpy means over l = 2..4 and 5..10 (the definition of a half-open bin average)
     assert np.allclose(values, [np.mean(cl[2:5]), np.mean(cl[5:11])])
-    assert np.allclose(centres, [3.0, 7.5])
+    assert np.allclose(centers, [3.0, 7.5])
     weights = 2 * np.arange(11) + 1.0
     _, weighted = bin_spectrum(cl, [2, 5], weights)
     assert np.isclose(weighted[0], np.sum(weights[2:5] * cl[2:5]) / np.sum(weights[2:5]))
@@ -65,8 +65,8 @@ def test_nan_entries_are_skipped_on_request_and_spectra_bin_along_the_last_axis(
     cl[3] = np.nan
     # a NaN makes its bin undefined unless it is skipped; then the bin is the mean of the other entries
     assert np.isnan(bin_spectrum(cl, [0, 5, 10])[1][0])
-    centres, values = bin_spectrum(cl, [0, 5, 10], skip_nan=True)
-    assert values.tolist() == [np.mean([0.0, 1.0, 2.0, 4.0]), 7.0] and centres[0] == 1.75
+    centers, values = bin_spectrum(cl, [0, 5, 10], skip_nan=True)
+    assert values.tolist() == [np.mean([0.0, 1.0, 2.0, 4.0]), 7.0] and centers[0] == 1.75
     stacked = bin_spectrum(np.vstack([np.arange(10.0), 2 * np.arange(10.0)]), [0, 5, 10])[1]
     assert stacked.tolist() == [[2.0, 7.0], [4.0, 14.0]]
     with pytest.raises(ValueError, match="scale must be None, 'cmb', 'lensing'"):
@@ -77,12 +77,12 @@ def test_binned_theory_stays_on_the_plotted_curve(fiducial):
     # Bin the plotted quantity [L(L+1)]^2 C_L^phiphi/2pi, (2L+1)-weighted (common practice: bin what you plot):
     # a weighted mean of the curve over a band lies between the curve's extremes in that band, and the
     # binning matrix gives the same numbers. Averaging C_L first and multiplying by the factor of the band
-    # centre instead lands far above the curve where the factor varies across the band (L = 2-33: 27x).
+    # center instead lands far above the curve where the factor varies across the band (L = 2-33: 27x).
     phi = fiducial.phi[:300]
     L = np.arange(300.0)
     curve = (L * (L + 1)) ** 2 * phi / (2 * np.pi)
     edges = [2, 34, 100, 300]
-    centres, binned = bin_spectrum(phi, edges, weights="modes", scale="lensing")
+    centers, binned = bin_spectrum(phi, edges, weights="modes", scale="lensing")
     for (low, high), value in zip(zip(edges[:-1], edges[1:]), binned):
         assert curve[low:high].min() <= value <= curve[low:high].max()
     assert np.allclose(power.binning_matrix(edges, 300, weights="modes", scale="lensing") @ phi, binned, rtol=1e-12)
@@ -91,7 +91,7 @@ def test_binned_theory_stays_on_the_plotted_curve(fiducial):
     assert np.allclose(d_ell, [np.mean(L[lo:hi] * (L[lo:hi] + 1) * fiducial.lensed["BB"][lo:hi]) / (2 * np.pi)
                                for lo, hi in zip(edges[:-1], edges[1:])], rtol=1e-12)  # fmt: skip
     # the error this guards against
-    wrong = bin_spectrum(phi, edges, weights="modes")[1] * (centres * (centres + 1)) ** 2 / (2 * np.pi)
+    wrong = bin_spectrum(phi, edges, weights="modes")[1] * (centers * (centers + 1)) ** 2 / (2 * np.pi)
     assert wrong[0] > 10 * curve[2:34].max()
 
 
@@ -146,18 +146,18 @@ def test_masked_map_spectrum_over_w2_recovers_the_input_spectrum(masked_gaussian
     cl, alm, field, mask, lmax = masked_gaussian_field
     moments = lensrec.sky_fraction_moments(mask)
     pseudo = hp.alm2cl(harmonics.map2alm(field * mask, lmax, nthreads=2))  # healpy-convention analysis
-    truth = hp.alm2cl(alm)  # the realisation's own full-sky spectrum: cancels most cosmic variance
+    truth = hp.alm2cl(alm)  # the realization's own full-sky spectrum: cancels most cosmic variance
     edges = np.arange(20, 201, 30)
     weights = 2 * np.arange(lmax + 1) + 1.0
     _, corrected = bin_spectrum(mask_corrected(pseudo, moments, mask_moment_order("map", "map")), edges, weights)
     ratio = corrected / bin_spectrum(truth, edges, weights)[1]
     # Hivon et al. 2002: <C~> ~ <w^2> C for a spectrum smooth over the mask kernel. Bound: 3 sigma with
     # sigma = sqrt(2 / ((2l+1) dl f_sky)) (cosmic variance of the masked part, f_sky = <w2>^2/<w4>, not
-    # cancelled by dividing by the full-sky realisation) plus 2% for the slope of 1/(l+10)^2 across the
+    # cancelled by dividing by the full-sky realization) plus 2% for the slope of 1/(l+10)^2 across the
     # mask's harmonic width (about 180/50 ~ 4 multipoles: (4/l)^2 at l = 20 is 4%, averaged over bins ~2%)
     for (low, high), value in zip(zip(edges[:-1], edges[1:], strict=True), ratio, strict=True):
         modes = np.sum(2 * np.arange(low, high) + 1)
-        sigma = np.sqrt(2.0 / (modes * moments["fsky_spectra"]))
+        sigma = np.sqrt(2.0 / (modes * moments["sky_fraction_spectra"]))
         assert abs(value - 1.0) < 3 * sigma + 0.02, (low, value, sigma)
 
 
@@ -173,7 +173,7 @@ def test_cross_of_w2_weighted_field_with_the_unmasked_field_scales_as_w2(masked_
     # the cross's variance ~ (1 + <w^4>/<w^2>^2)/2 relative, bounded here by the map case's f_sky
     for (low, high), value in zip(zip(edges[:-1], edges[1:], strict=True), corrected, strict=True):
         modes = np.sum(2 * np.arange(low, high) + 1)
-        sigma = np.sqrt(2.0 / (modes * moments["fsky_spectra"]))
+        sigma = np.sqrt(2.0 / (modes * moments["sky_fraction_spectra"]))
         assert abs(value - 1.0) < 3 * sigma + 0.02, (low, value, sigma)
     # passing the mask itself gives the same moment as the recorded moments
     assert np.allclose(mask_corrected(ratio, mask, 2), mask_corrected(ratio, moments, 2), rtol=1e-12)

@@ -1,5 +1,5 @@
-"""Quadratic-estimator reconstruction: normalisation, noise, MC-N0, masks and the mean-field, bad input (the
-unnormalised engine against brute-force 3j sums: tests/test_estimator_engine.py).
+"""Quadratic-estimator reconstruction: normalization, noise, MC-N0, masks and the mean-field, bad input (the
+unnormalized engine against brute-force 3j sums: tests/test_estimator_engine.py).
 
 Sources: the estimator ḡ^XY_LM = (1/η) Σ (−1)^M (l1 l2 L; m1 m2 −M) [f^XY_{l1 L l2}]* X̄ Ȳ and the response
 functions f of Okamoto & Hu 2003, PRD 67, 083002 (OH03: §III and Table I, with ₛF_{l1 L l2}); the curl kernel in
@@ -8,9 +8,9 @@ library); Gaussian N0 from Wick's theorem (OH03 §III); realization-dependent N0
 Hanson & Takahashi 2013, MNRAS 431, 609); N1 (Kesden, Cooray & Kamionkowski 2003, PRD 67, 123507); pseudo-C_l
 with mask moments (Hivon et al. 2002, ApJ 567, 2).
 
-Statistical bounds (one simulation, bins of Δ L multipoles, w_L = 2L+1, C = the input realisation's C_L^φφ):
+Statistical bounds (one simulation, bins of Δ L multipoles, w_L = 2L+1, C = the input realization's C_L^φφ):
 - cross(φ̂, φ)/C(φ): σ² ≈ Σ w (C + N0) C / (Σ w C)², i.e. (C + N0)/(C (2L+1) ΔL): the Gaussian N0 term plus
-  the realisation-dependent response and N1-type couplings, which scale with C (conservative by ~2 for the
+  the realization-dependent response and N1-type couplings, which scale with C (conservative by ~2 for the
   signal-dominated polarization bins, where the N0 term alone would be too small);
 - (auto − N0)/C(φ): σ² = Σ w (4 N0 C + 2 N0²) / (Σ w C)² (the φ × noise and noise × noise parts of the auto);
 - MC-N0 and the curl: Σ w Ĉ / Σ w N0 with σ² = Σ 2 w N0² / (N_sim (Σ w N0)²) (2L+1 modes of power N0 at
@@ -96,20 +96,20 @@ def test_comparison_with_the_input_divides_each_spectrum_by_its_mask_moment(smal
         lensrec.compare_with_input(full, phi[: harmonics.nalm(30)])
 
 
-def test_result_carries_normalisation_noise_and_settings(small_case):
+def test_result_carries_normalization_noise_and_settings(small_case):
     experiment, skies = small_case
     result = reconstruct(skies[0].maps, experiment, estimator="MV", lmax_L=64, nthreads=2)
     noise = lensrec.reconstruction_noise(experiment, lmax_L=64)
     assert np.allclose(result.n0["gradient"][2:], noise.n0["MV"]["gradient"][2:], rtol=1e-12)
     assert np.allclose(result.n0["curl"][2:], noise.n0["MV"]["curl"][2:], rtol=1e-12)
-    assert set(result.unnormalised) == set(LABELS) and result.mv_weights is not None
+    assert set(result.unnormalized) == set(LABELS) and result.mv_weights is not None
     ell = harmonics.ell_of_alm(64)
     assert np.all(result.phi_alm[ell < 2] == 0)
-    # the MV estimate is the weighted sum of the normalised estimators (OH03 §III)
+    # the MV estimate is the weighted sum of the normalized estimators (OH03 §III)
     manual = np.zeros_like(result.phi_alm)
     for i, label in enumerate(noise.covariance_labels):
         scale = np.nan_to_num(noise.mv_weights["gradient"][i] / noise.response[label]["gradient"])
-        manual += result.unnormalised[label]["gradient"] * scale[ell]
+        manual += result.unnormalized[label]["gradient"] * scale[ell]
     manual[ell < 2] = 0
     assert np.allclose(result.phi_alm, manual, rtol=1e-12, atol=1e-300)
     assert result.settings["transforms"]["total"] == 16 and result.settings["estimator"] == "MV"
@@ -149,7 +149,7 @@ def test_bad_input_is_refused_before_any_transform(small_case):
     with pytest.raises(ValueError, match="estimators must be distinct"):
         quadratic_estimates(fields, estimators=("TT", "TT"))
     with pytest.raises(ValueError, match="unknown estimator 'MV'"):
-        quadratic_estimates(fields, estimators="MV")  # MV is a normalised combination: use reconstruct
+        quadratic_estimates(fields, estimators="MV")  # MV is a normalized combination: use reconstruct
     with pytest.raises(ValueError, match="stop at lmax=80"):
         reconstruct_filtered(other, experiment)
 
@@ -198,14 +198,14 @@ def signal_bins(n0, cl, edges):
     return keep
 
 
-def normalised(result, label, component="gradient"):
-    """The normalised single estimator φ̂ = ḡ / R_L from an MV run's unnormalised parts (L < 2 set to zero)."""
+def normalized(result, label, component="gradient"):
+    """The normalized single estimator φ̂ = ḡ / R_L from an MV run's unnormalized parts (L < 2 set to zero)."""
     if label == "MV":
         return result.alm(component)
     ell = harmonics.ell_of_alm(result.lmax_L)
     response = result.noise.response[label][component]
     scale = np.where(ell >= 2, 1.0 / np.where(ell >= 2, response[ell], 1.0), 0.0)
-    return result.unnormalised[label][component] * scale
+    return result.unnormalized[label][component] * scale
 
 
 LOW_NOISE_LMAX = 2048
@@ -249,9 +249,9 @@ def low_noise_full_sky():
 
 @pytest.mark.slow
 @pytest.mark.parametrize("label", ["TT", "EE", "EB", "MV", "TE", "TB"])
-def test_normalisation_cross_with_input_over_input_power_is_one(low_noise_full_sky, label):
+def test_normalization_cross_with_input_over_input_power_is_one(low_noise_full_sky, label):
     result, phi = low_noise_full_sky
-    estimate = normalised(result, label)
+    estimate = normalized(result, label)
     input_power = cross_spectrum(phi)
     n0 = result.noise.n0[label]["gradient"]
     ratio = binned_ratios(cross_spectrum(estimate, phi), input_power, EDGES)
@@ -270,7 +270,7 @@ def test_normalisation_cross_with_input_over_input_power_is_one(low_noise_full_s
 def test_auto_minus_n0_is_the_input_power_at_low_L(low_noise_full_sky, label):
     result, phi = low_noise_full_sky
     edges = np.array([20, 50, 100, 150])
-    estimate = normalised(result, label)
+    estimate = normalized(result, label)
     input_power = cross_spectrum(phi)
     n0 = result.noise.n0[label]["gradient"]
     auto = cross_spectrum(estimate)
@@ -304,13 +304,13 @@ def moderate_noise_maps():
 
 
 @pytest.mark.slow
-def test_map_pipeline_normalisation(moderate_noise_maps):
+def test_map_pipeline_normalization(moderate_noise_maps):
     result, phi = moderate_noise_maps
     edges = np.array([20, 50, 100, 150, 200, 300, 400, 600])
     input_power = cross_spectrum(phi)
     for label in ("TT", "EB", "MV"):
         n0 = result.noise.n0[label]["gradient"]
-        ratio = binned_ratios(cross_spectrum(normalised(result, label), phi), input_power, edges)
+        ratio = binned_ratios(cross_spectrum(normalized(result, label), phi), input_power, edges)
         sigma = cross_sigma(n0, input_power, edges)
         # same bound as the harmonic-path test (3 sigma + 1%); the HEALPix analysis at l = 2 nside is exact to
         # ~1e-6 (tests/test_filtering.py), far below it
@@ -324,7 +324,7 @@ def test_curl_auto_spectrum_is_the_curl_n0(moderate_noise_maps, label):
     result, _ = moderate_noise_maps
     edges = np.array([20, 50, 100, 200, 300, 450, 600])
     n0 = result.noise.n0[label]["curl"]
-    ratio = weighted_sums(cross_spectrum(normalised(result, label, "curl")), edges) / weighted_sums(n0, edges)
+    ratio = weighted_sums(cross_spectrum(normalized(result, label, "curl")), edges) / weighted_sums(n0, edges)
     sigma = chi2_sigma(n0, edges)
     # lensing makes no curl, so the curl auto is N0 + the lensing-induced curl N1 (positive; from memory up to
     # ~10% of N0 for EB-based estimators at these noise levels, a few percent for the others); one simulation's N0
@@ -368,7 +368,7 @@ MC_EDGES = np.array([10, 30, 60, 100, 200, 400, 700, 1025])
 @pytest.mark.parametrize("label", ["TT", "TE", "EE", "TB", "EB", "MV"])
 def test_monte_carlo_n0_matches_the_analytic_n0(gaussian_runs, label, component):
     runs, _, noise = gaussian_runs
-    mean_auto = np.mean([cross_spectrum(normalised(r, label, component)) for r in runs], axis=0)
+    mean_auto = np.mean([cross_spectrum(normalized(r, label, component)) for r in runs], axis=0)
     n0 = noise.n0[label][component]
     ratio = weighted_sums(mean_auto, MC_EDGES) / weighted_sums(n0, MC_EDGES)
     sigma = chi2_sigma(n0, MC_EDGES, len(runs))
@@ -386,7 +386,7 @@ def test_mixed_pairs_of_independent_skies_keep_one_wick_contraction(gaussian_run
     # φ̂[a,b] of independent a, b keeps only the (a,a)(b,b) contraction of the two in N0 (OH03 §III; the
     # building block of realization-dependent N0, Namikawa, Hanson & Takahashi 2013): for TT and EE the two
     # contractions are equal (N0/2); for TB and EB the other one vanishes (C^TB = C^EB = 0), so N0
-    mean_auto = np.mean([cross_spectrum(normalised(r, label)) for r in mixed], axis=0)
+    mean_auto = np.mean([cross_spectrum(normalized(r, label)) for r in mixed], axis=0)
     n0 = noise.n0[label]["gradient"]
     ratio = weighted_sums(mean_auto, MC_EDGES) / weighted_sums(n0, MC_EDGES)
     sigma = chi2_sigma(n0, MC_EDGES, len(mixed))
@@ -426,7 +426,7 @@ def masked_runs():
 def test_masked_sky_mean_field_dominates_low_L_and_its_subtraction_removes_it(masked_runs, label):
     runs, inputs, mask = masked_runs
     moments = lensrec.sky_fraction_moments(mask)
-    estimates = [normalised(r, label) for r in runs]
+    estimates = [normalized(r, label) for r in runs]
     mf = mean_field(runs[1:]) if label == "MV" else None
     mean = mf.phi_alm if mf is not None else np.mean(estimates[1:], axis=0)
     n_mf = len(runs) - 1
@@ -439,7 +439,7 @@ def test_masked_sky_mean_field_dominates_low_L_and_its_subtraction_removes_it(ma
     before = weighted_sums(cross_spectrum(estimates[0]), low) / weighted_sums(expected, low)
     after = weighted_sums(cross_spectrum(estimates[0] - mean), low) / weighted_sums(expected * (1 + 1 / n_mf), low)
     # chi-squared of the 117 modes at L = 2 … 10 on a fraction f_sky = <w2>^2/<w4> of the sky (Hivon et al. 2002)
-    sigma = np.sqrt(2.0 / (weighted_sums(np.ones_like(theory), low) * moments["fsky_spectra"]))[0]
+    sigma = np.sqrt(2.0 / (weighted_sums(np.ones_like(theory), low) * moments["sky_fraction_spectra"]))[0]
     assert before[0] > 1.0 + 5 * sigma, (label, before, sigma)  # the mask's mean-field dominates the low-L power
     # allowance +5% for N1 (positive, a few percent of C at low L, from memory)
     assert -3 * sigma <= after[0] - 1.0 <= 3 * sigma + 0.05, (label, after, sigma)
@@ -450,11 +450,11 @@ def test_masked_sky_mean_field_dominates_low_L_and_its_subtraction_removes_it(ma
     ratio = binned_ratios(cross, cross_spectrum(inputs[0]), edges)
     w = 2 * np.arange(theory.size) + 1.0
     n0_total = n0 * (1.0 + 1.0 / n_mf)
-    # cross-spectrum of a masked estimate with the full-sky input, divided by the full-sky realisation: the
+    # cross-spectrum of a masked estimate with the full-sky input, divided by the full-sky realization: the
     # masked part of φ is not cancelled, so σ² = Σ w (2C + N0') C / ((Σ w C)² f_sky) (Knox 1995 for a cross
     # spectrum over f_sky = <w²>²/<w⁴>). Allowance 3%: the isotropic filter's response near the taper and the
     # pseudo-C_l approximation for a spectrum falling like L^-4 across the mask kernel (Hivon et al. 2002)
-    sigma = np.sqrt(bin_sums(w * (2 * theory + n0_total) * theory, edges) / moments["fsky_spectra"])
+    sigma = np.sqrt(bin_sums(w * (2 * theory + n0_total) * theory, edges) / moments["sky_fraction_spectra"])
     sigma /= bin_sums(w * theory, edges)
     for k in range(len(edges) - 1):
         assert abs(ratio[k] - 1.0) <= 3 * sigma[k] + 0.03, (label, edges[k], ratio[k], sigma[k])
@@ -468,7 +468,7 @@ def test_b_free_combination_has_unit_response_on_a_simulation():
     experiment = lensrec.Experiment(**{**MODERATE, "ell_max_temperature": 512, "ell_max_polarization": 512})
     sky = lensrec.simulate_sky(experiment, nside=256, lmax=512, lmax_margin=300, seed=78, nthreads=2)
     result = reconstruct(sky.maps, experiment, estimator="TT+TE+EE", lmax_L=300, nthreads=2)
-    assert result.estimator == "TT+TE+EE" and set(result.unnormalised) == {"TT", "TE", "EE"}
+    assert result.estimator == "TT+TE+EE" and set(result.unnormalized) == {"TT", "TE", "EE"}
     phi = harmonics.truncate_alm(sky.phi_alm, 300, sky.lmax_unlensed)
     edges = np.array([20, 50, 100, 150, 200, 300])
     n0 = result.n0["gradient"]

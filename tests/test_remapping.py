@@ -101,7 +101,7 @@ def test_rms_deflection(fiducial):
     maps = remapping.deflection_maps(phi, nside, lmax, nthreads=2)
     # 4 sigma of sampling variance plus 0.1% for the HEALPix pixel average of a field band-limited at 2 lmax
     assert abs(maps.rms_arcmin**2 - theory**2) < 4 * sigma_d2 + 1e-3 * theory**2
-    # kappa = L(L+1) phi / 2 (CONVENTIONS.md): its map mean square is the kappa spectrum sum
+    # kappa = L(L+1) phi / 2 (docs/conventions.md): its map mean square is the kappa spectrum sum
     kappa_theory = np.sum((2 * ell + 1) / (4 * np.pi) * (ell * (ell + 1) / 2) ** 2 * healpy.alm2cl(phi))
     assert abs(np.mean(maps.kappa**2) / kappa_theory - 1) < 1e-2
 

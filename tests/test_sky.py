@@ -129,7 +129,7 @@ def test_zero_phi_reproduces_the_unlensed_maps(fiducial):
 
 # ----------------------------------------------------------------------------------------- Gaussian draws
 def test_gaussian_cmb_alm_has_the_input_spectra(fiducial):
-    # unit-normalised draws with the per-l Cholesky factor: <|a_lm|^2> = C_l and <T E*> = C^TE, 4 sigma
+    # unit-normalized draws with the per-l Cholesky factor: <|a_lm|^2> = C_l and <T E*> = C^TE, 4 sigma
     lmax = 600
     cls = {key: fiducial.unlensed[key][: lmax + 1] for key in ("TT", "EE", "BB", "TE")}
     cls["BB"] = 0.01 * cls["EE"]
@@ -179,7 +179,7 @@ def test_white_noise_pixel_level():
 
 def test_one_over_f_noise_spectrum():
     # harmonic noise with the experiment's (beam-convolved) N_l including 1 + (l/l_knee)^alpha
-    # (Knox 1995 form, CONVENTIONS.md): binned power within 4 sigma of cosmic variance plus 1% for the
+    # (Knox 1995 form, docs/conventions.md): binned power within 4 sigma of cosmic variance plus 1% for the
     # HEALPix analysis (map2alm with 3 iterations at lmax = 2 nside)
     experiment = lensrec.Experiment(
         name="knee",

@@ -7,7 +7,7 @@ import pytest
 
 from lensrec.suite_runner import SuiteCache, gaussian_field_task, run_suite
 
-SETTINGS = {"seed": 7, "nside": 32, "lmax": 64, "threads_per_task": 1, "n_sims": 6}
+SETTINGS = {"seed": 7, "nside": 32, "lmax": 64, "nthreads": 1, "n_sims": 6}
 
 
 def _arrays(run):
@@ -23,9 +23,7 @@ def _same(a, b):
 
 def test_serial_processes_and_dask_give_bit_identical_results(tmp_path):
     serial = run_suite(SETTINGS, tmp_path / "serial", gaussian_field_task, progress=False)
-    pool = run_suite(
-        SETTINGS, tmp_path / "pool", gaussian_field_task, executor="processes", max_workers=2, progress=False
-    )
+    pool = run_suite(SETTINGS, tmp_path / "pool", gaussian_field_task, executor="processes", workers=2, progress=False)
     distributed = pytest.importorskip("distributed")
     with (
         distributed.LocalCluster(

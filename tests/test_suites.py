@@ -27,8 +27,8 @@ from lensrec.suites import (
     run_lensing_suite,
 )
 
-PHYSICS = dict(experiment="deep_highland", nside=256, lmax=512, lmax_L=400, threads_per_task=1)
-POOL = dict(executor="processes", max_workers=2, progress=False)  # 2 workers of 1 thread: fastest on 2 cores
+PHYSICS = dict(experiment="deep_highland", nside=256, lmax=512, lmax_L=400, nthreads=1)
+POOL = dict(executor="processes", workers=2, progress=False)  # 2 workers of 1 thread: fastest on 2 cores
 TINY = dict(
     experiment="deep_highland",
     nside=32,
@@ -39,7 +39,7 @@ TINY = dict(
     seed=5,
     lmax_margin=32,
     n1=True,
-    threads_per_task=1,
+    nthreads=1,
 )
 
 
@@ -106,13 +106,13 @@ def test_rdn0_and_mc_n0_of_gaussian_skies_match_the_analytic_n0(gaussian_suite, 
     # plus a 0.5% systematic allowance (HEALPix analysis of maps at lmax = 2 nside, 3 Jacobi iterations). The
     # errors come from 5 pairs, so chi2 carries a Student-t inflation: 35 for 8 bins is PTE ~ 3e-5 for chi2_8
     # and ~ 1e-3 after it. A 5% error in the N0 scale gives chi2 > 60 (errors are 0.2-0.5% at L > 100).
-    # RDN0 follows the data's realised spectra to first order (that is its purpose), and N0 is quadratic in
+    # RDN0 follows the data's realized spectra to first order (that is its purpose), and N0 is quadratic in
     # the legs' power, so it may differ from the ensemble N0 by up to twice the data's largest fractional power
     # offset (measured from the data, ~0.5-0.8% here); that is added as a further systematic allowance.
     result = lensing_bandpowers(gaussian_suite, estimator, component)
     analytic = result.terms["analytic_n0"]
-    realised = 2.0 * _realised_power_offset(gaussian_suite, estimator)
-    for name, allowance in (("mc_n0", 0.005), ("rdn0", np.hypot(0.005, realised))):
+    realized = 2.0 * _realised_power_offset(gaussian_suite, estimator)
+    for name, allowance in (("mc_n0", 0.005), ("rdn0", np.hypot(0.005, realized))):
         sigma = np.hypot(result.term_errors[name], allowance * analytic)
         chi2 = float(np.sum(((result.terms[name] - analytic) / sigma) ** 2))
         assert chi2 < 35, (name, (result.terms[name] / analytic).round(4).tolist())
@@ -158,12 +158,12 @@ def test_bandpowers_recover_the_input_lensing_spectrum(lensed_suite):
 
 
 @pytest.mark.slow
-def test_the_analytic_normalisation_needs_only_a_small_correction_on_the_full_sky(lensed_suite):
+def test_the_analytic_normalization_needs_only_a_small_correction_on_the_full_sky(lensed_suite):
     # On the full sky with lensed-spectrum weights the analytic response is close to the true one: 1/rho^2
     # within 5% of one (from memory: the non-perturbative response differs from the first-order one at the
     # percent level below L ~ 500 for lensed weights), plus 4 sigma of its Monte-Carlo error.
     result = lensing_bandpowers(lensed_suite)
-    assert np.all(np.abs(result.normalisation - 1.0) < 0.05 + 4 * result.normalisation_error)
+    assert np.all(np.abs(result.normalization - 1.0) < 0.05 + 4 * result.normalization_error)
 
 
 @pytest.mark.slow
@@ -229,7 +229,7 @@ def test_n1_at_high_L_for_a_low_noise_polarization_survey():
         seed=21,
         n1=True,
         lmax_margin=500,
-        threads_per_task=2,
+        nthreads=2,
     )
     binning = Binning([300, 500, 700, 1001])
     shared, independent = [], []
@@ -253,7 +253,7 @@ def tiny_serial(tmp_path_factory):
 
 def test_serial_processes_and_dask_suites_are_bit_identical(tiny_serial, tmp_path):
     settings = lensing_suite_settings(**TINY)
-    pool = run_lensing_suite(settings, tmp_path / "pool", executor="processes", max_workers=2, progress=False)
+    pool = run_lensing_suite(settings, tmp_path / "pool", executor="processes", workers=2, progress=False)
     _assert_identical(_stored(tiny_serial), _stored(pool))
     distributed = pytest.importorskip("distributed")
     with (
@@ -393,7 +393,7 @@ def test_a_masked_suite_with_user_maps_as_data(tmp_path):
     settings = lensing_suite_settings(
         **dict(TINY, n1=False, estimators="EB"), mask=str(tmp_path / "mask.fits"), data_maps=str(tmp_path / "data.fits")
     )
-    assert settings["data"]["source"] == "maps" and settings["mask_moments"]["fsky"] < 0.5
+    assert settings["data"]["source"] == "maps" and settings["mask_moments"]["sky_fraction"] < 0.5
     suite = run_lensing_suite(settings, tmp_path / "suite", progress=False)
     assert "phi_input" not in suite.data() and suite.complete
     result = lensing_bandpowers(suite, binning=Binning([8, 20, 49]))
@@ -420,8 +420,8 @@ def test_suites_reconstruct_the_b_free_combination_without_b_modes(tiny_serial):
         assert np.array_equal(full, cut) is unchanged, label
 
 
-def test_the_analytic_n0_of_a_suite_is_the_normalisation_its_reconstructions_use():
-    # suite_analytic_n0 computes one estimator alone; it must equal the N0 of the normalisation the suite's
+def test_the_analytic_n0_of_a_suite_is_the_normalization_its_reconstructions_use():
+    # suite_analytic_n0 computes one estimator alone; it must equal the N0 of the normalization the suite's
     # tasks build (experiment cut at the suite's lmax), which is what the bias budget shows beside RDN0
     from lensrec.suite_tasks import _context, suite_analytic_n0
 

@@ -43,8 +43,10 @@ def test_sigma_r_scales_as_one_over_root_sky_fraction(fiducial):
     lensing, tensor = fiducial.lensed["BB"][:301], fiducial.tensor["BB"][:301]
     noise = _white_noise(3.0, 300)
     full = sigma_r(lensing, noise, tensor, 1.0, 2, 300)
-    for fsky in (0.5, 0.1, 0.01):
-        assert sigma_r(lensing, noise, tensor, fsky, 2, 300) == pytest.approx(full / math.sqrt(fsky), rel=1e-12)
+    for sky_fraction in (0.5, 0.1, 0.01):
+        assert sigma_r(lensing, noise, tensor, sky_fraction, 2, 300) == pytest.approx(
+            full / math.sqrt(sky_fraction), rel=1e-12
+        )
 
 
 def test_sigma_r_reaches_the_cosmic_variance_limit_without_lensing_or_noise(fiducial):
@@ -78,28 +80,28 @@ def test_lower_residual_lensing_lowers_sigma_r(fiducial):
 @pytest.mark.parametrize(
     "change, error, match",
     [
-        ({"bb_lensing": np.ones(100)}, ValueError, "bb_lensing has 100 entries"),
-        ({"bb_noise": np.full(301, np.nan)}, ValueError, "bb_noise contains NaN"),
-        ({"bb_lensing": np.full(301, np.inf)}, ValueError, "bb_lensing contains 301 non-finite"),
-        ({"bb_tensor_r1": -np.ones(301)}, ValueError, "bb_tensor_r1 must be non-negative"),
-        ({"bb_lensing": np.ones((2, 301))}, ValueError, "bb_lensing must have 1 dimension"),
-        ({"bb_noise": "flat"}, TypeError, "bb_noise must be a numeric array"),
+        ({"lensed_bb": np.ones(100)}, ValueError, "lensed_bb has 100 entries"),
+        ({"noise_bb": np.full(301, np.nan)}, ValueError, "noise_bb contains NaN"),
+        ({"lensed_bb": np.full(301, np.inf)}, ValueError, "lensed_bb contains 301 non-finite"),
+        ({"tensor_bb": -np.ones(301)}, ValueError, "tensor_bb must be non-negative"),
+        ({"lensed_bb": np.ones((2, 301))}, ValueError, "lensed_bb must have 1 dimension"),
+        ({"noise_bb": "flat"}, TypeError, "noise_bb must be a numeric array"),
         ({"sky_fraction": 0.0}, ValueError, "sky_fraction must be > 0"),
         ({"sky_fraction": 1.5}, ValueError, "sky_fraction must be <= 1"),
         ({"ell_min": 1}, ValueError, "ell_min must be >= 2"),
         ({"ell_min": 200, "ell_max": 100}, ValueError, "inverted"),
         ({"ell_max": 2.5}, TypeError, "ell_max must be an integer"),
         ({"r": -0.1}, ValueError, "r must be >= 0"),
-        ({"bb_lensing": np.zeros(301), "bb_noise": np.zeros(301)}, ValueError, "degenerate"),
-        ({"bb_noise": np.full(301, np.inf)}, ValueError, "no multipole"),
+        ({"lensed_bb": np.zeros(301), "noise_bb": np.zeros(301)}, ValueError, "degenerate"),
+        ({"noise_bb": np.full(301, np.inf)}, ValueError, "no multipole"),
     ],
 )
 def test_sigma_r_refuses_bad_input(change, error, match):
     ell = np.arange(301)
     arguments = {
-        "bb_lensing": np.full(301, 1e-6),
-        "bb_noise": np.full(301, 1e-6),
-        "bb_tensor_r1": np.where(ell >= 2, 1e-4, 0.0),
+        "lensed_bb": np.full(301, 1e-6),
+        "noise_bb": np.full(301, 1e-6),
+        "tensor_bb": np.where(ell >= 2, 1e-4, 0.0),
         "sky_fraction": 0.5,
         "ell_min": 2,
         "ell_max": 300,
@@ -246,9 +248,9 @@ def test_delensing_forecast_refuses_bad_input(fiducial, arguments, error, match)
 def _fisher_inputs(fiducial, lmax=300):
     ell = np.arange(lmax + 1)
     return {
-        "bb_lensing": np.array(fiducial.lensed["BB"][: lmax + 1]),
-        "bb_noise": _white_noise(2.0, lmax),
-        "bb_tensor_r1": np.array(fiducial.tensor["BB"][: lmax + 1]),
+        "lensed_bb": np.array(fiducial.lensed["BB"][: lmax + 1]),
+        "noise_bb": _white_noise(2.0, lmax),
+        "tensor_bb": np.array(fiducial.tensor["BB"][: lmax + 1]),
         "sky_fraction": 0.4,
         "ell_min": 20,
         "ell_max": lmax,
@@ -277,11 +279,11 @@ def test_fisher_matches_a_direct_two_parameter_sum(fiducial):
     inputs.pop("foreground_bb")
     f_rr = f_ra = f_aa = 0.0
     for ell in range(20, 301):
-        total = 0.01 * inputs["bb_tensor_r1"][ell] + inputs["bb_lensing"][ell] + inputs["bb_noise"][ell]
+        total = 0.01 * inputs["tensor_bb"][ell] + inputs["lensed_bb"][ell] + inputs["noise_bb"][ell]
         modes = 0.4 * (2 * ell + 1) / 2.0 / total**2
-        f_rr += modes * inputs["bb_tensor_r1"][ell] ** 2
-        f_ra += modes * inputs["bb_tensor_r1"][ell] * inputs["bb_lensing"][ell]
-        f_aa += modes * inputs["bb_lensing"][ell] ** 2
+        f_rr += modes * inputs["tensor_bb"][ell] ** 2
+        f_ra += modes * inputs["tensor_bb"][ell] * inputs["lensed_bb"][ell]
+        f_aa += modes * inputs["lensed_bb"][ell] ** 2
     marginalized = math.sqrt(f_aa / (f_rr * f_aa - f_ra**2))
     result = tensor_fisher(**inputs)
     assert result.fisher[0, 1] == pytest.approx(f_ra, rel=1e-12)  # float rounding only
@@ -298,10 +300,10 @@ def test_marginalizing_never_lowers_sigma_r(fiducial):
     inputs = _fisher_inputs(fiducial)
     foreground = inputs.pop("foreground_bb")
     for scale in (0.0, 0.3, 1.0):
-        lensing = scale * inputs["bb_lensing"]
-        three = tensor_fisher(**{**inputs, "bb_lensing": lensing}, foreground_bb=foreground)
+        lensing = scale * inputs["lensed_bb"]
+        three = tensor_fisher(**{**inputs, "lensed_bb": lensing}, foreground_bb=foreground)
         # the same variance with the foreground power counted as fixed noise: r and A_lens only
-        two = tensor_fisher(**{**inputs, "bb_lensing": lensing, "bb_noise": inputs["bb_noise"] + foreground})
+        two = tensor_fisher(**{**inputs, "lensed_bb": lensing, "noise_bb": inputs["noise_bb"] + foreground})
         assert three.sigma_r_conditional == pytest.approx(two.sigma_r_conditional, rel=1e-12)
         assert three.sigma_r_marginalized >= two.sigma_r_marginalized >= two.sigma_r_conditional
     assert three.parameters == ("r", "alens", "foreground")
@@ -312,7 +314,7 @@ def test_a_zero_residual_amplitude_is_held_fixed(fiducial):
     # perfect delensing leaves no lensing B power: its amplitude has no derivative and cannot move r
     inputs = _fisher_inputs(fiducial)
     inputs.pop("foreground_bb")
-    inputs["bb_lensing"] = np.zeros(301)
+    inputs["lensed_bb"] = np.zeros(301)
     result = tensor_fisher(**inputs)
     assert result.parameters == ("r",) and "alens is held fixed" in result.notes[0]
     assert result.sigma_r_marginalized == pytest.approx(sigma_r(**inputs), rel=1e-12)
@@ -320,10 +322,10 @@ def test_a_zero_residual_amplitude_is_held_fixed(fiducial):
 
 def test_proportional_nuisance_spectra_are_refused(fiducial):
     inputs = _fisher_inputs(fiducial)
-    inputs["foreground_bb"] = 2.0 * inputs["bb_lensing"]
+    inputs["foreground_bb"] = 2.0 * inputs["lensed_bb"]
     with pytest.raises(ValueError, match="singular"):
         tensor_fisher(**inputs)
-    inputs["foreground_bb"] = -inputs["bb_lensing"]
+    inputs["foreground_bb"] = -inputs["lensed_bb"]
     with pytest.raises(ValueError, match="foreground_bb must be non-negative"):
         tensor_fisher(**inputs)
 

@@ -52,7 +52,7 @@ def test_snr_table_matches_the_library(app):
     for label, value in expected.items():
         assert section.snr[label] == pytest.approx(value, rel=1e-12)
         assert f"{value:.1f}" in section.table.value
-    assert "f_sky = 0.5" in section.table.value
+    assert "sky fraction = 0.5" in section.table.value
 
 
 def test_units_and_component_redraw_without_recomputing(app):

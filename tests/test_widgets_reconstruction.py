@@ -58,7 +58,7 @@ def test_maps_are_the_input_and_the_wiener_filtered_reconstruction(app, expected
     np.testing.assert_allclose(drawn["kappa_input"], _mollweide(kappa_input), rtol=1e-12, atol=1e-15)
     np.testing.assert_allclose(drawn["kappa_wf"], _mollweide(kappa_wf), rtol=1e-9, atol=1e-12)
     clim_input, clim_wf = drawn["clim"]
-    assert clim_input == clim_wf  # one colour scale for the comparison
+    assert clim_input == clim_wf  # one color scale for the comparison
 
 
 def test_spectra_are_the_library_spectra(app, expected):
@@ -77,7 +77,7 @@ def test_spectra_are_the_library_spectra(app, expected):
 
 
 def test_reconstruction_has_unit_response_to_the_input(app):
-    # A normalised quadratic estimator has unit response: <C_L^(φ̂φ)> = C_L^φφ (Hu & Okamoto 2002, ApJ 574, 566).
+    # A normalized quadratic estimator has unit response: <C_L^(φ̂φ)> = C_L^φφ (Hu & Okamoto 2002, ApJ 574, 566).
     # Per L the ratio scatters with variance ≈ (1 + N0/C)/(2L+1) (Gaussian fields, common practice); the
     # inverse-variance mean over 10 ≤ L ≤ lmax must be within 4σ of 1, plus 10% for the higher-order and
     # N1-like response changes at this low band limit (from memory).

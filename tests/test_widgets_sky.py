@@ -63,7 +63,7 @@ def test_temperature_view_is_healpy_projection_of_the_observed_map(simulated):
     drawn = np.asarray(section.image_all.get_array(), dtype=float)
     np.testing.assert_array_equal(np.isnan(drawn), np.isnan(_mollweide(simulated.state.sky.maps[0], 32)))
     np.testing.assert_allclose(drawn, _mollweide(simulated.state.sky.maps[0], 32), equal_nan=True, rtol=1e-15)
-    # one colour scale for the all-sky and the zoomed view
+    # one color scale for the all-sky and the zoomed view
     assert section.image_all.get_clim() == section.image_zoom.get_clim()
     low, high = section.image_all.get_clim()
     assert high > 0 and low == -high
@@ -87,7 +87,7 @@ def test_deflection_view_is_positive_with_a_realistic_rms(simulated):
     low, high = section.image_all.get_clim()
     assert low == 0.0 and high > 0
     # rms lensing deflection ≈ 2.5 arcmin (common practice); at lmax 64 most of its power (L ≲ 100) is kept,
-    # and one realisation scatters by a few per cent: accept 1.5–3 arcmin
+    # and one realization scatters by a few per cent: accept 1.5–3 arcmin
     assert 1.5 < section.deflection_rms_arcmin < 3.0
 
 

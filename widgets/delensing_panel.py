@@ -32,7 +32,7 @@ class DelensingSection(Section):
     guide = (
         "Forecast: the lensing B modes left after subtracting a template built from the lensing reconstruction "
         "of the chosen estimator (its N0 from the Estimator noise tab) and the experiment's E modes. "
-        "Efficiency = 1 − C_ℓ^res / C_ℓ^lens. σ(r) is a BB-only Fisher forecast at the experiment's f_sky."
+        "Efficiency = 1 − C_ℓ^res / C_ℓ^lens. σ(r) is a BB-only Fisher forecast at the experiment's sky fraction."
     )
 
     def __init__(self, state, nthreads=None):
@@ -306,7 +306,7 @@ class DelensingSection(Section):
             f"<tr><td style='padding:2px 8px'>σ(r), delensed</td><td><b>{forecast.sigma_r_delensed:.3g}</b></td></tr>"
             f"<tr><td style='padding:2px 8px'>improvement</td><td>{forecast.improvement:.2f}×</td></tr>"
             f"<tr><td style='padding:2px 8px'>ℓ range</td><td>{forecast.ell_min}–{forecast.ell_max}</td></tr>"
-            f"<tr><td style='padding:2px 8px'>f_sky, r</td><td>{forecast.sky_fraction:g}, {forecast.r:g}</td></tr>"
+            f"<tr><td style='padding:2px 8px'>sky fraction, r</td><td>{forecast.sky_fraction:g}, {forecast.r:g}</td></tr>"
             "</table>"
             + (
                 "<div style='margin:0 1em;max-width:18em;color:#9a7d0a;font-size:90%'>⚠ "

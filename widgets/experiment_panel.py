@@ -258,5 +258,5 @@ def _summary(experiment: lensrec.Experiment) -> str:
         f"{experiment.name}: Δ_T = {experiment.noise_temperature:.3g}, Δ_P = {experiment.noise_polarization:.3g} "
         f"µK-arcmin, beam {experiment.beam_fwhm:.3g}′, ℓ {experiment.ell_min}–"
         f"{max(experiment.ell_max_temperature, experiment.ell_max_polarization)}, "
-        f"f_sky {experiment.sky_fraction:.2g}"
+        f"sky fraction {experiment.sky_fraction:.2g}"
     )

@@ -32,9 +32,9 @@ class EstimatorNoiseSection(Section):
     title = "Estimator noise"
     name = "noise"
     guide = (
-        "Gaussian reconstruction noise N0 of each quadratic estimator (full sky, normalised to unit response) "
+        "Gaussian reconstruction noise N0 of each quadratic estimator (full sky, normalized to unit response) "
         "against the lensing signal. The curl component is a null test: its signal is zero, C_L^φφ is drawn "
-        "only for scale. Lensing S/N: √Σ f_sky (2L+1)/2 [C_L^φφ/(C_L^φφ+N0_L)]² (gradient, L ≥ 2). "
+        "only for scale. Lensing S/N: √Σ f_sky (2L+1)/2 [C_L^φφ/(C_L^φφ+N0_L)]² (gradient, L ≥ 2; f_sky: sky fraction). "
         "'quadratic + iterative' adds the converged noise of the iterative estimator (EB, MV; dashed): the "
         "fixed point of delensing with the residual lensing power and estimating again (Smith et al. 2012)."
     )
@@ -235,7 +235,7 @@ class EstimatorNoiseSection(Section):
             "<tr><th style='padding:2px 10px;text-align:left'>estimator</th>"
             "<th style='padding:2px 10px;text-align:right'>lensing S/N</th></tr>"
             f"{rows}</table><div style='margin:0 1em;color:#515a5a;font-size:90%'>gradient, "
-            f"L = 2–{int(result.L[-1])},<br>f_sky = {result.experiment.sky_fraction:g} "
+            f"L = 2–{int(result.L[-1])},<br>sky fraction = {result.experiment.sky_fraction:g} "
             f"({html.escape(result.experiment.name)})</div>"
         )
 

@@ -39,7 +39,7 @@ WIDE = (7.6, 4.0)
 SQUARE = (5.2, 4.0)
 PAIR = (9.6, 3.6)
 
-# Our palette: muted, distinguishable in print and for common colour-vision deficiencies.
+# Our palette: muted, distinguishable in print and for common color-vision deficiencies.
 COLORS = {
     "TT": "#1b4f72",
     "EE": "#1e8449",
@@ -69,15 +69,10 @@ ESTIMATOR_COLORS = {
 
 
 def estimator_color(label: str) -> str:
-    """The line color of an estimator: its entry in ESTIMATOR_COLORS, else one from matplotlib's tab10 cycle."""
-    if label in ESTIMATOR_COLORS:
-        return ESTIMATOR_COLORS[label]
-    from matplotlib import colormaps, colors
+    """The line color of an estimator in the workbench (a tab10 color for labels without an entry)."""
+    from lensrec.report import estimator_color as color
 
-    from lensrec.labels import ESTIMATORS
-
-    index = ESTIMATORS.index(label) if label in ESTIMATORS else 0
-    return colors.to_hex(colormaps["tab10"](index % 10))
+    return color(label, ESTIMATOR_COLORS)
 
 
 MAP_CMAP = "RdBu_r"
@@ -109,7 +104,7 @@ def finite_or_nan(values) -> np.ndarray:
 
 
 def symmetric_limit(*arrays, percentile: float = 99.5) -> float:
-    """One colour limit ± v shared by several maps: the given percentile of |value| over all of them."""
+    """One color limit ± v shared by several maps: the given percentile of |value| over all of them."""
     values = [np.abs(np.asarray(a, dtype=float)[np.isfinite(a)]) for a in arrays]
     values = [v for v in values if v.size]
     if not values:

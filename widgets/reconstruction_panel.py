@@ -1,7 +1,7 @@
 """Section 4 – Reconstruction: the lensing convergence reconstructed from the simulated sky, against the input.
 
 Maps: the input κ and the Wiener-filtered reconstruction κ^WF (C_L^φφ/(C_L^φφ + N0_L) φ̂), both band-limited
-at lmax_L, in Mollweide views on one colour scale. Spectra: the cross-spectrum of the reconstruction with the
+at lmax_L, in Mollweide views on one color scale. Spectra: the cross-spectrum of the reconstruction with the
 input divided by the input's auto-spectrum (≈ 1 for a unit-response estimator), and the reconstruction's
 auto-spectrum minus the analytic N0 against the theory C_L^φφ, with N0 drawn; on a masked sky the pseudo-
 spectra are divided by the mask moments of lensrec.power (⟨w²⟩ for the cross, ⟨w⁴⟩ for the auto).
@@ -42,17 +42,17 @@ BANDS = 16
 
 
 def band_average(values, L_min: int, L_max: int, bands: int = BANDS, scale=None):
-    """(band centres, (2L+1)-weighted band means of ``scale`` × ``values``) over [L_min, L_max], by
+    """(band centers, (2L+1)-weighted band means of ``scale`` × ``values``) over [L_min, L_max], by
     :func:`lensrec.power.bin_spectrum` with non-finite entries left out and empty bands dropped.
 
-    A display aid: per-L spectra of one realisation scatter by √(2/(2L+1)); bands make the trend visible.
+    A display aid: per-L spectra of one realization scatter by √(2/(2L+1)); bands make the trend visible.
     """
     values = np.asarray(values, dtype=float)[: L_max + 1]
     edges = np.unique(np.linspace(L_min, L_max + 1, bands + 1).astype(int))
-    centres, means = power.bin_spectrum(np.where(np.isfinite(values), values, np.nan), edges, weights="modes",
+    centers, means = power.bin_spectrum(np.where(np.isfinite(values), values, np.nan), edges, weights="modes",
                                         scale=scale, skip_nan=True)  # fmt: skip
     keep = np.isfinite(means)
-    return centres[keep], means[keep]
+    return centers[keep], means[keep]
 
 
 class ReconstructionSection(Section):
@@ -61,7 +61,7 @@ class ReconstructionSection(Section):
     guide = (
         "Reconstruct φ from the sky of the Sky tab with a quadratic estimator, filtered with the experiment the "
         "sky was simulated with, up to the sky's lmax. Left: the input κ; right: the Wiener-filtered "
-        "reconstruction on the same colour scale. Spectra are band-averaged for display; on a masked sky they are "
+        "reconstruction on the same color scale. Spectra are band-averaged for display; on a masked sky they are "
         "divided by the mask moments ⟨w²⟩ (cross) and ⟨w⁴⟩ (auto)."
     )
 
@@ -278,7 +278,7 @@ class ReconstructionSection(Section):
             image = np.array(projector.projmap(values, vec2pix), dtype=float)
             image[~np.isfinite(image)] = np.nan
             self.images[key].set_data(image)
-            self.images[key].set_clim(-limit, limit)  # one colour scale for the comparison
+            self.images[key].set_clim(-limit, limit)  # one color scale for the comparison
             self.map_titles[key].set_text(f"{title}, L ≤ {result.lmax_L}")
         self.maps_view.draw()
 
@@ -291,9 +291,9 @@ class ReconstructionSection(Section):
         units = "phi"
         self.theory_line.set_data(L[shown], phi_plot_units(products["theory"], units)[shown])
         self.n0_line.set_data(L[shown], phi_plot_units(products["n0"], units)[shown])
-        centres, means = products["auto_band"]  # binned [L(L+1)]^2 C_L / 2pi, like the theory line
-        self.auto_band.set_data(centres, np.where(means > 0, means, np.nan))
-        self.auto_band_negative.set_data(centres, np.where(means < 0, -means, np.nan))
+        centers, means = products["auto_band"]  # binned [L(L+1)]^2 C_L / 2pi, like the theory line
+        self.auto_band.set_data(centers, np.where(means > 0, means, np.nan))
+        self.auto_band_negative.set_data(centers, np.where(means < 0, -means, np.nan))
         set_log_range(self.ax_auto, 2, result.lmax_L)
         top = np.nanmax(phi_plot_units(products["theory"], units)[shown])
         self.ax_auto.set_ylim(top / 300.0, top * 30.0)

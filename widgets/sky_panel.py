@@ -1,7 +1,7 @@
 """Section 3 – Sky: simulate one lensed, noisy, masked sky and look at its fields.
 
 The viewer shows one field at a time in an all-sky Mollweide view and a zoomed gnomonic view (healpy's
-projector classes give the arrays; matplotlib's imshow draws them), both on one colour scale.
+projector classes give the arrays; matplotlib's imshow draws them), both on one color scale.
 T, Q, U are the observed maps (beam, noise, mask); E and B are the lensed signal before beam and noise;
 φ, κ and |d| are the input lensing fields.
 """
@@ -68,8 +68,8 @@ class SkySection(Section):
         self.noise = widgets.Checkbox(value=True, description="add instrument noise", indent=False)
         self.mask = labelled(widgets.Dropdown(options=list(MASKS.items()), value="none", description="mask"), "18em")
         self.b_min = labelled(widgets.FloatText(value=20.0, description="cut |b| < (deg)"), "18em")
-        self.cap_lon = labelled(widgets.FloatText(value=0.0, description="cap centre lon (deg)"), "18em")
-        self.cap_lat = labelled(widgets.FloatText(value=-60.0, description="cap centre lat (deg)"), "18em")
+        self.cap_lon = labelled(widgets.FloatText(value=0.0, description="cap center lon (deg)"), "18em")
+        self.cap_lat = labelled(widgets.FloatText(value=-60.0, description="cap center lat (deg)"), "18em")
         self.cap_radius = labelled(widgets.FloatText(value=30.0, description="cap radius (deg)"), "18em")
         self.taper = labelled(widgets.FloatText(value=0.0, description="taper width (deg)"), "18em")
         self.simulate_button = widgets.Button(description="Simulate", icon="play", button_style="primary")
@@ -255,7 +255,7 @@ class SkySection(Section):
         """Projected arrays for field ``key`` at the current zoom settings.
 
         Returns a dict with ``all_sky`` (Mollweide) and ``zoom`` (gnomonic) arrays (NaN where nothing is
-        drawn), ``all_sky_unobserved`` / ``zoom_unobserved`` boolean arrays of masked pixels, the shared colour
+        drawn), ``all_sky_unobserved`` / ``zoom_unobserved`` boolean arrays of masked pixels, the shared color
         ``limits`` and the zoom window's ``outline`` (x, y) in Mollweide coordinates.
         """
         values = self.field_map(key)
@@ -298,7 +298,7 @@ class SkySection(Section):
         self.image_zoom.set_extent((-half, half, -half, half))
         self.shade_zoom.set_extent((-half, half, -half, half))
         self.outline.set_data(*projected["outline"])
-        self.outline.set_color("#17202a" if signed else "#48c9b0")  # visible on both colour maps
+        self.outline.set_color("#17202a" if signed else "#48c9b0")  # visible on both color maps
         self.colorbar.set_label(unit, fontsize=9)
         self.title_all.set_text(f"{title} – nside {self.sky.nside}, lmax {self.sky.lmax}")
         self.title_zoom.set_text(
@@ -322,7 +322,7 @@ def _outline(gnomonic, mollweide, points: int = 25):
 
 
 def _shade(unobserved: np.ndarray) -> np.ndarray:
-    """An RGBA layer: grey over unobserved (masked) pixels, transparent elsewhere."""
+    """An RGBA layer: gray over unobserved (masked) pixels, transparent elsewhere."""
     rgba = np.zeros(unobserved.shape + (4,))
     rgba[unobserved] = (0.80, 0.82, 0.83, 1.0)
     return rgba
@@ -332,5 +332,5 @@ def _shade(unobserved: np.ndarray) -> np.ndarray:
 def _cmap(name: str):
     import matplotlib
 
-    # transparent outside the Mollweide ellipse; masked pixels get a grey layer on top
+    # transparent outside the Mollweide ellipse; masked pixels get a gray layer on top
     return matplotlib.colormaps[name].with_extremes(bad=(1.0, 1.0, 1.0, 0.0))

@@ -2,7 +2,7 @@
 
 The suite (simulate → filter → reconstruct, cached in a folder and resumable) runs in the background with
 a progress bar per stage and a Cancel button; the bandpowers, the bias terms (mean field, RDN0, Monte-Carlo
-N0, N1, analytic N0), the normalisation correction and the amplitude fit all come from lensrec.
+N0, N1, analytic N0), the normalization correction and the amplitude fit all come from lensrec.
 """
 
 from __future__ import annotations
@@ -25,7 +25,7 @@ from .work import Cancelled, LongTask
 __all__ = ["ValidationSection", "NEEDS"]
 
 NEEDS = ("lensing_suite_settings", "run_lensing_suite", "lensing_bandpowers")
-TERM_STYLE = {  # term → (label, colour)
+TERM_STYLE = {  # term → (label, color)
     "rdn0": ("RDN0", "#2874a6"),
     "mc_n0": ("Monte-Carlo N0", "#85c1e9"),
     "analytic_n0": ("analytic N0", COLORS["noise"]),
@@ -46,7 +46,7 @@ class ValidationSection(Section):
     guide = (
         "Run a small suite of simulations of the current experiment: one 'data' sky and n_sims simulations, each "
         "filtered and reconstructed. The suite debiases the data's lensing spectrum (half-split mean field, "
-        "realisation-dependent N0, N1 from pairs of simulations sharing φ, the normalisation correction) and fits "
+        "realization-dependent N0, N1 from pairs of simulations sharing φ, the normalization correction) and fits "
         "A_lens. Results are cached in the folder: Cancel keeps what is finished, Run again resumes."
     )
 
@@ -137,7 +137,7 @@ class ValidationSection(Section):
                 fraction = (SUITE_STAGES.index(stage) + (done / total if total else 1.0)) / len(SUITE_STAGES)
                 report(0.9 * fraction, f"{stage}: {done}/{total}", check_cancel=False)
 
-            suite = lensrec.run_lensing_suite(settings, folder, executor=executor, max_workers=workers,
+            suite = lensrec.run_lensing_suite(settings, folder, executor=executor, workers=workers,
                                               progress=progress, cancel=cancel, force=force)  # fmt: skip
             if cancel.is_set() or not suite.complete:
                 raise Cancelled(f"The suite was cancelled; what finished is cached in {folder}. Press Run suite "
@@ -172,7 +172,7 @@ class ValidationSection(Section):
             (self.term_lines[key],) = self.ax_bias.plot([], [], "o-", color=color, lw=1.0, ms=3, label=label)
         self.ax_bias.set_xscale("log")
         self.ax_bias.set_yscale("log")
-        self.ax_bias.set_xlabel("lensing multipole L (band centres)")
+        self.ax_bias.set_xlabel("lensing multipole L (band centers)")
         self.ax_bias.set_ylabel(r"$|{\rm term}|$  in $[L(L+1)]^2 C_L / 2\pi$")
         self.ax_bias.set_title("bias budget per bandpower", fontsize=9.5)
         (self.theory_line,) = self.ax_bands.plot(
@@ -242,7 +242,7 @@ class ValidationSection(Section):
     def _fill_table(self) -> None:
         budget = bandpowers.bias_budget(self.result)
         columns = (("L range", None), ("signal", "signal"), ("raw", "raw"), ("RDN0", "rdn0"), ("MC N0", "mc_n0"),
-                   ("N1", "n1"), ("mean field", "mean_field"), ("1/ρ²", "normalisation_correction"),
+                   ("N1", "n1"), ("mean field", "mean_field"), ("1/ρ²", "normalization_correction"),
                    ("debiased", "debiased"), ("σ", "error"), ("RDN0/S", "rdn0_over_signal"),
                    ("N1/S", "n1_over_signal"))  # fmt: skip
         cell = "padding:1px 7px;text-align:right"
@@ -254,7 +254,7 @@ class ValidationSection(Section):
                 value = row.get(key)
                 if key in ("n1", "n1_over_signal") and not self.result.n1_computed:
                     value = None  # not estimated, rather than zero
-                text = "n/a" if value is None else (f"{value:.4f}" if key == "normalisation_correction"
+                text = "n/a" if value is None else (f"{value:.4f}" if key == "normalization_correction"
                                                     else f"{value:.3g}")  # fmt: skip
                 cells.append(f"<td style='{cell}'>{text}</td>")
             rows.append("<tr>" + "".join(cells) + "</tr>")

@@ -16,7 +16,7 @@ EXAMPLES = """examples:
   lensrec delens --maps sky/maps.fits --phi my_phi.fits --phi-noise my_noise.txt --out delensed_any/
   lensrec delens --maps sky/maps.fits --phi rec/phi_alm.fits --tracer diffuse_glow --out delensed_glow/
 
-phi and its noise: by default the normalised reconstruction phi_alm.fits and the gradient N0 of its estimator
+phi and its noise: by default the normalized reconstruction phi_alm.fits and the gradient N0 of its estimator
 from n0.json beside it (written by 'lensrec reconstruct'; any label, GMV included; an "iterative" block there
 gives the iterative N0, an "n1" table adds N1). --phi-noise PATH reads the noise from another JSON file (same
 layout) or a text table (one column N_L, or two: L, N_L), used as given. phi is Wiener-filtered with
@@ -47,7 +47,7 @@ def add_arguments(parser) -> None:
     from ..lensing_templates import DEFAULT_TEMPLATE_METHOD, TEMPLATE_METHODS
 
     parser.add_argument(
-        "--phi", default=None, help="phi (healpy alm FITS): a normalised reconstruction with n0.json beside it"
+        "--phi", default=None, help="phi (healpy alm FITS): a normalized reconstruction with n0.json beside it"
     )
     parser.add_argument(
         "--phi-noise",
@@ -77,20 +77,20 @@ def add_arguments(parser) -> None:
     )
 
 
-def read_phi_noise(phi_path: str, lmax_phi: int) -> tuple:
+def read_phi_noise(phi_path: str, lmax_L: int) -> tuple:
     """The noise of the reconstruction in ``phi_path`` from the n0.json beside it.
 
     Returns (noise array, estimator, description, provenance settings); the noise is the gradient N0 of the
     estimator, or its iterative N0, or N0 + N1 (see :mod:`lensrec.phi_noise`).
 
-    The file is the one ``lensrec reconstruct`` writes: {"L": [0 … L_max], "n0": {label: {"gradient": [...],
+    The file is the one ``lensrec reconstruct`` writes: {"L": [0 … lmax_L], "n0": {label: {"gradient": [...],
     "curl": [...]}, ...}, "provenance": {"settings": {"estimator": label, ...}, ...}}; null entries are NaN.
 
     Raises
     ------
     ValueError
         If the file is missing or unreadable, names no estimator (when it holds several), lacks the gradient
-        N0 of its estimator, or its L range is not 0 … ``lmax_phi``.
+        N0 of its estimator, or its L range is not 0 … ``lmax_L``.
     """
     import numpy as np
 
@@ -131,15 +131,15 @@ def read_phi_noise(phi_path: str, lmax_phi: int) -> tuple:
             f"{path!r} does not hold a gradient N0 with its L values ({type(exc).__name__}: {exc})"
         ) from None
     if L.ndim != 1 or values.shape != L.shape or not np.array_equal(L, np.arange(L.size)):
-        raise ValueError(f"{path!r}: 'L' must be 0, 1, ..., L_max with one N0 value per L")
-    if L.size != lmax_phi + 1:
+        raise ValueError(f"{path!r}: 'L' must be 0, 1, ..., lmax_L with one N0 value per L")
+    if L.size != lmax_L + 1:
         raise ValueError(
-            f"the L range of {path!r} (L = 0 ... {L.size - 1}) does not match {phi_path!r} (L_max = {lmax_phi}); "
+            f"the L range of {path!r} (L = 0 ... {L.size - 1}) does not match {phi_path!r} (lmax_L = {lmax_L}); "
             "they come from different reconstructions"
         )
     from ..phi_noise import read_phi_noise as read_noise
 
-    values, description = read_noise(path, lmax_phi, estimator=estimator)
+    values, description = read_noise(path, lmax_L, estimator=estimator)
     return values, str(estimator), description, settings
 
 
@@ -186,23 +186,23 @@ def run(args) -> int:
         raise InputError("--phi-exact and --phi-noise describe --phi, which is missing")
     estimator, description, bias_settings = None, None, {}
     n0 = None
-    lmax_phi = None
+    lmax_L = None
     if args.phi is not None:
         phi_hat = read_alm(args.phi)
-        lmax_phi = harmonics.lmax_from_nalm(phi_hat.size, f"--phi {args.phi!r}")
+        lmax_L = harmonics.lmax_from_nalm(phi_hat.size, f"--phi {args.phi!r}")
         if args.phi_exact:
             description = "exact phi (no Wiener filter)"
         elif args.phi_noise:
             from ..phi_noise import read_phi_noise as read_noise
 
-            n0, description = read_noise(args.phi_noise, lmax_phi)
+            n0, description = read_noise(args.phi_noise, lmax_L)
         else:
-            n0, estimator, description, bias_settings = read_phi_noise(args.phi, lmax_phi)
+            n0, estimator, description, bias_settings = read_phi_noise(args.phi, lmax_L)
     else:
         phi_hat = None
-    if lmax_phi is not None and lmax_phi > 3 * nside - 1 and not args.phi_exact:
+    if lmax_L is not None and lmax_L > 3 * nside - 1 and not args.phi_exact:
         raise InputError(
-            f"--phi {args.phi!r} reaches L = {lmax_phi}, beyond the band limit 3*nside-1 = {3 * nside - 1} of the "
+            f"--phi {args.phi!r} reaches L = {lmax_L}, beyond the band limit 3*nside-1 = {3 * nside - 1} of the "
             f"nside {nside} maps in --maps: it was not reconstructed from maps of this resolution"
         )
     tracer_set = tracer_alm = None
@@ -233,15 +233,15 @@ def run(args) -> int:
     lmax = min(2 * nside, experiment.ell_max_polarization) if args.lmax is None else args.lmax
     if lmax < 2 or lmax > 3 * nside - 1:
         raise InputError(f"--lmax {lmax} must lie in [2, 3*nside-1 = {3 * nside - 1}] for the maps' nside {nside}")
-    if spectra.lmax < max(lmax, 0 if args.phi_exact else lmax_phi or 0):
-        raise InputError(f"the fiducial spectra reach l = {spectra.lmax}, below lmax {lmax} or L_max {lmax_phi}")
-    # zeros in Q and U alike mark masked pixels; the maps are analysed as a full sky here
+    if spectra.lmax < max(lmax, 0 if args.phi_exact else lmax_L or 0):
+        raise InputError(f"the fiducial spectra reach l = {spectra.lmax}, below lmax {lmax} or lmax_L {lmax_L}")
+    # zeros in Q and U alike mark masked pixels; the maps are analyzed as a full sky here
     masked_fraction = float(np.mean((maps[1] == 0.0) & (maps[2] == 0.0)))
     mask_warning = None
     if masked_fraction > 0.001:
         mask_warning = (
             f"{100 * masked_fraction:.1f}% of the pixels are zero in Q and U (a mask?): the maps are "
-            "analysed as a full sky, so the spectra are pseudo-spectra and E-to-B leakage of the cut is "
+            "analyzed as a full sky, so the spectra are pseudo-spectra and E-to-B leakage of the cut is "
             "not removed"
         )
     timings["inputs"] = time.perf_counter() - start
@@ -289,7 +289,7 @@ def run(args) -> int:
     if tracer_set is not None:
         from ..tracers import combine_tracers, combined_phi
 
-        tracer_set = tracer_set.truncated(min(tracer_set.lmax_L, lmax_phi or lmax, lmax))
+        tracer_set = tracer_set.truncated(min(tracer_set.lmax_L, lmax_L or lmax, lmax))
         combination = combine_tracers(tracer_set, n0=None if n0 is None else n0[: tracer_set.lmax_L + 1])
         phi_for_template = combined_phi(combination, tracer_alm, None if n0 is None else phi_hat)
         n0_for_template, filtered = None, True
@@ -342,7 +342,7 @@ def run(args) -> int:
                 "tracer": None if tracer_set is None else tracer_set.source,
                 "estimator": estimator,
                 "nside": nside,
-                "lmax_phi": lmax_phi,
+                "lmax_L": lmax_L,
                 "phi_from_these_maps": same_maps,
             },
             "settings": {

@@ -162,7 +162,7 @@ def format_delensing(forecast, summary=None) -> str:
     lines = [
         f"delensing with the {'MV' if summary is None else summary['estimator']} gradient N0 "
         f"(l = {forecast.ell_min}-{forecast.ell_max}, "
-        f"f_sky = {forecast.sky_fraction:g}, r = {forecast.r:g}):",
+        f"sky fraction = {forecast.sky_fraction:g}, r = {forecast.r:g}):",
         f"{'':12s}"
         + "".join(f"{'BB(l=' + str(ell) + ')':>12s}" for ell in columns)
         + f"{'A_lens^res':>12s}{'sigma(r)':>12s}{'marginal.':>12s}",

@@ -10,6 +10,7 @@ import argparse
 __all__ = [
     "InputError",
     "add_common",
+    "add_deprecated_option",
     "add_map_reading",
     "map_reading_options",
     "add_noise_model",
@@ -148,3 +149,27 @@ def default_lmax(experiment, nside: int) -> int:
     2*nside is where HEALPix analysis keeps the filter's response within a percent (lensrec.filtering).
     """
     return min(max(experiment.ell_max_temperature, experiment.ell_max_polarization), 2 * nside)
+
+
+class _DeprecatedOption(argparse.Action):
+    """Store the value under the new option's destination and warn that the old spelling is deprecated."""
+
+    def __init__(self, option_strings, dest, new_option: str = "", **kwargs):
+        self.new_option = new_option
+        super().__init__(option_strings, dest, **kwargs)
+
+    def __call__(self, parser, namespace, values, option_string=None):
+        import sys
+        import warnings
+
+        from .._deprecation import REMOVAL
+
+        message = f"{option_string} is deprecated and will be removed in lensrec {REMOVAL}; use {self.new_option}"
+        print(f"{parser.prog}: warning: {message}", file=sys.stderr)
+        warnings.warn(message, DeprecationWarning, stacklevel=2)
+        setattr(namespace, self.dest, values)
+
+
+def add_deprecated_option(parser: argparse.ArgumentParser, old: str, new: str, dest: str, **kwargs) -> None:
+    """Accept the old option spelling ``old`` for ``new`` (hidden from --help; warns when used)."""
+    parser.add_argument(old, dest=dest, action=_DeprecatedOption, new_option=new, help=argparse.SUPPRESS, **kwargs)

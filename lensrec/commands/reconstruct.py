@@ -15,11 +15,11 @@ EXAMPLES = """examples:
   lensrec reconstruct --experiment deep_highland --maps patch/maps.fits --mask patch_mask.fits \\
       --hits patch_hits.fits --filter optimal --estimator GMV --out rec_patch/
 
-writes DIR/phi_alm.fits and DIR/curl_alm.fits (normalised estimates to lmax_L, healpy alm FITS),
+writes DIR/phi_alm.fits and DIR/curl_alm.fits (normalized estimates to lmax_L, healpy alm FITS),
 DIR/n0.json (analytic N0 of the estimators used, in the layout of 'lensrec forecast': {"L": [...],
 "n0": {"EB": {"gradient": [...], "curl": [...]}, ...}, "snr": {...}, "provenance": {...}}) and DIR/run.json
 (provenance: versions, git commit, experiment, arguments, input checksums, transform counts, timings).
-The estimate is normalised with the full-sky response; with a mask, subtract a mean-field from simulations
+The estimate is normalized with the full-sky response; with a mask, subtract a mean-field from simulations
 (Python API: lensrec.mean_field) and correct spectra with the mask moments stored in run.json.
 --lensing-iterations N (EB, full sky): N steps of the iterative estimator after the quadratic one (delens E and B
 with the current Wiener-filtered estimate, estimate again); phi_alm.fits holds the final estimate, n0.json the

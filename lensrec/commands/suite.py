@@ -23,6 +23,7 @@ report/bias_budget_<estimator>_<component>.{json,txt,png} and report/run.json (p
 
 def add_arguments(parser) -> None:
     from ..suites import DEFAULT_LMAX_MARGIN
+    from .options import add_deprecated_option
 
     sub = parser.add_subparsers(dest="suite_command", metavar="ACTION", required=True)
     run = sub.add_parser("run", help="compute or resume a suite", description="compute or resume a lensing suite")
@@ -40,7 +41,7 @@ def add_arguments(parser) -> None:
     run.add_argument("--n-sims", dest="n_sims", type=int, required=True, help="number of simulations (>= 4)")
     run.add_argument("--seed", type=int, default=0, help="seed of the simulations (default: %(default)s)")
     run.add_argument("--data-seed", type=int, default=None, help="seed of the simulated data (default: seed + 1)")
-    run.add_argument("--data-maps", default=None, help="analyse these T, Q, U FITS maps as the data instead")
+    run.add_argument("--data-maps", default=None, help="analyze these T, Q, U FITS maps as the data instead")
     run.add_argument(
         "--lensing-iterations",
         dest="lensing_iterations",
@@ -65,8 +66,9 @@ def add_arguments(parser) -> None:
         help="unlensed multipoles beyond lmax (default: %(default)s)",
     )
     run.add_argument(
-        "--threads-per-task", type=int, default=1, help="threads of each simulation's transforms (default: %(default)s)"
+        "--nthreads", type=int, default=1, help="threads of each simulation's transforms (default: %(default)s)"
     )
+    add_deprecated_option(run, "--threads-per-task", "--nthreads", dest="nthreads", type=int)
     run.add_argument(
         "--executor",
         choices=("serial", "processes", "dask"),
@@ -129,7 +131,7 @@ def _run_suite(args) -> int:
         mask=args.mask,
         noise=not args.no_noise,
         lmax_margin=args.lmax_margin,
-        threads_per_task=args.threads_per_task,
+        nthreads=args.nthreads,
         data_seed=args.data_seed,
         data_maps=args.data_maps,
         lensing_iterations=args.lensing_iterations,
@@ -154,7 +156,7 @@ def _run_suite(args) -> int:
         else:
             target = executor
         suite = run_lensing_suite(
-            settings, args.out, executor=target, max_workers=args.workers, progress=not args.quiet, force=args.force
+            settings, args.out, executor=target, workers=args.workers, progress=not args.quiet, force=args.force
         )
     finally:
         if client is not None:

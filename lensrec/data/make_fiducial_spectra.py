@@ -4,8 +4,9 @@ Run from the repository root with camb installed::
 
     python lensrec/data/make_fiducial_spectra.py [--out lensrec/data/fiducial_spectra.txt.gz]
 
-The cosmology is flat ΛCDM with parameters close to the Particle Data Group review's table of
-cosmological parameters (values from memory); see ``FIDUCIAL_PARAMETERS`` below. The output is a
+The cosmology is flat ΛCDM with the base-ΛCDM parameters of Planck Collaboration 2020 (A&A 641, A6,
+Table 2), rounded as in the Particle Data Group's review of cosmological parameters (Workman et al.
+2022, PTEP 2022, 083C01); see ``FIDUCIAL_PARAMETERS`` below and docs/conventions.md. The output is a
 plain-text table (gzip-compressed) whose header records the camb version and every parameter, as a
 JSON line starting with ``# parameters:``. Spectra are raw C_ℓ in µK² (C_L^φφ dimensionless),
 indexed by ℓ = 0 … 6000.

@@ -13,6 +13,7 @@ import numpy as np
 
 from . import report
 from .io import write_json
+from .labels import COMPONENTS
 from .power import bin_spectrum, spectrum_scale
 
 __all__ = ["DemoResults", "write_demo_report"]
@@ -173,7 +174,7 @@ def _noise_figure(path, results: DemoResults, force: bool) -> None:
     L_f = forecast.L
     scale = spectrum_scale("lensing", L_f.size)
     fig, axes = report.new_figure(2, 1, width=5.6)
-    for ax, component in zip(axes[0], ("gradient", "curl")):
+    for ax, component in zip(axes[0], COMPONENTS):
         if component == "gradient":
             ax.plot(L_f[2:], (scale * spectra.phi[: L_f.size])[2:], color=report.PALETTE["signal"], lw=3,
                     label="signal $C_L^{\\phi\\phi}$")  # fmt: skip

@@ -49,7 +49,7 @@ def test_text_tables_and_bad_lengths(tmp_path):
     two = tmp_path / "n2.txt"
     np.savetxt(two, np.column_stack([np.arange(6), [0, 0, 1, 2, 3, 4]]))
     assert read_phi_noise(two, 5)[0].tolist() == [0, 0, 1, 2, 3, 4]
-    with pytest.raises(ValueError, match="has 6 values but phi reaches L_max = 7"):
+    with pytest.raises(ValueError, match="has 6 values but phi reaches lmax_L = 7"):
         read_phi_noise(one, 7)
     np.savetxt(one, [0, 0, -1.0, 1, 1, 1])
     with pytest.raises(ValueError, match="must be non-negative"):

@@ -16,6 +16,7 @@ from .experiment import Experiment, available_experiments, load_experiment
 from .filtering import FieldFilter, FilteredFields, IsotropicFilter
 from .io import OutputExistsError
 from .iterative_noise import IterativeNoise, iterative_reconstruction_noise
+from .labels import COMPONENTS, ESTIMATORS, parse_estimators, uses_b_modes
 from .lensed_spectra import delensed_spectra, first_order_lensed_bb, lensed_cmb_spectra
 from .lensing_templates import lensing_b_template
 from .masks import apodize_binary_mask, cap_mask, latitude_mask, load_mask, sky_fraction_moments
@@ -47,6 +48,10 @@ from .wiener_filters import wiener_filter_phi
 
 __all__ = [
     "__version__",
+    "ESTIMATORS",
+    "COMPONENTS",
+    "parse_estimators",
+    "uses_b_modes",
     "Experiment",
     "available_experiments",
     "load_experiment",

@@ -94,3 +94,10 @@ def test_parse_components():
         parse_components([])
     with pytest.raises(TypeError, match="component must be one of"):
         parse_component(None)
+
+
+def test_labels_are_part_of_the_public_api():
+    import lensrec
+
+    for name in ("ESTIMATORS", "COMPONENTS", "parse_estimators", "uses_b_modes"):
+        assert name in lensrec.__all__ and getattr(lensrec, name) is getattr(labels, name)

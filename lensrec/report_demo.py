@@ -185,7 +185,7 @@ def _noise_figure(path, results: DemoResults, force: bool) -> None:
         for label in () if iterative is None else iterative.n0:
             L_i = iterative.L
             ax.plot(L_i[2:], (spectrum_scale("lensing", L_i.size) * iterative.n0[label][component])[2:],
-                    color=report.ESTIMATOR_COLOURS.get(label), lw=1.8, ls="--", label=f"N0 {label} iterative")  # fmt: skip
+                    color=report.estimator_color(label), lw=1.8, ls="--", label=f"N0 {label} iterative")  # fmt: skip
         ax.set(xscale="log", yscale="log", xlabel="lensing multipole $L$", ylabel="$[L(L+1)]^2 C_L / 2\\pi$",
                title=f"N0, {component} – {experiment.name}")  # fmt: skip
         ax.set_ylim(1e-9, 1e-5)

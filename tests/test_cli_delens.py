@@ -363,7 +363,7 @@ def test_phi_noise_options_and_their_errors(inputs, tmp_path, capsys):
     np.savetxt(table, [1.0] * 50)
     capsys.readouterr()
     assert main(delens_args(inputs, tmp_path / "x", extra=("--phi-noise", str(table)))) == 2
-    assert "has 50 values but phi reaches L_max = 120" in capsys.readouterr().err
+    assert "has 50 values but phi reaches lmax_L = 120" in capsys.readouterr().err
     assert main(delens_args(inputs, tmp_path / "y", extra=("--phi-noise", str(table), "--phi-exact"))) == 2
     assert "--phi-noise and --phi-exact exclude each other" in capsys.readouterr().err
 

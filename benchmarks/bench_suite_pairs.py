@@ -1,11 +1,11 @@
 """Suite throughput from the cost of one index: its simulation task and its two mixed pairs, before and after
-symmetrising the pairs in one pass.
+symmetrizing the pairs in one pass.
 
     python benchmarks/bench_suite_pairs.py [--quick] [--estimator MV]
 
 One index of a lensing suite simulates and filters a sky and reconstructs it (the "simulation" task), then
-forms two symmetrised mixed pairs φ̂{d, s_i} and φ̂{s_{i−1}, s_i} (the "pairs" task, for RDN0). A mixed pair
-used to be two calls, φ̂[a, b] and φ̂[b, a]; it is now one pass (``symmetrise=True``: each input's legs
+forms two symmetrized mixed pairs φ̂{d, s_i} and φ̂{s_{i−1}, s_i} (the "pairs" task, for RDN0). A mixed pair
+used to be two calls, φ̂[a, b] and φ̂[b, a]; it is now one pass (``symmetrize=True``: each input's legs
 synthesised once, one analysis per estimator). Sims per minute = 60 / (simulation task + 2 pairs), at nside
 512, ℓ_max 1000, L_max 1000 (``--quick``: nside 128, ℓ_max 256). Results: benchmarks/results/suite_pairs.json.
 """
@@ -62,7 +62,7 @@ def main() -> int:
     backward = reconstruct_filtered(b, experiment, second=a, **common)
     two_calls = time.perf_counter() - start
     start = time.perf_counter()
-    one_pass = reconstruct_filtered(a, experiment, second=b, symmetrise=True, **common)
+    one_pass = reconstruct_filtered(a, experiment, second=b, symmetrize=True, **common)
     one_pass_seconds = time.perf_counter() - start
     difference = np.max(np.abs(one_pass.phi_alm - 0.5 * (forward.phi_alm + backward.phi_alm)))
     unit = min(unit, spin2_synthesis_seconds(nside, lmax, nthreads, repeat=1))

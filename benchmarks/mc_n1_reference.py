@@ -29,7 +29,7 @@ SETTINGS = dict(
     n1=True,
     noise=False,
     lmax_margin=256,
-    threads_per_task=1,
+    nthreads=1,
 )
 EDGES = (20, 50, 100, 150, 200, 300, 400)
 OUT = os.path.join(os.path.dirname(os.path.dirname(os.path.abspath(__file__))), "tests", "data", "mc_n1_reference.json")

@@ -531,7 +531,7 @@ def _analytic_n1(settings: dict, estimator: str, component: str, lmax_L: int) ->
         components=[component],
         L_grid=default_n1_L_grid(lmax_L, _ANALYTIC_N1_POINTS),
         grid_size=_ANALYTIC_N1_GRID_SIZE,
-        nthreads=int(settings["threads_per_task"]),
+        nthreads=int(settings["nthreads"]),
     )
     return np.nan_to_num(np.asarray(result.n1[estimator][component]), nan=0.0)
 

@@ -28,7 +28,7 @@ def measured():
 
 def test_iterated_phi_has_unit_response_after_a_correction_from_other_simulations(measured):
     # cross/input = 1 within 3% over L = 30-400, the response taken from simulations not tested (common
-    # practice for estimators without an exact analytic normalisation; Carron & Lewis 2017, PRD 96, 063510).
+    # practice for estimators without an exact analytic normalization; Carron & Lewis 2017, PRD 96, 063510).
     # The mode-weighted band holds ~1.6e5 modes per simulation: its scatter is well under 1%.
     assert abs(measured["iterative"]["held_out_response_30_400"] - 1.0) < 0.03
     # the raw response is close to one already (the B self-term is undone to first order): a broken

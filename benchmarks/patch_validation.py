@@ -129,7 +129,7 @@ def main(argv=None) -> int:
                 second=fields[name][k + 1],
                 estimator="GMV",
                 lmax_L=lmax_L,
-                symmetrise=True,
+                symmetrize=True,
             ).phi_alm
             for k in range(0, len(estimates) - 1, 2)
         ]

@@ -133,3 +133,25 @@ def test_iterative_toggle_adds_the_iterative_curves(app):
     section.curves.value = "quadratic"
     assert app.wait(60)
     assert "EB iterative" not in section.plotted()
+
+
+def test_n1_checkbox_adds_n0_plus_analytic_n1(app):
+    # The dash-dot curves are N0 + lensrec.analytic_n1 unchanged (same coarse grid); N1 of EB is positive
+    # (Kesden, Cooray & Kamionkowski 2003), so the total lies above N0.
+    section = app["noise"]
+    for label, box in section.estimator_boxes.items():
+        box.value = label in ("TT", "EB")
+    assert app.wait(60)
+    section.with_n1.value = True
+    assert app.wait(120)
+    plotted = section.plotted()
+    assert {"TT N0+N1", "EB N0+N1"} <= set(plotted)
+    grid = np.unique(np.round(np.geomspace(2, 1000, 12)).astype(int))
+    n1 = lensrec.analytic_n1(SMALL, estimators=("TT", "EB"), L_grid=grid, grid_size=96, nthreads=2)
+    x, y = plotted["EB N0+N1"]
+    np.testing.assert_allclose(y, _phi_units(section.result.n0["EB"]["gradient"] + n1.n1["EB"]["gradient"])[2:],
+                               rtol=1e-9)  # fmt: skip
+    assert np.all(y[98:] > plotted["EB"][1][98:])  # L >= 100
+    section.with_n1.value = False
+    assert app.wait(60)
+    assert "EB N0+N1" not in section.plotted()

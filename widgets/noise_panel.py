@@ -26,6 +26,9 @@ UNIT_LABELS = {
     "kappa": r"$C_L^{\kappa\kappa} = [L(L+1)]^2 C_L^{\phi\phi} / 4$",
 }
 Y_LIMITS = (1e-10, 1e-5)
+# coarse grid of the analytic N1 (interpolated in between): a few seconds per estimator set
+N1_POINTS = 12
+N1_GRID_SIZE = 96
 
 
 class EstimatorNoiseSection(Section):
@@ -36,7 +39,9 @@ class EstimatorNoiseSection(Section):
         "against the lensing signal. The curl component is a null test: its signal is zero, C_L^φφ is drawn "
         "only for scale. Lensing S/N: √Σ f_sky (2L+1)/2 [C_L^φφ/(C_L^φφ+N0_L)]² (gradient, L ≥ 2; f_sky: sky fraction). "
         "'quadratic + iterative' adds the converged noise of the iterative estimator (EB, MV; dashed): the "
-        "fixed point of delensing with the residual lensing power and estimating again (Smith et al. 2012)."
+        "fixed point of delensing with the residual lensing power and estimating again (Smith et al. 2012). "
+        "'N0 + N1' adds the analytic N1 bias (dash-dot; Kesden, Cooray & Kamionkowski 2003), computed on the "
+        "flat sky on a coarse L grid and interpolated: the total noise of the reconstructed power spectrum."
     )
 
     def __init__(self, state, delay: float = 0.3, nthreads=None):
@@ -67,6 +72,9 @@ class EstimatorNoiseSection(Section):
         )
         self.iterative = None
         self.iterative_inputs = None
+        self.with_n1 = widgets.Checkbox(value=False, description="N0 + N1 (analytic)", indent=False)
+        self.n1 = None
+        self.n1_inputs = None
         self.table = widgets.HTML()
         self.table.add_class("lensrec-snr-table")
         self.view = FigureView(WIDE, name="noise-n0")
@@ -74,7 +82,9 @@ class EstimatorNoiseSection(Section):
         self.update = LiveUpdate(self._run, self.status, "Computing N0", delay=delay)
         self.live.append(self.update)
 
-        for control in (*self.estimator_boxes.values(), self.lmax_L, self.units, self.component, self.curves):
+        for control in (
+            *self.estimator_boxes.values(), self.lmax_L, self.units, self.component, self.curves, self.with_n1
+        ):  # fmt: skip
             control.observe(lambda change: self.update.trigger(), names="value")
         state.observe(lambda change: self.update.trigger(), names=["experiment", "spectra"])
 
@@ -86,7 +96,7 @@ class EstimatorNoiseSection(Section):
                 widgets.HBox([self.lmax_L, self.lmax_L_hint]),
                 self.component,
                 self.units,
-                self.curves,
+                widgets.HBox([self.curves, self.with_n1]),
             ],
             outputs=[widgets.HBox([self.view.widget, self.table])],
         )
@@ -131,7 +141,26 @@ class EstimatorNoiseSection(Section):
                 f"in {self.compute_seconds:.2f} s."
             )
         self._run_iterative(inputs)
+        self._run_n1(inputs)
         self._draw()
+
+    def _run_n1(self, inputs) -> None:
+        """The analytic N1 of the ticked estimators (both components), when the checkbox asks for it."""
+        if not self.with_n1.value:
+            return
+        if self.n1_inputs is not None and _same_inputs(self.n1_inputs, inputs):
+            return
+        experiment, spectra, estimators, _ = inputs
+        self.status.info(f"Computing the analytic N1 of {', '.join(estimators)}…")
+        began = time.perf_counter()
+        lmax_L = int(self.result.L[-1])
+        self.n1 = lensrec.analytic_n1(
+            experiment, spectra, estimators=estimators, lmax_L=lmax_L, noise=self.result,
+            L_grid=np.unique(np.round(np.geomspace(2, lmax_L, N1_POINTS)).astype(int)), grid_size=N1_GRID_SIZE,
+            nthreads=self.nthreads,
+        )  # fmt: skip
+        self.n1_inputs = inputs
+        self.status.ok(f"Analytic N1 of {', '.join(estimators)} in {time.perf_counter() - began:.1f} s.")
 
     def _run_iterative(self, inputs) -> None:
         """The iterative forecast for the ticked iterative estimators, when the toggle asks for it."""
@@ -163,6 +192,11 @@ class EstimatorNoiseSection(Section):
         for label in ESTIMATORS:
             style = {"lw": 2.0} if label not in PAIR_ESTIMATORS else {"lw": 1.3, "alpha": 0.9}
             (self.lines[label],) = self.ax.plot([], [], color=estimator_color(label), label=f"N0 {label}", **style)
+        self.n1_lines = {}
+        for label in ESTIMATORS:
+            (self.n1_lines[label],) = self.ax.plot(
+                [], [], color=estimator_color(label), lw=1.6, ls="-.", label=f"N0+N1 {label}"
+            )
         self.iterative_lines = {}
         for label in ITERATIVE_ESTIMATORS:
             (self.iterative_lines[label],) = self.ax.plot(
@@ -183,6 +217,9 @@ class EstimatorNoiseSection(Section):
         for label, line in self.iterative_lines.items():
             if line.get_visible():
                 out[f"{label} iterative"] = (np.asarray(line.get_xdata()), np.asarray(line.get_ydata()))
+        for label, line in self.n1_lines.items():
+            if line.get_visible():
+                out[f"{label} N0+N1"] = (np.asarray(line.get_xdata()), np.asarray(line.get_ydata()))
         return out
 
     def _draw(self) -> None:
@@ -202,6 +239,15 @@ class EstimatorNoiseSection(Section):
             else:
                 line.set_data([], [])
                 line.set_visible(False)
+        n1 = self.n1 if self.with_n1.value else None
+        for label, line in self.n1_lines.items():
+            if n1 is not None and label in n1.n1 and label in result.n0:
+                total = finite_or_nan(result.n0[label][component] + n1.n1[label][component])
+                line.set_data(L[shown], phi_plot_units(total, units)[shown])
+                line.set_visible(True)
+            else:
+                line.set_data([], [])
+                line.set_visible(False)
         iterative = self.iterative if self.curves.value == "iterative" else None
         for label, line in self.iterative_lines.items():
             if iterative is not None and label in iterative.n0 and label in result.n0:
@@ -215,7 +261,9 @@ class EstimatorNoiseSection(Section):
         self.ax.set_ylim(*Y_LIMITS)
         self.ax.set_ylabel(UNIT_LABELS[units] + ("" if units == "kappa" else "   (φ units)"))
         handles = [self.signal_line] + [
-            line for line in (*self.lines.values(), *self.iterative_lines.values()) if line.get_visible()
+            line
+            for line in (*self.lines.values(), *self.n1_lines.values(), *self.iterative_lines.values())
+            if line.get_visible()
         ]
         self.ax.legend(handles=handles, loc="lower left", fontsize=8, ncol=4, frameon=False)
         self.plot_title.set_text(f"N0 ({component}) – {result.experiment.name}")

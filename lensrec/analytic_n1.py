@@ -43,6 +43,7 @@ higher-order terms). MV combines the pair N1^αβ with the per-L MV weights of t
 from __future__ import annotations
 
 import math
+import threading
 from collections.abc import Mapping
 from dataclasses import dataclass
 from types import MappingProxyType
@@ -51,7 +52,7 @@ import numpy as np
 import scipy.fft
 from scipy.interpolate import PchipInterpolator
 
-from ._checks import as_finite_array, as_int, readonly_copy, resolve_nthreads
+from ._checks import as_finite_array, as_int, readonly_copy, resolve_nthreads, run_parallel
 from .estimator_noise import joint_estimator_parts, minimum_variance, reconstruction_noise, standard_factors
 from .estimator_weights import _LADDER as _LADDER_NAME
 from .estimator_weights import (
@@ -427,8 +428,12 @@ def pair_n1(
     response = np.zeros((n, n_L))
     matrix = None if basis is None else np.zeros((n, n, n_L, basis.shape[0]), dtype=np.complex128)
     swapped = [_swap(e) for e in estimators]
-    fft_count = 0
-    for index, L in enumerate(L_grid):
+    fft_counts = []
+    lock = threading.Lock()
+    done = [0]
+
+    def one_L(index: int) -> None:
+        L = L_grid[index]
         at = _AtL(grid, int(L))
         weights = [at.kernel(e.weight, +1) for e in estimators]
         weights_swapped = [at.kernel(e.weight, +1) for e in swapped]
@@ -466,9 +471,15 @@ def pair_n1(
                 if matrix is not None:
                     matrix[i, j, index] = scale * measure * value_m
                     matrix[j, i, index] = np.conj(matrix[i, j, index])
-        fft_count += contraction.fft_count
-        if progress is not None:
-            progress(index + 1, n_L)
+        with lock:
+            fft_counts.append(contraction.fft_count)
+            done[0] += 1
+            if progress is not None:
+                progress(done[0], n_L)
+
+    # the grid points are independent: numpy and the FFTs release the GIL
+    run_parallel(one_L, range(n_L), nthreads)
+    fft_count = sum(fft_counts)
     with np.errstate(divide="ignore", invalid="ignore"):
         norm = np.where(response > 0, 1.0 / response, np.nan)
     out = {

@@ -53,7 +53,13 @@ import scipy.fft
 from scipy.interpolate import PchipInterpolator
 
 from ._checks import as_finite_array, as_int, readonly_copy, resolve_nthreads, run_parallel
-from .estimator_noise import joint_estimator_parts, minimum_variance, reconstruction_noise, standard_factors
+from .estimator_noise import (
+    ReconstructionNoise,
+    joint_estimator_parts,
+    minimum_variance,
+    reconstruction_noise,
+    standard_factors,
+)
 from .estimator_weights import _LADDER as _LADDER_NAME
 from .estimator_weights import (
     COMPONENTS,
@@ -696,6 +702,14 @@ def analytic_n1(
             lensed_weights=weights == "lensed",
             nthreads=nthreads,
             components=components,
+        )
+    elif not isinstance(noise, ReconstructionNoise):
+        raise TypeError(f"noise must be a ReconstructionNoise (or None), got {type(noise).__name__}")
+    elif int(noise.L[-1]) < lmax_L or noise.experiment != experiment or not set(components) <= set(noise.covariance):
+        raise ValueError(
+            f"the given noise (lmax_L={int(noise.L[-1])}, experiment {noise.experiment.name!r}, components "
+            f"{sorted(noise.covariance)}) does not cover lmax_L={lmax_L}, experiment {experiment.name!r} and "
+            f"components {list(components)}; compute it for them or omit it"
         )
     wanted = set(labels).union(*(COMBINED_ESTIMATORS.get(label, ()) for label in labels))
     base = tuple(label for label in noise.covariance_labels if label in wanted)

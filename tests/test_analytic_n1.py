@@ -113,6 +113,14 @@ def test_bad_input_is_refused(small_experiment, kwargs, message):
         analytic_n1(small_experiment, **kwargs)
 
 
+def test_a_noise_for_other_settings_is_refused(small_experiment):
+    short = lensrec.reconstruction_noise(small_experiment, estimators="EB", lmax_L=200, nthreads=1)
+    with pytest.raises(ValueError, match="does not cover lmax_L=500"):
+        analytic_n1(small_experiment, estimators="EB", lmax_L=500, noise=short)
+    with pytest.raises(TypeError, match="noise must be a ReconstructionNoise"):
+        analytic_n1(small_experiment, estimators="EB", noise={"n0": {}})
+
+
 @pytest.fixture(scope="module")
 def mc_reference():
     import json

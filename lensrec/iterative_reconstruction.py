@@ -57,9 +57,8 @@ are the self-term's first-order treatment and the response correction it needs. 
 only: the analytic normalization of every step assumes the isotropic filter.
 
 Cost (benchmarks/bench_iterative.py, nside 2048, ℓ_max 3000, 2 threads, in units of one spin-2 HEALPix
-synthesis of that size timed in the same process): one step 16.2 units with three inverse-deflection passes
-on a grid for band 2 L_max (now two passes on a smaller grid), the quadratic EB estimate from the maps
-33.5 units, peak RSS 5.5 GB. Each step is: the inverse deflection (spin-1 syntheses on a Gauss–Legendre
+synthesis of that size timed in the same process, benchmarks/RESULTS.md): one step 11.2 units, the
+quadratic EB estimate from the maps 9.5 units, peak RSS 5.5 GB, measured on a heavily shared machine. Each step is: the inverse deflection (spin-1 syntheses on a Gauss–Legendre
 grid, two non-uniform spin-1 syntheses, one spin-1 analysis), one exact remap of E and B (a spin-2
 non-uniform synthesis and analysis), the partially delensed spectra (~1 s) and the EB estimate (six leg
 syntheses, one spin-1 analysis). A MAP step instead runs a conjugate gradient whose every iteration applies

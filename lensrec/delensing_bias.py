@@ -39,11 +39,12 @@ __all__ = [
 
 BIAS_TREATMENTS = ("b_free", "exclude_delensed_b", "none")
 
-# Filled from the measurements in docs/validation.md (section "Delensing bias").
+# The measured figures are in docs/validation.md ("Delensing: B-mode reuse bias, ...").
 E_REUSE_NOTE = (
     "E-reuse bias: with a B-free estimator (TT+TE+EE) the template's Wiener-filtered E also entered phi-hat. "
-    "The resulting correlation lowers the measured residual by a few percent of A_lens^res, far below the "
-    "B-reuse bias (see docs/validation.md for the figures measured on simulations)."
+    "On eight nside-256 simulations of a 1.4 uK-arcmin survey it lowered the measured A_lens^res by "
+    "0.004 +- 0.002 (0.4%), against 0.35 (55%) for reusing the B modes with MV (docs/validation.md); results "
+    "describe simulations."
 )
 
 

@@ -52,7 +52,8 @@ DELENSING_BIAS_NOTE = (
     "of percent of the residual lensing power for low-noise polarization-dominated reconstructions "
     "(Namikawa 2017, PRD 95, 103514; Baleato Lizancos, Challinor & Carron 2021, JCAP 03, 016). "
     "Avoid it by reconstructing phi without the B modes that are delensed (e.g. TT/TE/EE only, or disjoint "
-    "multipole ranges), or remove it with simulations; this forecast does neither."
+    "multipole ranges), i.e. a B-free label or lensrec.delensing_bias.exclude_delensed_b; this forecast "
+    "describes the residual without the bias."
 )
 
 

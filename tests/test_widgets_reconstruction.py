@@ -131,10 +131,33 @@ def test_template_is_built_from_the_reconstruction_as_lensrec_delens_does(app, e
     np.testing.assert_allclose(drawn["residual"][1], dl * reference.residual_bb[ell], rtol=1e-8)
     np.testing.assert_allclose(drawn["efficiency"][1], reference.efficiency[ell], rtol=1e-6, atol=1e-9)
     assert section.template.alens_residual == pytest.approx(reference.alens_residual, rel=1e-8)
-    # MV uses these B modes: the delensing-bias warning must be shown
+    # MV uses these B modes: the delensing-bias warning must be shown, with the bias-free residual beside it
     assert "delensing bias" in section.template_summary.value
+    assert section.bias_free is not None and "bias-free" in section.template_summary.value
+    assert section.bias_free.ell_max == LMAX // 2 and "exclude_delensed_b" in section.bias_free.notes[0]
     # a template made of lensed E modes must remove some lensing power and cannot remove more than all of it
     assert 0 < section.template.alens_residual < 1
+
+
+def test_template_from_the_exact_phi_and_from_a_tracer(app):
+    # exact phi: the perfect-knowledge bound removes lensing B (here only what E <= 128 sources: 0 < A < 1;
+    # a phi that did not arrive would leave A = 1); tracer: a simulated invented tracer delenses part of it
+    section = app["delensing"]
+    section.method.value = "first_order"
+    section.phi_source.value = "internal"
+    section.build_button.click()
+    assert app.wait(120) and section.status.kind == "ok", section.status.message
+    try:
+        section.phi_source.value = "exact"
+        section.build_button.click()
+        assert app.wait(120) and section.status.kind == "ok", section.status.message
+        assert 0 < section.template.alens_residual < 0.97 and section.bias_free is None
+        section.phi_source.value, section.tracer.value = "tracer", "diffuse_glow"
+        section.build_button.click()
+        assert app.wait(120) and section.status.kind == "ok", section.status.message
+        assert 0 < section.template.alens_residual < 1 and "diffuse_glow" in section.template_title.get_text()
+    finally:
+        section.phi_source.value = "internal"
 
 
 def test_masked_sky_spectra_are_divided_by_the_mask_moments():

@@ -14,14 +14,58 @@ import ipywidgets as widgets
 import numpy as np
 
 import lensrec
-from lensrec import delensing
+from lensrec import delensing, harmonics
 from lensrec.labels import ESTIMATORS, uses_b_modes
 
 from .plotting import COLORS, PAIR, FigureView, d_ell, finite_or_nan, set_log_range, style_axes
 from .section import Section, heading, labelled
 from .work import LongTask
 
-__all__ = ["DelensingSection"]
+__all__ = ["DelensingSection", "delensing_with_source"]
+
+
+def delensing_with_source(sky, reconstruction, experiment, spectra, lmax, method, source, tracer_name, nthreads,
+                          report):  # fmt: skip
+    """Delens the sky's B modes with φ from ``source`` (internal, tracer, combined, exact) through lensrec's
+    recipes; for an internal reconstruction that reused the B modes, also the residual of one made without the
+    delensed B modes (ℓ ≤ lmax/2, at most 500). Returns (result, bias-free result or None, label)."""
+    from lensrec.delensing_bias import bias_treatment_note, exclude_delensed_b
+
+    common = {"lmax": lmax, "method": method, "mask": sky.mask, "nthreads": nthreads}
+    if source == "exact":
+        phi = harmonics.truncate_alm(np.array(sky.phi_alm), min(sky.lmax_unlensed, 3 * lmax), sky.lmax_unlensed)
+        return delensing.delens_maps(sky.maps, phi, experiment, spectra, phi_filtered=True, progress=report,
+                                     notes=("phi source: the sky's exact phi",), **common), None, "exact φ"  # fmt: skip
+    if source in ("tracer", "combined"):
+        tracers = lensrec.load_tracers(tracer_name)
+        lmax_L = min(tracers.lmax_L, reconstruction.lmax_L if reconstruction is not None else lmax, lmax)
+        tracers = tracers.truncated(lmax_L)
+        report(0.02, f"simulating the tracer {tracer_name} correlated with the sky's φ")
+        tracer_alm = lensrec.simulate_tracers(tracers, np.array(sky.phi_alm), seed=int(sky.settings["seed"]))
+        internal = source == "combined"
+        if internal and reconstruction is None:
+            raise ValueError("the combined source needs a reconstruction: run the Reconstruction tab first")
+        n0 = np.array(reconstruction.n0["gradient"])[: lmax_L + 1] if internal else None
+        combination = lensrec.combine_tracers(tracers, n0=n0)
+        phi = lensrec.combined_phi(combination, tracer_alm, reconstruction.phi_alm if internal else None)
+        label = f"{tracer_name}" + (f" + {reconstruction.estimator}" if internal else "")
+        return delensing.delens_maps(sky.maps, phi, experiment, spectra, phi_filtered=True, progress=report,
+                                     notes=(f"phi source: {label} (optimal combination)",), **common), None, label  # fmt: skip
+    if reconstruction is None:
+        raise ValueError("no reconstruction: run the Reconstruction tab first")
+    label = reconstruction.estimator
+    result = delensing.delens_maps(sky.maps, reconstruction, experiment, spectra, progress=report, **common)
+    if label not in lensrec.labels.ESTIMATORS or not uses_b_modes(label):
+        return result, None, label
+    ell_delensed = min(lmax // 2, 500)
+    report(0.6, f"reconstructing {label} again without the B modes at ℓ ≤ {ell_delensed}")
+    free_rec = lensrec.reconstruct(sky.maps, exclude_delensed_b(experiment, ell_delensed), spectra, estimator=label,
+                                   lmax=lmax, lmax_L=reconstruction.lmax_L, mask=sky.mask, nthreads=nthreads)  # fmt: skip
+    note = bias_treatment_note(label, "exclude_delensed_b", ell_delensed)
+    free = delensing.delens_maps(sky.maps, free_rec, experiment, spectra, ell_max=ell_delensed, notes=(note,),
+                                 **common)  # fmt: skip
+    return result, free, label
+
 
 TEMPLATE_NEEDS = ("reconstruct", "delens_maps")
 
@@ -83,9 +127,19 @@ class DelensingSection(Section):
             )
         self.template_ready = True
         self.template = None
-        self.method = widgets.ToggleButtons(options=[("exact remapping", "remap"), ("first order", "first_order")],
-                                            value="remap", style={"button_width": "12em"})  # fmt: skip
+        self.bias_free = None
+        self.method = widgets.ToggleButtons(options=[("first order", "first_order"), ("exact remapping", "remap"),
+                                                     ("remapping of delensed E", "remap_delensed_e")],
+                                            value=delensing.DEFAULT_TEMPLATE_METHOD,
+                                            style={"button_width": "14em"})  # fmt: skip
         self.method.add_class("lensrec-template-method")
+        self.phi_source = widgets.ToggleButtons(
+            options=[("internal φ̂", "internal"), ("tracer", "tracer"), ("combined", "combined"), ("exact φ", "exact")],
+            value="internal", description="φ source", style={"button_width": "9em"})  # fmt: skip
+        self.phi_source.add_class("lensrec-phi-source")
+        tracers = lensrec.tracers.available_tracers()
+        self.tracer = labelled(widgets.Dropdown(options=tracers, value=tracers[0] if tracers else None,
+                                                description="tracer"), "18em")  # fmt: skip
         self.build_button = widgets.Button(description="Build template", icon="play", button_style="primary")
         self.build_button.add_class("lensrec-build-template")
         self.template_task = LongTask(self.build_button, self.status, "Building the B-mode template", "template")
@@ -103,6 +157,12 @@ class DelensingSection(Section):
                          "the simulated maps, lensed by the Wiener-filtered reconstruction of the Reconstruction tab, "
                          "give a B-mode template; it is subtracted from the observed (beam-deconvolved) B modes.</div>"),
             self.method,
+            widgets.HBox([self.phi_source, self.tracer]),
+            widgets.HTML("<div style='color:#515a5a;max-width:60em;line-height:1.45'>internal: the reconstruction "
+                         "(with B modes reused, its residual is shown beside one from a reconstruction without the "
+                         "delensed B modes); tracer: a simulated invented tracer correlated with the sky's φ; "
+                         "combined: tracer and reconstruction combined optimally; exact φ: the sky's own φ "
+                         "(the perfect-knowledge bound).</div>"),
             widgets.HBox([self.build_button, self.template_task.widget]),
             widgets.HBox([self.template_view.widget, self.template_summary]),
         ])  # fmt: skip
@@ -174,18 +234,23 @@ class DelensingSection(Section):
             self.status.error("No reconstruction to build a template from: simulate a sky on the Sky tab and "
                               "reconstruct it on the Reconstruction tab first.")  # fmt: skip
             return False
-        method, nthreads = self.method.value, self.nthreads
+        method, nthreads, source = self.method.value, self.nthreads, self.phi_source.value
+        tracer_name = self.tracer.value
         lmax = min(sky.lmax, experiment.ell_max_polarization)
+        if source in ("tracer", "combined") and not tracer_name:
+            self.status.error("No tracer file is shipped with this lensrec: choose another φ source.")
+            return False
 
         def work(report, cancel):
-            return delensing.delens_maps(sky.maps, reconstruction, experiment, spectra, lmax=lmax, method=method,
-                                         mask=sky.mask, nthreads=nthreads, progress=report)  # fmt: skip
+            return delensing_with_source(sky, reconstruction, experiment, spectra, lmax, method, source, tracer_name,
+                                         nthreads, report)  # fmt: skip
 
-        def finish(result):
-            self.template, self.template_estimator = result, reconstruction.estimator
+        def finish(results):
+            result, bias_free, label = results
+            self.template, self.template_estimator, self.bias_free = result, label, bias_free
             self._draw_template()
-            return (f"Template ({method}) from the {reconstruction.estimator} reconstruction: measured "
-                    f"A_lens^res = {result.alens_residual:.2f} over ℓ {result.ell_min}–{result.ell_max}.")  # fmt: skip
+            return (f"Template ({method}) from {label}: measured A_lens^res = {result.alens_residual:.2f} over ℓ "
+                    f"{result.ell_min}–{result.ell_max}.")  # fmt: skip
 
         return self.template_task.start(work, finish)
 
@@ -198,6 +263,7 @@ class DelensingSection(Section):
             ("observed", "observed B (lensing + noise)", COLORS["lensed"], "-"),
             ("template", "template", COLORS["template"], "-"),
             ("residual", "residual = observed − template", COLORS["residual"], "-"),
+            ("bias_free", "residual, φ̂ without the delensed B", COLORS["delensed"], "-."),
             ("noise", "B noise", COLORS["noise"], "--"),
             ("lensed", "lensing BB (theory)", COLORS["phi"], ":"),
         ):
@@ -231,6 +297,12 @@ class DelensingSection(Section):
                             ("lensed", result.lensed_bb)):  # fmt: skip
             self.template_lines[key].set_data(ell[used], d_ell(values)[used])
         self.template_lines["efficiency"].set_data(ell[used], result.efficiency[used])
+        free = self.bias_free
+        if free is not None:
+            part = (ell >= max(2, free.ell_min)) & (ell <= free.ell_max)
+            self.template_lines["bias_free"].set_data(ell[part], d_ell(free.residual_bb)[part])
+        else:
+            self.template_lines["bias_free"].set_data([], [])
         for ax in (self.ax_tbb, self.ax_teff):
             set_log_range(ax, max(2, result.ell_min), result.ell_max)
         values = np.concatenate([d_ell(result.lensed_bb)[used], d_ell(result.template_bb)[used]])
@@ -241,16 +313,22 @@ class DelensingSection(Section):
             f"B modes of the simulated sky – {result.method} template, {self.template_estimator}"
         )
         self.template_view.draw()
-        bias = uses_b_modes(self.template_estimator)
+        bias = self.template_estimator in lensrec.labels.ESTIMATORS and uses_b_modes(self.template_estimator)
+        rows = [("A_lens^res (measured)", f"<b>{result.alens_residual:.3f}</b>"),
+                ("ℓ range", f"{result.ell_min}–{result.ell_max}"), ("template", html.escape(result.method))]  # fmt: skip
+        if free is not None:
+            reused = delensing.measured_alens_residual(result.residual_bb, result.lensed_bb, result.noise_bb,
+                                                       free.ell_min, free.ell_max)  # fmt: skip
+            rows += [(f"A_lens^res, B reused (ℓ {free.ell_min}–{free.ell_max})", f"{reused:.3f}"),
+                     ("A_lens^res, bias-free (same ℓ)", f"<b>{free.alens_residual:.3f}</b>")]  # fmt: skip
         self.template_summary.value = (
             "<table style='margin:1.5em 1em;border-collapse:collapse;white-space:nowrap'>"
-            f"<tr><td style='padding:2px 8px'>A_lens^res (measured)</td><td><b>{result.alens_residual:.3f}</b></td></tr>"
-            f"<tr><td style='padding:2px 8px'>ℓ range</td><td>{result.ell_min}–{result.ell_max}</td></tr>"
-            f"<tr><td style='padding:2px 8px'>template</td><td>{html.escape(result.method)}</td></tr>"
-            "</table>"
+            + "".join(f"<tr><td style='padding:2px 8px'>{name}</td><td>{value}</td></tr>" for name, value in rows)
+            + "</table>"
             + ("<div style='margin:0 1em;max-width:18em;color:#9a7d0a;font-size:90%'>⚠ φ was reconstructed with "
                f"{html.escape(self.template_estimator)}, which uses these B modes: the residual is biased low "
-               "(delensing bias).</div>" if bias else "")
+               "(delensing bias); the bias-free residual beside it comes from a reconstruction without the "
+               "delensed B modes.</div>" if bias else "")
         )  # fmt: skip
 
     # ---------------------------------------------------------------------------------- the plot
@@ -303,7 +381,9 @@ class DelensingSection(Section):
             "<table style='margin:1.5em 1em;border-collapse:collapse;white-space:nowrap'>"
             f"<tr><td style='padding:2px 8px'>A_lens^res</td><td><b>{forecast.alens_residual:.3f}</b></td></tr>"
             f"<tr><td style='padding:2px 8px'>σ(r), lensed</td><td>{forecast.sigma_r_lensed:.3g}</td></tr>"
-            f"<tr><td style='padding:2px 8px'>σ(r), delensed</td><td><b>{forecast.sigma_r_delensed:.3g}</b></td></tr>"
+            f"<tr><td style='padding:2px 8px'>σ(r), delensed (A_lens fixed)</td><td><b>{forecast.sigma_r_delensed:.3g}</b></td></tr>"
+            "<tr><td style='padding:2px 8px'>σ(r), delensed (A_lens marginalized)</td>"
+            f"<td><b>{forecast.sigma_r_delensed_marginalized:.3g}</b></td></tr>"
             f"<tr><td style='padding:2px 8px'>improvement</td><td>{forecast.improvement:.2f}×</td></tr>"
             f"<tr><td style='padding:2px 8px'>ℓ range</td><td>{forecast.ell_min}–{forecast.ell_max}</td></tr>"
             f"<tr><td style='padding:2px 8px'>sky fraction, r</td><td>{forecast.sky_fraction:g}, {forecast.r:g}</td></tr>"

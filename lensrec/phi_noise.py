@@ -49,6 +49,26 @@ def _check(values: np.ndarray, lmax_L: int, where: str) -> np.ndarray:
     return values
 
 
+def noise_label(document: dict, path: str, estimator: str | None = None) -> str:
+    """The estimator whose noise a JSON document gives: ``estimator``, else ``provenance.settings.estimator``,
+    else its only label (ValueError if it holds several and names none, or names an unknown label)."""
+    noise = document.get("n0") if isinstance(document, dict) else None
+    if not isinstance(noise, dict) or not noise:
+        raise ValueError(f"{path!r} holds no 'n0' table of reconstruction noise")
+    settings = (document.get("provenance") or {}).get("settings") or {}
+    label = estimator or settings.get("estimator")
+    if label is None:
+        if len(noise) != 1:
+            raise ValueError(
+                f"{path!r} holds the noise of {sorted(noise)} and does not say which made phi "
+                "(provenance.settings.estimator); name the estimator"
+            )
+        label = next(iter(noise))
+    if label not in ESTIMATORS:
+        raise ValueError(f"{path!r} names the estimator {label!r}, which is not one of {', '.join(ESTIMATORS)}")
+    return str(label)
+
+
 @renamed_arguments(lmax_phi="lmax_L")
 def read_phi_noise(path, lmax_L: int, estimator: str | None = None) -> tuple[np.ndarray, str]:
     """The noise N_L of a φ estimate from a JSON or text file (see the module docstring for which noise).
@@ -82,20 +102,8 @@ def read_phi_noise(path, lmax_L: int, estimator: str | None = None) -> tuple[np.
         from .io import read_json
 
         document = read_json(path)
-        noise = document.get("n0") if isinstance(document, dict) else None
-        if not isinstance(noise, dict) or not noise:
-            raise ValueError(f"{path!r} holds no 'n0' table of reconstruction noise")
-        settings = (document.get("provenance") or {}).get("settings") or {}
-        label = estimator or settings.get("estimator")
-        if label is None:
-            if len(noise) != 1:
-                raise ValueError(
-                    f"{path!r} holds the noise of {sorted(noise)} and does not say which made phi "
-                    "(provenance.settings.estimator); name the estimator"
-                )
-            label = next(iter(noise))
-        if label not in ESTIMATORS:
-            raise ValueError(f"{path!r} names the estimator {label!r}, which is not one of {', '.join(ESTIMATORS)}")
+        label = noise_label(document, path, estimator)
+        noise = document["n0"]
         L = np.asarray(document.get("L", []))
         if L.ndim != 1 or not np.array_equal(L, np.arange(L.size)):
             raise ValueError(f"{path!r}: 'L' must be 0, 1, ..., L_max with one noise value per L")

@@ -78,6 +78,16 @@ def _spectrum(values, name: str, ell_max: int, allow_inf: bool = False) -> np.nd
     return array[: ell_max + 1]
 
 
+def _fisher_settings(ell_min, ell_max, sky_fraction, r) -> tuple:
+    """The checked multipole range, sky fraction and fiducial r of a B-mode Fisher forecast."""
+    ell_min = as_int(ell_min, "ell_min", minimum=2)
+    ell_max = as_int(ell_max, "ell_max", minimum=2)
+    if ell_max < ell_min:
+        raise ValueError(f"ell_max={ell_max} must be >= ell_min={ell_min} (the multipole range is inverted)")
+    sky_fraction = as_float(sky_fraction, "sky_fraction", minimum=0.0, maximum=1.0, strict_minimum=True)
+    return ell_min, ell_max, sky_fraction, as_float(r, "r", minimum=0.0)
+
+
 @renamed_arguments(bb_lensing="lensed_bb", bb_noise="noise_bb", bb_tensor_r1="tensor_bb")
 def sigma_r(lensed_bb, noise_bb, tensor_bb, sky_fraction, ell_min, ell_max, r=0.0) -> float:
     """Fisher forecast of the 1σ uncertainty on r from the B-mode power spectrum alone.
@@ -136,12 +146,7 @@ def sigma_r(lensed_bb, noise_bb, tensor_bb, sky_fraction, ell_min, ell_max, r=0.
     >>> round(value / (0.01 * math.sqrt(2.0 / (301**2 - 4))), 12)   # the cosmic-variance limit
     1.0
     """
-    ell_min = as_int(ell_min, "ell_min", minimum=2)
-    ell_max = as_int(ell_max, "ell_max", minimum=2)
-    if ell_max < ell_min:
-        raise ValueError(f"ell_max={ell_max} must be >= ell_min={ell_min} (the multipole range is inverted)")
-    sky_fraction = as_float(sky_fraction, "sky_fraction", minimum=0.0, maximum=1.0, strict_minimum=True)
-    r = as_float(r, "r", minimum=0.0)
+    ell_min, ell_max, sky_fraction, r = _fisher_settings(ell_min, ell_max, sky_fraction, r)
     lensing = _spectrum(lensed_bb, "lensed_bb", ell_max)
     noise = _spectrum(noise_bb, "noise_bb", ell_max, allow_inf=True)
     tensor = _spectrum(tensor_bb, "tensor_bb", ell_max)
@@ -313,12 +318,7 @@ def tensor_fisher(
     >>> bool(out.sigma_r_marginalized >= out.sigma_r_conditional)
     True
     """
-    ell_min = as_int(ell_min, "ell_min", minimum=2)
-    ell_max = as_int(ell_max, "ell_max", minimum=2)
-    if ell_max < ell_min:
-        raise ValueError(f"ell_max={ell_max} must be >= ell_min={ell_min} (the multipole range is inverted)")
-    sky_fraction = as_float(sky_fraction, "sky_fraction", minimum=0.0, maximum=1.0, strict_minimum=True)
-    r = as_float(r, "r", minimum=0.0)
+    ell_min, ell_max, sky_fraction, r = _fisher_settings(ell_min, ell_max, sky_fraction, r)
     if not isinstance(vary_alens, (bool, np.bool_)):
         raise TypeError(f"vary_alens must be True or False, got {vary_alens!r}")
     used = slice(ell_min, ell_max + 1)

@@ -5,7 +5,7 @@ from __future__ import annotations
 import os
 import time
 
-from ..labels import parse_estimator, uses_b_modes
+from ..labels import uses_b_modes
 
 HELP = "build a lensing B-mode template from the maps' E modes and a reconstructed phi, and delens the B modes"
 EXAMPLES = """examples:
@@ -103,23 +103,12 @@ def read_phi_noise(phi_path: str, lmax_L: int) -> tuple:
             f"reconstruction in {phi_path!r} (write both with 'lensrec reconstruct')"
         )
     document = read_json(path)
-    noise = document.get("n0") if isinstance(document, dict) else None
-    if not isinstance(noise, dict) or not noise:
-        raise ValueError(f"{path!r} holds no 'n0' table of reconstruction noise")
+    from ..phi_noise import noise_label
+
+    estimator = noise_label(document, path)
+    noise = document["n0"]
     settings = (document.get("provenance") or {}).get("settings") or {}
-    estimator = settings.get("estimator")
-    if estimator is None:
-        if len(noise) != 1:
-            raise ValueError(
-                f"{path!r} does not say which of {sorted(noise)} made {phi_path!r} "
-                "(provenance.settings.estimator is missing)"
-            )
-        estimator = next(iter(noise))
-    try:
-        estimator = parse_estimator(estimator)
-    except (TypeError, ValueError) as exc:
-        raise ValueError(f"{path!r} names an estimator lensrec does not know: {exc}") from None
-    if estimator not in noise or not isinstance(noise[estimator], dict) or "gradient" not in noise[estimator]:
+    if not isinstance(noise.get(estimator), dict) or "gradient" not in noise[estimator]:
         raise ValueError(f"{path!r} lacks the gradient N0 of its estimator {estimator!r}")
     try:
         L = np.asarray(document["L"], dtype=np.int64)

@@ -118,7 +118,11 @@ def test_template_is_built_from_the_reconstruction_as_lensrec_delens_does(app, e
     lmax = min(LMAX, experiment.ell_max_polarization)
     # the delensing pipeline written out with lensrec's own functions
     e_wiener, b_observed, _ = delensing.template_inputs(sky.maps, experiment, spectra, lmax=lmax, nthreads=2)
-    phi_wiener = lensrec.wiener_filter_phi(result.phi_alm, result.n0["gradient"], spectra.phi)
+    # the recipe's phi Wiener filter uses N0 + analytic N1 (lensrec.delens_maps)
+    from lensrec.analytic_n1 import reconstruction_n1
+
+    n1 = reconstruction_n1(result, spectra, nthreads=2).n1["MV"]["gradient"]
+    phi_wiener = lensrec.wiener_filter_phi(result.phi_alm, result.n0["gradient"], spectra.phi, n1=n1)
     reference = lensrec.delens(b_observed, e_wiener, phi_wiener, lmax, method="first_order",
                                noise_bb=experiment.noise_spectrum("B", lmax), lensed_bb=spectra.lensed["BB"],
                                nthreads=2)  # fmt: skip

@@ -6,7 +6,7 @@ symmetrizing the pairs in one pass.
 One index of a lensing suite simulates and filters a sky and reconstructs it (the "simulation" task), then
 forms two symmetrized mixed pairs φ̂{d, s_i} and φ̂{s_{i−1}, s_i} (the "pairs" task, for RDN0). A mixed pair
 used to be two calls, φ̂[a, b] and φ̂[b, a]; it is now one pass (``symmetrize=True``: each input's legs
-synthesised once, one analysis per estimator). Sims per minute = 60 / (simulation task + 2 pairs), at nside
+synthesized once, one analysis per estimator). Sims per minute = 60 / (simulation task + 2 pairs), at nside
 512, ℓ_max 1000, L_max 1000 (``--quick``: nside 128, ℓ_max 256). Results: benchmarks/results/suite_pairs.json.
 """
 

@@ -6,7 +6,7 @@ following its hit map), both filters are run (jointly, T, E, B) and the GMV esti
 - mean-field from the simulations in two halves (each half's estimate minus the other half's mean);
 - normalization = analytic × Monte-Carlo correction, the broad-band ratio ⟨C_L^{φ̂ φ_in}⟩ / ⟨C_L^{φ_in φ_in}⟩ of the
   estimate with the patch-masked input (Namikawa, Hanson & Takahashi 2013, MNRAS 431, 609);
-- MC-N0 from symmetrised estimates of independent pairs (same reference, eq. 2), over the patch's f_sky;
+- MC-N0 from symmetrized estimates of independent pairs (same reference, eq. 2), over the patch's f_sky;
 - A_lens: the debiased bandpowers (auto − MC-N0, corrected) over the theory C_L^φφ, inverse-variance
   weighted over bins with the simulation scatter, and its 1σ.
 

@@ -1,7 +1,7 @@
 """lensrec: a workbench for CMB lensing reconstruction and delensing on the HEALPix sphere.
 
 The public API is the list in ``__all__``; other modules are importable but not promised.
-All results describe simulations of idealised surveys, not survey-ready measurements.
+All results describe simulations of idealized surveys, not survey-ready measurements.
 """
 
 from __future__ import annotations

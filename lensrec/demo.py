@@ -6,7 +6,7 @@ no network and no camb: it uses :func:`lensrec.fiducial_spectra` and a shipped i
 :func:`run_demo` is a sequence of library calls; the figures, the page and the table are made by
 :mod:`lensrec.report_demo`.
 
-Everything it reports describes one simulation of an idealised survey (full sky, isotropic noise, Gaussian
+Everything it reports describes one simulation of an idealized survey (full sky, isotropic noise, Gaussian
 foreground-free CMB); none of it is a survey-ready result.
 """
 
@@ -33,7 +33,7 @@ DEMO_OUTPUTS = (
     "tensor_forecast.png",
 )
 CAUTION = (
-    "These results describe one simulation of an idealised survey (full sky, isotropic white noise, no "
+    "These results describe one simulation of an idealized survey (full sky, isotropic white noise, no "
     "foregrounds, Gaussian unlensed CMB). They are a demonstration of the method, not a forecast or "
     "measurement for any real survey."
 )

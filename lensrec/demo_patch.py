@@ -1,9 +1,9 @@
 """An invented deep survey patch for demonstrations: the "Quiet Hollow" field, made deterministically.
 
-The footprint is an ellipse on the sky (semi-axes 28° × 19°, centre at longitude 40°, latitude −55°,
-long axis tilted 30° from the meridian), about 4% of the sky. The hit map falls off from the centre to the
+The footprint is an ellipse on the sky (semi-axes 28° × 19°, center at longitude 40°, latitude −55°,
+long axis tilted 30° from the meridian), about 4% of the sky. The hit map falls off from the center to the
 edge as a deep ground-based scan does: h ∝ (1 − ρ⁴)^(1/2) + 0.15, with ρ the elliptical radius (0 at the
-centre, 1 on the edge), times a ±5% stripe pattern along the scan direction. Nothing here describes a real
+center, 1 on the edge), times a ±5% stripe pattern along the scan direction. Nothing here describes a real
 survey; the field, its numbers and its name are invented.
 
 :func:`patch_footprint` builds the binary mask and the hits at any nside in well under a second, so the
@@ -57,12 +57,12 @@ def patch_footprint(nside: int, apodization: float | None = None) -> tuple[np.nd
     nside = check_nside(nside)
     theta, phi = healpy.pix2ang(nside, np.arange(12 * nside * nside))
     lon0, lat0 = np.radians(_CENTRE[0]), np.radians(_CENTRE[1])
-    # gnomonic-like local coordinates around the centre (tangent-plane projection of the unit vectors)
+    # gnomonic-like local coordinates around the center (tangent-plane projection of the unit vectors)
     x, y, z = np.sin(theta) * np.cos(phi), np.sin(theta) * np.sin(phi), np.cos(theta)
-    centre = np.array([math.cos(lat0) * math.cos(lon0), math.cos(lat0) * math.sin(lon0), math.sin(lat0)])
+    center = np.array([math.cos(lat0) * math.cos(lon0), math.cos(lat0) * math.sin(lon0), math.sin(lat0)])
     east = np.array([-math.sin(lon0), math.cos(lon0), 0.0])
-    north = np.cross(centre, east)
-    cosine = x * centre[0] + y * centre[1] + z * centre[2]
+    north = np.cross(center, east)
+    cosine = x * center[0] + y * center[1] + z * center[2]
     angle = np.arccos(np.clip(cosine, -1.0, 1.0))
     u = x * east[0] + y * east[1] + z * east[2]
     v = x * north[0] + y * north[1] + z * north[2]

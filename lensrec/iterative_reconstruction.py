@@ -48,7 +48,7 @@ Curl after iterating: Ω̂ is the curl estimate of the last step, ψ̂_k's curl 
 residual deflection of the delensed fields — a null test with the converged filters (lensing has no curl at
 Born order), whose noise is the curl N0 of the last step.
 
-Compared with the maximum a posteriori estimate (Carron & Lewis 2017, PRD 96, 063510): MAP maximises the
+Compared with the maximum a posteriori estimate (Carron & Lewis 2017, PRD 96, 063510): MAP maximizes the
 lensing posterior with a conjugate gradient over the lensed-CMB covariance at every step (the lensing
 operator and its adjoint); its gradient is a likelihood derivative, so the B modes' own contribution is
 handled exactly rather than by the first-order self-term above, and it converges over several steps. The

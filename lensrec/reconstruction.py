@@ -368,7 +368,7 @@ def reconstruct(
         ``mask`` or ``noise``). The choice is recorded in ``settings["filter_choice"]``.
     noise : PixelNoise, optional
         Per-pixel noise variance (:class:`lensrec.PixelNoise`); its noise levels replace the experiment's
-        for the normalisation (arithmetic level for the isotropic filter, inverse-variance for the optimal).
+        for the normalization (arithmetic level for the isotropic filter, inverse-variance for the optimal).
     maps_masked : bool
         The maps are already multiplied by ``mask`` (it is then not applied a second time).
     cg_tolerance, cg_max_iterations : optional

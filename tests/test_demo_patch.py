@@ -10,7 +10,7 @@ def test_the_invented_patch_is_a_few_percent_of_the_sky_with_hits_falling_to_the
     assert 0.03 < mask.mean() < 0.05
     assert np.all(hits[mask == 0] == 0) and np.all(hits[mask > 0] > 0)
     inner = hits[mask > 0] > np.quantile(hits[mask > 0], 0.9)
-    assert hits[mask > 0][inner].mean() > 4 * hits[mask > 0].min()  # deep centre, shallow edge
+    assert hits[mask > 0][inner].mean() > 4 * hits[mask > 0].min()  # deep center, shallow edge
     apodized, _ = patch_footprint(64, apodization=3.0)
     assert 0 < apodized.mean() < mask.mean() and np.all(apodized[mask == 0] == 0)
     paths = write_patch(tmp_path, nside=16)

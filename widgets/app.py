@@ -108,7 +108,7 @@ class Workbench(widgets.VBox):
         header = widgets.HTML(
             f"<div style='font-size:120%;font-weight:600'>lensrec workbench "
             f"<span style='font-weight:400;color:#7f8c8d;font-size:80%'>v{html.escape(lensrec.__version__)} · "
-            "simulated skies of idealised surveys</span></div>"
+            "simulated skies of idealized surveys</span></div>"
         )
         super().__init__([header, self.tabs])
         self.add_class("lensrec-workbench")

@@ -10,7 +10,7 @@ EXAMPLES = """examples:
   lensrec demo --out wide/ --experiment wide_lowland
 
 writes DIR/index.html (figures as PNG beside it) and DIR/summary.json, and prints a summary table.
-The report describes one simulation of an idealised survey, not a result for any real survey."""
+The report describes one simulation of an idealized survey, not a result for any real survey."""
 
 
 def add_arguments(parser) -> None:

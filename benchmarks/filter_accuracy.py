@@ -91,9 +91,9 @@ def main() -> None:
             methods = [(f"jacobi {n}", functools.partial(harmonics.map2alm_tqu, maps, lmax, n, nthreads, True))
                        for n in range(5)]  # cost: (1 + 2 n) spin-0 and spin-2 transforms  # fmt: skip
             methods += [(f"pseudo {n}", functools.partial(pseudo, maps, nside, lmax, n, nthreads)) for n in (3, 5, 10)]
-            for method, analyse in methods:
+            for method, analyze in methods:
                 start = time.perf_counter()
-                estimate = analyse()
+                estimate = analyze()
                 seconds = time.perf_counter() - start
                 rows.append(
                     {

@@ -11,7 +11,7 @@ import urllib.request
 import pytest
 
 from lensrec.cli import main
-from lensrec.commands.lab import WORKBENCH_NOTEBOOK, lab_command
+from lensrec.commands.lab import WORKBENCH_NOTEBOOK, lab_command, working_copy
 
 
 class socket_port:
@@ -60,10 +60,35 @@ def test_lab_refuses_bad_input(kwargs, message):
         lab_command(**kwargs)
 
 
-def test_lab_dry_run_prints_the_command(capsys):
-    assert main(["lab", "--dry-run", "--port", "8877"]) == 0
+def test_lab_dry_run_prints_the_command(capsys, tmp_path):
+    folder = tmp_path / "work"
+    assert main(["lab", "--dry-run", "--port", "8877", "--folder", str(folder)]) == 0
     out = capsys.readouterr().out
     assert "jupyterlab" in out and "--ServerApp.port=8877" in out and "127.0.0.1" in out
+    # the working folder is served, not the source tree, and a dry run copies nothing
+    assert f"--ServerApp.root_dir={folder}" in out and "first copies" in out
+    assert not folder.exists()
+
+
+def test_lab_works_on_a_copy_and_never_overwrites_it(tmp_path):
+    folder = tmp_path / "work"
+    path, created = working_copy(str(folder))
+    assert created and path == str(folder / "workbench.ipynb")
+    with open(WORKBENCH_NOTEBOOK, "rb") as handle:
+        assert (folder / "workbench.ipynb").read_bytes() == handle.read()
+    (folder / "workbench.ipynb").write_text('{"edited": true}')  # the user's own edits
+    again, created = working_copy(str(folder))
+    assert again == path and not created
+    assert (folder / "workbench.ipynb").read_text() == '{"edited": true}'
+
+
+def test_lab_refuses_a_file_as_folder_and_both_options(tmp_path, capsys):
+    afile = tmp_path / "file"
+    afile.write_text("x")
+    with pytest.raises(ValueError, match="is not a folder"):
+        working_copy(str(afile))
+    assert main(["lab", "--dry-run", "--folder", str(tmp_path), "--notebook", WORKBENCH_NOTEBOOK]) == 2
+    assert "not both" in capsys.readouterr().err
 
 
 def test_lab_reports_a_missing_notebook(capsys):
@@ -72,9 +97,9 @@ def test_lab_reports_a_missing_notebook(capsys):
 
 
 def test_lab_starts_jupyterlab_with_the_workbench_open(tmp_path):
-    notebook = tmp_path / "workbench.ipynb"
-    with open(WORKBENCH_NOTEBOOK) as handle:
-        notebook.write_text(handle.read())
+    notebooks = os.path.dirname(WORKBENCH_NOTEBOOK)
+    before = sorted(os.listdir(notebooks))
+    folder = tmp_path / "work"
     with socket_port() as port:
         pass
     env = dict(os.environ, JUPYTER_CONFIG_DIR=str(tmp_path / "config"), JUPYTER_RUNTIME_DIR=str(tmp_path / "run"),
@@ -82,7 +107,7 @@ def test_lab_starts_jupyterlab_with_the_workbench_open(tmp_path):
     log = tmp_path / "lab.log"
     with open(log, "wb") as out:
         process = subprocess.Popen([sys.executable, "-m", "lensrec.cli", "lab", "--no-browser", "--port", str(port),
-                                    "--notebook", str(notebook)], stdout=out, stderr=subprocess.STDOUT,
+                                    "--folder", str(folder)], stdout=out, stderr=subprocess.STDOUT,
                                    stdin=subprocess.DEVNULL, env=env)  # fmt: skip
         try:
             url = None
@@ -102,3 +127,5 @@ def test_lab_starts_jupyterlab_with_the_workbench_open(tmp_path):
         finally:
             process.terminate()  # the command became the JupyterLab process, so this stops the server
             process.wait(30)
+    assert (folder / "workbench.ipynb").is_file()  # served from the user's copy ...
+    assert sorted(os.listdir(notebooks)) == before  # ... and nothing was added beside the tracked notebook

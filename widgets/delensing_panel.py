@@ -18,10 +18,10 @@ from lensrec import delensing, harmonics
 from lensrec.labels import ESTIMATORS, uses_b_modes
 
 from .plotting import COLORS, PAIR, FigureView, d_ell, finite_or_nan, set_log_range, style_axes
-from .section import Section, heading, labelled
+from .section import Section, heading, labelled, row
 from .work import LongTask
 
-__all__ = ["DelensingSection", "delensing_with_source"]
+__all__ = ["DelensingSection", "delensing_with_source", "sky_forecast"]
 
 
 def delensing_with_source(sky, reconstruction, experiment, spectra, lmax, method, source, tracer_name, nthreads,
@@ -68,6 +68,24 @@ def delensing_with_source(sky, reconstruction, experiment, spectra, lmax, method
 
 
 TEMPLATE_NEEDS = ("reconstruct", "delens_maps")
+# template methods of lensrec.lensing_templates, by their names on screen
+METHOD_NAMES = {"remap": "exact remapping", "first_order": "first order", "remap_delensed_e": "remapping of delensed E"}
+ALENS_RES = "<i>A</i><sub>lens</sub><sup>res</sup>"
+
+
+def sky_forecast(experiment, spectra, reconstruction, lmax: int, nthreads=None):
+    """The delensing forecast for what one simulated sky can do: its band limit and its reconstruction's N0.
+
+    The same recipe as ``lensrec demo``: the experiment's multipole ranges capped at the sky's band limit,
+    N0 of the reconstruction (infinite above its lmax_L) and B modes up to min(lmax, 1000).
+    """
+    n0 = np.full(spectra.lmax + 1, np.inf)
+    n0[: reconstruction.lmax_L + 1] = reconstruction.n0["gradient"]
+    limited = experiment.replace(
+        ell_max_temperature=min(experiment.ell_max_temperature, lmax),
+        ell_max_polarization=min(experiment.ell_max_polarization, lmax),
+    )
+    return lensrec.delensing_forecast(limited, spectra, n0=n0, lmax=min(lmax, 1000), nthreads=nthreads)
 
 
 class DelensingSection(Section):
@@ -76,7 +94,8 @@ class DelensingSection(Section):
     guide = (
         "Forecast: the lensing B modes left after subtracting a template built from the lensing reconstruction "
         "of the chosen estimator (its N0 from the Estimator noise tab) and the experiment's E modes. "
-        "Efficiency = 1 − C_ℓ^res / C_ℓ^lens. σ(r) is a BB-only Fisher forecast at the experiment's sky fraction."
+        r"Efficiency $= 1 - C_\ell^\mathrm{res} / C_\ell^\mathrm{lens}$. $\sigma(r)$ is a BB-only Fisher forecast at "
+        r"the experiment's sky fraction $f_\mathrm{sky}$."
     )
 
     def __init__(self, state, nthreads=None):
@@ -85,20 +104,22 @@ class DelensingSection(Section):
         self.forecast = None
         self.forecast_noise = None
         self.estimator = labelled(widgets.Dropdown(options=["MV"], value="MV", description="N0 of estimator"), "18em")
-        self.lmax = labelled(widgets.IntText(value=0, description="lmax"), "16em")
-        self.ell_min_b = labelled(widgets.IntText(value=0, description="ell_min_b"), "16em")
-        self.r = labelled(widgets.FloatText(value=0.0, description="fiducial r"), "16em")
-        self.hint = widgets.HTML(
-            "<span style='color:#515a5a'>0 means the default: lmax = min(ell_max_polarization, 1000), "
-            "ell_min_b = the experiment's ell_min.</span>"
+        self.lmax = labelled(widgets.IntText(value=0, description=r"highest B-mode $\ell$"), "18em")
+        self.ell_min_b = labelled(widgets.IntText(value=0, description=r"lowest B-mode $\ell$"), "18em")
+        self.r = labelled(widgets.FloatText(value=0.0, description="fiducial $r$"), "18em")
+        self.hint = widgets.HTMLMath(
+            "<span style='color:#515a5a'>0 means the default: the highest $\\ell$ is the smaller of the "
+            "experiment's highest polarization $\\ell$ and 1000; the lowest is the experiment's lowest $\\ell$."
+            "</span>"
         )
         self.forecast_button = widgets.Button(description="Forecast", icon="play", button_style="primary")
         self.forecast_button.add_class("lensrec-forecast")
-        self.task = LongTask(self.forecast_button, self.status, "Forecasting the delensed B modes", "delensing")
-        self.tasks.append(self.task)
         self.summary = widgets.HTML()
         self.summary.add_class("lensrec-delensing-summary")
         self.view = FigureView(PAIR, name="delensing-bb")
+        self.task = LongTask(self.forecast_button, self.status, "Forecasting the delensed B modes", "delensing",
+                             views=[self.view])  # fmt: skip
+        self.tasks.append(self.task)
         self._build_figure()
         self.template_area = self._template_area()
 
@@ -108,11 +129,11 @@ class DelensingSection(Section):
         self.layout(
             controls=[
                 heading("Forecast from the reconstruction noise"),
-                widgets.HBox([self.estimator, self.lmax, self.ell_min_b, self.r]),
+                row([self.estimator, self.lmax, self.ell_min_b, self.r]),
                 self.hint,
-                widgets.HBox([self.forecast_button, self.task.widget]),
+                row([self.forecast_button, self.task.widget], align="center"),
             ],
-            outputs=[widgets.HBox([self.view.widget, self.summary]), self.template_area],
+            outputs=[row([self.view.widget, self.summary]), self.template_area],
         )
 
     def _template_area(self):
@@ -128,6 +149,7 @@ class DelensingSection(Section):
         self.template_ready = True
         self.template = None
         self.bias_free = None
+        self.sky_forecast = None
         self.method = widgets.ToggleButtons(options=[("first order", "first_order"), ("exact remapping", "remap"),
                                                      ("remapping of delensed E", "remap_delensed_e")],
                                             value=delensing.DEFAULT_TEMPLATE_METHOD,
@@ -142,11 +164,14 @@ class DelensingSection(Section):
                                                 description="tracer"), "18em")  # fmt: skip
         self.build_button = widgets.Button(description="Build template", icon="play", button_style="primary")
         self.build_button.add_class("lensrec-build-template")
-        self.template_task = LongTask(self.build_button, self.status, "Building the B-mode template", "template")
-        self.tasks.append(self.template_task)
+        self.template_cancel = widgets.Button(description="Cancel", icon="stop", button_style="warning")
+        self.template_cancel.add_class("lensrec-cancel-template")
         self.template_summary = widgets.HTML()
         self.template_summary.add_class("lensrec-template-summary")
         self.template_view = FigureView(PAIR, name="delensing-template")
+        self.template_task = LongTask(self.build_button, self.status, "Building the B-mode template", "template",
+                                      cancel_button=self.template_cancel, views=[self.template_view])  # fmt: skip
+        self.tasks.append(self.template_task)
         self._build_template_figure()
         self.build_button.on_click(lambda _button: self.build_template())
         self.state.observe(self._on_reconstruction, names="reconstruction")
@@ -157,14 +182,14 @@ class DelensingSection(Section):
                          "the simulated maps, lensed by the Wiener-filtered reconstruction of the Reconstruction tab, "
                          "give a B-mode template; it is subtracted from the observed (beam-deconvolved) B modes.</div>"),
             self.method,
-            widgets.HBox([self.phi_source, self.tracer]),
+            row([self.phi_source, self.tracer], align="center"),
             widgets.HTML("<div style='color:#515a5a;max-width:60em;line-height:1.45'>internal: the reconstruction "
                          "(with B modes reused, its residual is shown beside one from a reconstruction without the "
                          "delensed B modes); tracer: a simulated invented tracer correlated with the sky's φ; "
                          "combined: tracer and reconstruction combined optimally; exact φ: the sky's own φ "
                          "(the perfect-knowledge bound).</div>"),
-            widgets.HBox([self.build_button, self.template_task.widget]),
-            widgets.HBox([self.template_view.widget, self.template_summary]),
+            row([self.build_button, self.template_cancel, self.template_task.widget], align="center"),
+            row([self.template_view.widget, self.template_summary]),
         ])  # fmt: skip
 
     def _on_reconstruction(self, change) -> None:
@@ -172,6 +197,7 @@ class DelensingSection(Section):
             self.status.warn("The reconstruction has changed; the template shown before belonged to the previous one.")
             self.template = None
             self.template_summary.value = ""
+            self.sky_forecast = None
         if change["new"] is None:
             self.template_view.show_note("No reconstruction yet: simulate a sky (Sky tab) and reconstruct it "
                                          "(Reconstruction tab), then press <b>Build template</b>.")  # fmt: skip
@@ -194,6 +220,7 @@ class DelensingSection(Section):
             self.view.show_note("Press <b>Forecast</b> to see the delensed B modes for the current experiment.")
         elif self.forecast_noise is not noise:
             self.status.warn("The reconstruction noise has changed since this forecast; press Forecast to update it.")
+            self.view.mark_stale("out of date: the reconstruction noise has changed since this forecast")
 
     # ---------------------------------------------------------------------------------- forecast
     def run_forecast(self) -> bool:
@@ -242,15 +269,22 @@ class DelensingSection(Section):
             return False
 
         def work(report, cancel):
-            return delensing_with_source(sky, reconstruction, experiment, spectra, lmax, method, source, tracer_name,
-                                         nthreads, report)  # fmt: skip
+            results = delensing_with_source(sky, reconstruction, experiment, spectra, lmax, method, source, tracer_name,
+                                            nthreads, report)  # fmt: skip
+            forecast = None
+            if source == "internal":  # the forecast for this sky's band limit and its reconstruction's N0
+                report(0.9, "forecast for this sky's band limit and reconstruction noise…")
+                forecast = sky_forecast(experiment, spectra, reconstruction, lmax, nthreads)
+            return results, forecast
 
-        def finish(results):
-            result, bias_free, label = results
+        def finish(outcome):
+            (result, bias_free, label), forecast = outcome
             self.template, self.template_estimator, self.bias_free = result, label, bias_free
+            self.sky_forecast = forecast
             self._draw_template()
-            return (f"Template ({method}) from {label}: measured A_lens^res = {result.alens_residual:.2f} over ℓ "
-                    f"{result.ell_min}–{result.ell_max}.")  # fmt: skip
+            beside = "" if forecast is None else f"; forecast for this sky's settings {forecast.alens_residual:.2f}"
+            return (f"Template ({METHOD_NAMES.get(method, method)}) from {label}: measured A_lens^res = "
+                    f"{result.alens_residual:.2f} over ℓ {result.ell_min}–{result.ell_max}{beside}.")  # fmt: skip
 
         return self.template_task.start(work, finish)
 
@@ -310,22 +344,33 @@ class DelensingSection(Section):
         top = values.max() * 30.0
         self.ax_tbb.set_ylim(max(values.min() / 3.0, top * 1e-6), top)  # a weak template stays in view
         self.template_title.set_text(
-            f"B modes of the simulated sky – {result.method} template, {self.template_estimator}"
+            f"B modes of the simulated sky – {METHOD_NAMES.get(result.method, result.method)} template, "
+            f"{self.template_estimator}"
         )
         self.template_view.draw()
         bias = self.template_estimator in lensrec.labels.ESTIMATORS and uses_b_modes(self.template_estimator)
-        rows = [("A_lens^res (measured)", f"<b>{result.alens_residual:.3f}</b>"),
-                ("ℓ range", f"{result.ell_min}–{result.ell_max}"), ("template", html.escape(result.method))]  # fmt: skip
+        forecast = self.sky_forecast
+        rows = [(f"{ALENS_RES}, measured", f"<b>{result.alens_residual:.3f}</b>")]
+        if forecast is not None:
+            rows.append((f"{ALENS_RES}, forecast for this sky", f"<b>{forecast.alens_residual:.3f}</b>"))
+        rows += [("ℓ range (measured)", f"{result.ell_min}–{result.ell_max}")]
+        if forecast is not None:
+            rows.append(("ℓ range (forecast)", f"{forecast.ell_min}–{forecast.ell_max}"))
+        rows.append(("template", html.escape(METHOD_NAMES.get(result.method, result.method))))
         if free is not None:
             reused = delensing.measured_alens_residual(result.residual_bb, result.lensed_bb, result.noise_bb,
                                                        free.ell_min, free.ell_max)  # fmt: skip
-            rows += [(f"A_lens^res, B reused (ℓ {free.ell_min}–{free.ell_max})", f"{reused:.3f}"),
-                     ("A_lens^res, bias-free (same ℓ)", f"<b>{free.alens_residual:.3f}</b>")]  # fmt: skip
+            rows += [(f"{ALENS_RES}, B reused (ℓ {free.ell_min}–{free.ell_max})", f"{reused:.3f}"),
+                     (f"{ALENS_RES}, bias-free (same ℓ)", f"<b>{free.alens_residual:.3f}</b>")]  # fmt: skip
         self.template_summary.value = (
             "<table style='margin:1.5em 1em;border-collapse:collapse;white-space:nowrap'>"
             + "".join(f"<tr><td style='padding:2px 8px'>{name}</td><td>{value}</td></tr>" for name, value in rows)
             + "</table>"
-            + ("<div style='margin:0 1em;max-width:18em;color:#9a7d0a;font-size:90%'>⚠ φ was reconstructed with "
+            + ("" if forecast is None else
+               "<div style='margin:0 1em;max-width:22em;color:#515a5a;font-size:90%'>The forecast uses this sky's "
+               "band limit and its reconstruction's N0, so it is comparable with the measured value (one simulated "
+               "sky scatters around it).</div>")
+            + ("<div style='margin:0.5em 1em;max-width:22em;color:#9a7d0a;font-size:90%'>⚠ φ was reconstructed with "
                f"{html.escape(self.template_estimator)}, which uses these B modes: the residual is biased low "
                "(delensing bias); the bias-free residual beside it comes from a reconstruction without the "
                "delensed B modes.</div>" if bias else "")

@@ -16,26 +16,26 @@ import numpy as np
 import lensrec
 
 from .plotting import COLORS, WIDE, FigureView, d_ell, finite_or_nan, style_axes
-from .section import Section, heading, labelled
+from .section import Section, column, heading, labelled, row
 from .work import LiveUpdate, guarded
 
 __all__ = ["ExperimentSection"]
 
 CUSTOM = ""
 PLOT_LMAX = 5000
-# field name -> (widget kind, label); labels use the library's own words with their units
+# field name -> (widget kind, label); labels are words and rendered math, with units
 CONTROLS = {
-    "noise_temperature": ("float", "Δ_T (µK-arcmin)"),
-    "noise_polarization": ("float", "Δ_P (µK-arcmin)"),
+    "noise_temperature": ("float", r"$\Delta_T$ (µK-arcmin)"),
+    "noise_polarization": ("float", r"$\Delta_P$ (µK-arcmin)"),
     "beam_fwhm": ("float", "beam FWHM (arcmin)"),
-    "ell_min": ("int", "ell_min"),
-    "ell_max_temperature": ("int", "ell_max T"),
-    "ell_max_polarization": ("int", "ell_max E, B"),
-    "ell_knee_temperature": ("float", "ell_knee T (0 = off)"),
-    "alpha_knee_temperature": ("float", "alpha_knee T (< 0)"),
-    "ell_knee_polarization": ("float", "ell_knee E, B (0 = off)"),
-    "alpha_knee_polarization": ("float", "alpha_knee E, B (< 0)"),
-    "sky_fraction": ("float", "sky_fraction"),
+    "ell_min": ("int", r"lowest $\ell$"),
+    "ell_max_temperature": ("int", r"highest $\ell$ of T"),
+    "ell_max_polarization": ("int", r"highest $\ell$ of E, B"),
+    "ell_knee_temperature": ("float", r"$\ell_\mathrm{knee}$ of T (0 = off)"),
+    "alpha_knee_temperature": ("float", r"$\alpha_\mathrm{knee}$ of T (< 0)"),
+    "ell_knee_polarization": ("float", r"$\ell_\mathrm{knee}$ of E, B (0 = off)"),
+    "alpha_knee_polarization": ("float", r"$\alpha_\mathrm{knee}$ of E, B (< 0)"),
+    "sky_fraction": ("float", r"sky fraction $f_\mathrm{sky}$"),
 }
 
 
@@ -44,8 +44,9 @@ class ExperimentSection(Section):
     name = "experiment"
     guide = (
         "Pick a shipped example or set the survey by hand. Noise levels are white-noise depths in "
-        "µK-arcmin; the optional 1/f term multiplies the noise by 1 + (ℓ/ell_knee)^alpha. Each change is "
-        "checked at once: an invalid setting is reported below and the previous experiment is kept."
+        r"µK-arcmin; the optional 1/f term multiplies the noise power by $1 + (\ell/\ell_\mathrm{knee})^{\alpha}$. "
+        "Each change is checked at once: an invalid setting is reported below and the previous experiment is "
+        "kept. Editing an example renames it (“… (modified)”) so titles never show a survey that was changed."
     )
 
     def __init__(self, state, delay: float = 0.05):
@@ -66,16 +67,20 @@ class ExperimentSection(Section):
             control = labelled(box(description=label, continuous_update=False), "18em")
             control.add_class(f"lensrec-{key.replace('_', '-')}")
             self.controls[key] = control
-        self.sqrt2 = widgets.Checkbox(description="Δ_P = √2 Δ_T", indent=False, layout=widgets.Layout(width="10em"))
+        self.sqrt2 = widgets.Checkbox(description=r"$\Delta_P = \sqrt{2}\,\Delta_T$", indent=False,
+                                      layout=widgets.Layout(width="10em", min_width="10em"))  # fmt: skip
         self.path_box = widgets.Text(
             description="TOML file",
             placeholder="my_survey.toml",
             style={"description_width": "6em"},
-            layout=widgets.Layout(width="26em"),
+            layout=widgets.Layout(width="26em", min_width="26em"),
         )
-        self.load_button = widgets.Button(description="Load", icon="folder-open", layout=widgets.Layout(width="7em"))
-        self.save_button = widgets.Button(description="Save", icon="save", layout=widgets.Layout(width="7em"))
-        self.overwrite = widgets.Checkbox(description="overwrite", indent=False, layout=widgets.Layout(width="8em"))
+        self.load_button = widgets.Button(description="Load", icon="folder-open",
+                                          layout=widgets.Layout(width="7em", min_width="7em"))  # fmt: skip
+        self.save_button = widgets.Button(description="Save", icon="save",
+                                          layout=widgets.Layout(width="7em", min_width="7em"))  # fmt: skip
+        self.overwrite = widgets.Checkbox(description="overwrite", indent=False,
+                                          layout=widgets.Layout(width="8em", min_width="8em"))  # fmt: skip
 
         self.view = FigureView(WIDE, name="experiment-spectra")
         self._build_figure()
@@ -91,7 +96,7 @@ class ExperimentSection(Section):
         state.observe(self._on_experiment, names="experiment")
 
         c = self.controls
-        temperature = widgets.VBox(
+        temperature = column(
             [
                 heading("Temperature"),
                 c["noise_temperature"],
@@ -100,21 +105,21 @@ class ExperimentSection(Section):
                 c["alpha_knee_temperature"],
             ]
         )
-        polarization = widgets.VBox(
+        polarization = column(
             [
                 heading("Polarization"),
-                widgets.HBox([c["noise_polarization"], self.sqrt2]),
+                row([c["noise_polarization"], self.sqrt2], align="center"),
                 c["ell_max_polarization"],
                 c["ell_knee_polarization"],
                 c["alpha_knee_polarization"],
             ]
         )
-        common = widgets.VBox([heading("Beam, range, sky"), c["beam_fwhm"], c["ell_min"], c["sky_fraction"]])
+        common = column([heading("Beam, range, sky"), c["beam_fwhm"], c["ell_min"], c["sky_fraction"]])
         self.layout(
             controls=[
-                widgets.HBox([self.picker, self.name_box]),
-                widgets.HBox([temperature, polarization, common]),
-                widgets.HBox([self.path_box, self.load_button, self.save_button, self.overwrite]),
+                row([self.picker, self.name_box]),
+                row([temperature, polarization, common]),
+                row([self.path_box, self.load_button, self.save_button, self.overwrite], align="center"),
             ],
             outputs=[self.view.widget],
         )
@@ -137,8 +142,22 @@ class ExperimentSection(Section):
         except (ValueError, TypeError) as exc:
             self.status.error(f"Experiment not updated: {' '.join(str(exc).split())}")
             return
+        if change["owner"] is not self.name_box:
+            experiment = self._renamed_if_modified(experiment)
         self.state.experiment = experiment
         self.status.ok(f"Experiment updated: {_summary(experiment)}.")
+
+    def _renamed_if_modified(self, experiment: lensrec.Experiment) -> lensrec.Experiment:
+        """A shipped example whose settings were edited gets " (modified)" added to its name (shown at once)."""
+        name = experiment.name
+        if name not in lensrec.available_experiments():
+            return experiment
+        if lensrec.load_experiment(name) == experiment:
+            return experiment
+        renamed = experiment.replace(name=f"{name} (modified)")
+        with self._suspend():
+            self.name_box.value = renamed.name
+        return renamed
 
     def _on_pick(self, change) -> None:
         if self._suspended or not change["new"]:

@@ -15,8 +15,17 @@ import numpy as np
 import lensrec
 from lensrec.labels import COMPONENTS, ESTIMATORS, ITERATIVE_ESTIMATORS, PAIR_ESTIMATORS
 
-from .plotting import COLORS, WIDE, FigureView, estimator_color, finite_or_nan, phi_plot_units, style_axes
-from .section import Section, labelled
+from .plotting import (
+    COLORS,
+    WIDE,
+    FigureView,
+    estimator_color,
+    finite_or_nan,
+    phi_plot_units,
+    set_log_range,
+    style_axes,
+)
+from .section import Section, labelled, row
 from .work import LiveUpdate
 
 __all__ = ["EstimatorNoiseSection", "ESTIMATORS", "UNIT_LABELS"]
@@ -36,12 +45,14 @@ class EstimatorNoiseSection(Section):
     name = "noise"
     guide = (
         "Gaussian reconstruction noise N0 of each quadratic estimator (full sky, normalized to unit response) "
-        "against the lensing signal. The curl component is a null test: its signal is zero, C_L^φφ is drawn "
-        "only for scale. Lensing S/N: √Σ f_sky (2L+1)/2 [C_L^φφ/(C_L^φφ+N0_L)]² (gradient, L ≥ 2; f_sky: sky fraction). "
-        "'quadratic + iterative' adds the converged noise of the iterative estimator (EB, MV; dashed): the "
-        "fixed point of delensing with the residual lensing power and estimating again (Smith et al. 2012). "
-        "'N0 + N1' adds the analytic N1 bias (dash-dot; Kesden, Cooray & Kamionkowski 2003), computed on the "
-        "flat sky on a coarse L grid and interpolated: the total noise of the reconstructed power spectrum."
+        r"against the lensing signal. The curl component is a null test: its signal is zero, $C_L^{\phi\phi}$ is "
+        "drawn only for scale. Lensing S/N: "
+        r"$\sqrt{\sum_{L\geq 2} f_\mathrm{sky}\,\frac{2L+1}{2}\left[C_L^{\phi\phi}/(C_L^{\phi\phi}+N^{(0)}_L)\right]^2}$"
+        r" (gradient; $f_\mathrm{sky}$: sky fraction). 'quadratic + iterative' adds the converged noise of the "
+        "iterative estimator (EB, MV; dashed): the fixed point of delensing with the residual lensing power and "
+        "estimating again (Smith et al. 2012). 'N0 + N1' adds the analytic N1 bias (dash-dot; Kesden, Cooray & "
+        "Kamionkowski 2003), computed on the flat sky on a coarse L grid and interpolated: the total noise of the "
+        "reconstructed power spectrum."
     )
 
     def __init__(self, state, delay: float = 0.3, nthreads=None):
@@ -52,15 +63,19 @@ class EstimatorNoiseSection(Section):
         self.snr: dict[str, float] = {}
         self.compute_seconds = None
         self.estimator_boxes = {
-            label: widgets.Checkbox(value=True, description=label, indent=False, layout=widgets.Layout(width="5.5em"))
+            label: widgets.Checkbox(
+                value=True, description=label, indent=False, layout=widgets.Layout(width="6em", min_width="6em")
+            )  # fmt: skip
             for label in ESTIMATORS
         }
         for label, box in self.estimator_boxes.items():
             box.add_class(f"lensrec-estimator-{label}")
-        self.lmax_L = labelled(widgets.IntText(value=0, description="lmax_L"), "18em")
-        self.lmax_L_hint = widgets.HTML("<span style='color:#515a5a'>&nbsp;0 = the experiment's largest ℓ_max</span>")
+        self.lmax_L = labelled(widgets.IntText(value=0, description="highest lensing $L$"), "18em")
+        self.lmax_L_hint = widgets.HTMLMath(
+            "<span style='color:#515a5a'>&nbsp;0 = up to the experiment's highest $\\ell$</span>"
+        )
         self.units = widgets.ToggleButtons(
-            options=[("φ: [L(L+1)]² C_L/2π", "phi"), ("κ: C_L^κκ", "kappa")],
+            options=[("φ: lensing potential", "phi"), ("κ: convergence", "kappa")],
             value="phi",
             style={"button_width": "12em"},
         )
@@ -90,15 +105,19 @@ class EstimatorNoiseSection(Section):
 
         self.layout(
             controls=[
-                widgets.HBox(
-                    [widgets.Label("estimators", layout=widgets.Layout(width="6em")), *self.estimator_boxes.values()]
+                row(
+                    [
+                        widgets.Label("estimators", layout=widgets.Layout(width="6em", min_width="6em")),
+                        *self.estimator_boxes.values(),
+                    ],
+                    align="center",
                 ),  # fmt: skip
-                widgets.HBox([self.lmax_L, self.lmax_L_hint]),
+                row([self.lmax_L, self.lmax_L_hint], align="center"),
                 self.component,
                 self.units,
-                widgets.HBox([self.curves, self.with_n1]),
+                row([self.curves, self.with_n1], align="center"),
             ],
-            outputs=[widgets.HBox([self.view.widget, self.table])],
+            outputs=[row([self.view.widget, self.table])],
         )
         self.update.trigger()
 
@@ -116,6 +135,7 @@ class EstimatorNoiseSection(Section):
         experiment, spectra, estimators, lmax_L = inputs
         if not estimators:
             self.view.show_note("Tick at least one estimator to compute its N0.")
+            self.table.value = ""  # no S/N for estimators that are not chosen
             self.status.warn("No estimator selected.")
             return
         if self.result_inputs is None or not _same_inputs(self.result_inputs, inputs):
@@ -136,10 +156,10 @@ class EstimatorNoiseSection(Section):
             self.result, self.result_inputs = result, inputs
             self.snr = result.lensing_snr()
             self.state.noise = result
-            self.status.ok(
-                f"N0 of {', '.join(estimators)} for {experiment.name}, L ≤ {int(result.L[-1])}, "
-                f"in {self.compute_seconds:.2f} s."
-            )
+        self.status.ok(
+            f"N0 of {', '.join(estimators)} for {experiment.name}, L ≤ {int(self.result.L[-1])}, "
+            f"in {self.compute_seconds:.2f} s."
+        )
         self._run_iterative(inputs)
         self._run_n1(inputs)
         self._draw()
@@ -191,16 +211,17 @@ class EstimatorNoiseSection(Section):
         self.lines = {}
         for label in ESTIMATORS:
             style = {"lw": 2.0} if label not in PAIR_ESTIMATORS else {"lw": 1.3, "alpha": 0.9}
-            (self.lines[label],) = self.ax.plot([], [], color=estimator_color(label), label=f"N0 {label}", **style)
+            (self.lines[label],) = self.ax.plot([], [], color=estimator_color(label), label=f"$N^{{(0)}}$ {label}",
+                                                **style)  # fmt: skip
         self.n1_lines = {}
         for label in ESTIMATORS:
             (self.n1_lines[label],) = self.ax.plot(
-                [], [], color=estimator_color(label), lw=1.6, ls="-.", label=f"N0+N1 {label}"
+                [], [], color=estimator_color(label), lw=1.6, ls="-.", label=f"$N^{{(0)}}+N^{{(1)}}$ {label}"
             )
         self.iterative_lines = {}
         for label in ITERATIVE_ESTIMATORS:
             (self.iterative_lines[label],) = self.ax.plot(
-                [], [], color=estimator_color(label), lw=2.0, ls="--", label=f"N0 {label} iterative"
+                [], [], color=estimator_color(label), lw=2.0, ls="--", label=f"$N^{{(0)}}$ {label} iterative"
             )
         self.ax.set_xscale("log")
         self.ax.set_yscale("log")
@@ -228,9 +249,9 @@ class EstimatorNoiseSection(Section):
         shown = L >= 2
         self.signal_line.set_data(L[shown], phi_plot_units(result.phi_spectrum, units)[shown])
         self.signal_line.set_linestyle("-" if component == "gradient" else ":")
-        self.signal_line.set_label(
-            "signal $C_L^{\\phi\\phi}$" if component == "gradient" else "$C_L^{\\phi\\phi}$ (scale only: curl signal is 0)"
-        )  # fmt: skip
+        symbol = r"$C_L^{\phi\phi}$" if units == "phi" else r"$C_L^{\kappa\kappa}$"
+        self.signal_line.set_label(f"signal {symbol}" if component == "gradient"
+                                   else f"{symbol} (scale only: curl signal is 0)")  # fmt: skip
         for label, line in self.lines.items():
             if label in result.n0:
                 n0 = finite_or_nan(result.n0[label][component])
@@ -257,7 +278,7 @@ class EstimatorNoiseSection(Section):
             else:
                 line.set_data([], [])
                 line.set_visible(False)
-        self.ax.set_xlim(2, max(3, int(L[-1])))
+        set_log_range(self.ax, 2, max(3, int(L[-1])))
         self.ax.set_ylim(*Y_LIMITS)
         self.ax.set_ylabel(UNIT_LABELS[units] + ("" if units == "kappa" else "   (φ units)"))
         handles = [self.signal_line] + [

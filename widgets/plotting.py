@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import io
 import threading
+from html import escape
 
 import ipywidgets as widgets
 import numpy as np
@@ -31,6 +32,7 @@ __all__ = [
     "finite_or_nan",
     "symmetric_limit",
     "set_log_range",
+    "labelled_ticks",
 ]
 
 DPI = 96
@@ -129,12 +131,38 @@ def style_axes(ax, grid: bool = True) -> None:
 
 
 def set_log_range(ax, low: float, high: float, axis: str = "x") -> None:
-    """Set a log axis range; within less than a decade also label the minor ticks (else none would show)."""
-    from matplotlib.ticker import FormatStrFormatter, NullFormatter
+    """Set a log axis range and make sure it labels at least two ticks.
+
+    Over less than two decades at most one power of ten is in view, so the minor ticks at 2× and 5× each
+    power of ten (all of 2–9× within one decade) are labelled too; wider ranges label the powers of ten only.
+    """
+    from matplotlib.ticker import FormatStrFormatter, LogFormatterSciNotation, LogLocator, NullFormatter
 
     (ax.set_xlim if axis == "x" else ax.set_ylim)(low, high)
     target = ax.xaxis if axis == "x" else ax.yaxis
-    target.set_minor_formatter(FormatStrFormatter("%g") if high < 10.0 * low else NullFormatter())
+    decades = np.log10(high / low) if low > 0 and high > low else 0.0
+    if decades < 2.0:  # plain numbers on major and minor ticks alike, so the labels read as one scale
+        subs = np.arange(2.0, 10.0) if decades < 1.0 else (2.0, 5.0)
+        target.set_minor_locator(LogLocator(base=10.0, subs=subs))
+        target.set_minor_formatter(FormatStrFormatter("%g"))
+        target.set_major_formatter(FormatStrFormatter("%g"))
+    else:
+        target.set_minor_locator(LogLocator(base=10.0, subs=np.arange(2.0, 10.0)))
+        target.set_minor_formatter(NullFormatter())
+        target.set_major_formatter(LogFormatterSciNotation())
+
+
+def labelled_ticks(ax, axis: str = "x") -> list[str]:
+    """The tick labels drawn inside the axis range (major and minor), for tests and checks."""
+    ax.figure.canvas.draw()
+    target = ax.xaxis if axis == "x" else ax.yaxis
+    low, high = sorted(ax.get_xlim() if axis == "x" else ax.get_ylim())
+    labels = []
+    for tick in [*target.get_major_ticks(), *target.get_minor_ticks()]:
+        position, text = tick.get_loc(), tick.label1.get_text()
+        if text and tick.label1.get_visible() and low <= position <= high:
+            labels.append(text)
+    return labels
 
 
 class FigureView:
@@ -161,11 +189,15 @@ class FigureView:
         self.figure = Figure(figsize=size, dpi=DPI)
         self.canvas = FigureCanvasAgg(self.figure)
         width, height = int(round(size[0] * DPI)), int(round(size[1] * DPI))
-        self.image = widgets.Image(format="png", layout=widgets.Layout(width=f"{width}px", height=f"{height}px"))
+        self.size_px = (width, height)
+        # The image is as wide as the figure, or as its container when that is narrower; its height follows
+        # from the PNG's own aspect ratio (height auto), so a narrow window scales the figure down instead of
+        # squashing it. The box is a block (not a flex row) so the image is never stretched across its axis.
+        self.image = widgets.Image(format="png", layout=widgets.Layout(width="100%", height="auto", min_width="0"))
         self.image.add_class(f"lensrec-plot-{name}")
         self.note = widgets.HTML(
             layout=widgets.Layout(
-                width=f"{width}px",
+                width="100%",
                 height=f"{height}px",
                 display="none",
                 align_items="center",
@@ -175,7 +207,13 @@ class FigureView:
             ),
         )
         self.note.add_class(f"lensrec-note-{name}")
-        self.widget = widgets.Box([self.image, self.note])
+        self.banner = widgets.HTML(layout=widgets.Layout(display="none", width="100%"))
+        self.banner.add_class(f"lensrec-stale-{name}")
+        self.widget = widgets.Box(
+            [self.banner, self.image, self.note],
+            layout=widgets.Layout(display="block", width=f"{width}px", max_width="100%", flex="0 1 auto"),
+        )
+        self.widget.add_class("lensrec-figure")
         self.draws = 0
         self._lock = threading.Lock()
         self.show_note("drawing…")  # never an empty image (a browser shows a broken-image icon for one)
@@ -189,12 +227,33 @@ class FigureView:
             self.draws += 1
         self.note.layout.display = "none"
         self.image.layout.display = None
+        self.clear_stale()
+
+    def mark_stale(self, text: str) -> None:
+        """Keep the plot but put a visible out-of-date mark above it (no mark when no plot is shown)."""
+        if not self.showing_plot:
+            return
+        self.banner.value = (
+            "<div style='background:#fcf3cf;color:#7d6608;padding:2px 8px;border-left:3px solid #b7950b'>"
+            f"⚠ {escape(text)}</div>"
+        )
+        self.banner.layout.display = None
+
+    def clear_stale(self) -> None:
+        self.banner.value = ""
+        self.banner.layout.display = "none"
+
+    @property
+    def stale(self) -> bool:
+        """True while the plot carries an out-of-date mark."""
+        return self.banner.layout.display != "none"
 
     def show_note(self, html: str) -> None:
         """Hide the plot and show ``html`` in its place (same size), e.g. what to do to get the plot."""
         self.note.value = f"<div style='color:#515a5a;max-width:36em'>{html}</div>"
         self.image.layout.display = "none"
         self.note.layout.display = "flex"
+        self.clear_stale()
 
     @property
     def showing_plot(self) -> bool:

@@ -30,8 +30,8 @@ from .plotting import (
     style_axes,
     symmetric_limit,
 )
-from .section import Section, labelled
-from .work import LongTask
+from .section import Section, labelled, row
+from .work import Cancelled, LongTask
 
 __all__ = ["ReconstructionSection", "band_average"]
 
@@ -39,6 +39,8 @@ MAPS_FIGURE = (10.4, 3.4)
 SPECTRA_FIGURE = (10.4, 3.8)
 MOLLWEIDE_XSIZE = 600
 BANDS = 16
+# what reconstruct's progress(done, total) steps mean for the quadratic estimator
+RECONSTRUCTION_STEPS = {0: "filtering the maps…", 1: "forming the quadratic estimate…", 2: "normalising…"}
 
 
 def band_average(values, L_min: int, L_max: int, bands: int = BANDS, scale=None):
@@ -73,12 +75,14 @@ class ReconstructionSection(Section):
         self.estimator = labelled(widgets.Dropdown(options=list(ESTIMATORS), value="MV", description="estimator"),
                                   "18em")  # fmt: skip
         self.estimator.add_class("lensrec-reconstruction-estimator")
-        self.lmax_L = labelled(widgets.IntText(value=0, description="lmax_L"), "16em")
-        self.filter = labelled(widgets.Dropdown(options=list(FILTERS), value="auto", description="filter"), "16em")
+        self.lmax_L = labelled(widgets.IntText(value=0, description="highest lensing $L$"), "18em")
+        self.filter = labelled(widgets.Dropdown(options=list(FILTERS), value="auto", description="filter"), "18em")
         self.filter.add_class("lensrec-reconstruction-filter")
-        self.hint = widgets.HTML("<span style='color:#515a5a'>&nbsp;0 = the sky's lmax</span>")
+        self.hint = widgets.HTMLMath(
+            "<span style='color:#515a5a'>&nbsp;0 = the sky's band limit $\\ell_\\mathrm{max}$</span>"
+        )
         self.lensing_iterations = labelled(
-            widgets.BoundedIntText(value=0, min=0, max=10, description="lensing iterations"), "16em"
+            widgets.BoundedIntText(value=0, min=0, max=10, description="lensing iterations"), "18em"
         )
         self.lensing_iterations.add_class("lensrec-lensing-iterations")
         self.iterations_hint = widgets.HTML(
@@ -86,26 +90,22 @@ class ReconstructionSection(Section):
         )
         self.run_button = widgets.Button(description="Reconstruct", icon="play", button_style="primary")
         self.run_button.add_class("lensrec-reconstruct")
-        self.cancel_button = widgets.Button(description="Cancel", icon="stop")
-        self.task = LongTask(
-            self.run_button,
-            self.status,
-            "Reconstructing the lensing potential",
-            "reconstruction",
-            cancel_button=self.cancel_button,
-        )
-        self.tasks.append(self.task)
+        self.cancel_button = widgets.Button(description="Cancel", icon="stop", button_style="warning")
+        self.cancel_button.add_class("lensrec-cancel-reconstruction")
         self.maps_view = FigureView(MAPS_FIGURE, name="reconstruction-maps")
         self.spectra_view = FigureView(SPECTRA_FIGURE, name="reconstruction-spectra")
+        self.task = LongTask(self.run_button, self.status, "Reconstructing the lensing potential", "reconstruction",
+                             cancel_button=self.cancel_button, views=[self.maps_view, self.spectra_view])  # fmt: skip
+        self.tasks.append(self.task)
         self._build_figures()
 
         self.run_button.on_click(lambda _button: self.run())
         state.observe(self._on_sky, names="sky")
         self._on_sky({"new": state.sky})
         self.layout(
-            controls=[widgets.HBox([self.estimator, self.filter, self.lmax_L, self.hint]),
-                      widgets.HBox([self.lensing_iterations, self.iterations_hint]),
-                      widgets.HBox([self.run_button, self.cancel_button, self.task.widget])],
+            controls=[row([self.estimator, self.filter, self.lmax_L, self.hint], align="center"),
+                      row([self.lensing_iterations, self.iterations_hint], align="center"),
+                      row([self.run_button, self.cancel_button, self.task.widget], align="center")],
             outputs=[self.maps_view.widget, self.spectra_view.widget],
         )  # fmt: skip
 
@@ -137,32 +137,27 @@ class ReconstructionSection(Section):
         choice = self.filter.value
 
         def work(report, cancel):
-            report(0.05, f"filtering the maps and forming the {estimator} estimate…")
-            steps = {}
-            if iterations:
-                steps = {
-                    "lensing_iterations": iterations,
-                    "cancel": cancel,
-                    "progress": lambda done, total: report(
-                        0.05 + 0.65 * done / total,
-                        f"step {done} of {total} (quadratic, then iterations)…",
-                        check_cancel=False,
-                    ),
-                }
+            report(0.02, f"filtering the maps and forming the {estimator} estimate…")
+
+            def step(done, total):  # the library's steps mapped onto 2–80% of the bar
+                text = (f"step {done} of {total} (quadratic, then iterations)…" if iterations
+                        else RECONSTRUCTION_STEPS.get(done, f"step {done} of {total}…"))  # fmt: skip
+                report(0.02 + 0.78 * done / total, text)  # raises Cancelled between steps when asked to stop
 
             def cg_step(iteration, residual):  # the optimal filter's progress; report() raises on Cancel
                 report(min(0.6, 0.05 + 0.005 * iteration), f"optimal filter: iteration {iteration}, residual "
                        f"{residual:.1e}")  # fmt: skip
 
+            steps = {"lensing_iterations": iterations, "cancel": cancel} if iterations else {}
             # the sky's maps already carry its mask: maps_masked keeps it from being applied twice
             masking = {"maps_masked": True} if sky.mask is not None and not iterations else {}
             result = lensrec.reconstruct(sky.maps, experiment, spectra, estimator=estimator, lmax_L=lmax_L,
                                          mask=sky.mask, lmax=sky.lmax, nthreads=nthreads, filter=choice,
-                                         noise=sky.pixel_noise, cg_progress=cg_step, **masking,
+                                         noise=sky.pixel_noise, cg_progress=cg_step, progress=step, **masking,
                                          **steps)  # fmt: skip
-            if result.settings.get("cancelled"):
-                report(0.7, "cancelled")  # raises Cancelled: the iterations stopped early, nothing is shown
-            report(0.7, "Wiener filter, κ maps and spectra…")
+            if cancel.is_set() or result.settings.get("cancelled"):
+                raise Cancelled()  # the iterations stopped early: nothing is shown
+            report(0.8, "Wiener filter, κ maps and spectra…")
             return result, self._products(result, sky, spectra)
 
         def finish(outcome):

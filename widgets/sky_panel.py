@@ -20,8 +20,8 @@ from lensrec import harmonics
 from lensrec.demo_patch import patch_footprint
 
 from .plotting import MAP_CMAP, POSITIVE_CMAP, FigureView, symmetric_limit
-from .section import Section, heading, labelled
-from .work import LiveUpdate, LongTask
+from .section import Section, column, heading, labelled, row
+from .work import Cancelled, LiveUpdate, LongTask, progress_arguments
 
 __all__ = ["SkySection", "FIELDS", "MASKS"]
 
@@ -48,8 +48,9 @@ class SkySection(Section):
     name = "sky"
     guide = (
         "Simulate one observed sky of the current experiment: Gaussian unlensed CMB and φ, exact lensing on "
-        "the sphere, beam, white or 1/f noise, then the mask. lmax is the band limit of the maps (≤ 3·nside − 1). "
-        "The same seed always gives the same sky. Then pick a field and move the zoom window."
+        r"the sphere, beam, white or 1/f noise, then the mask. The band limit $\ell_\mathrm{max}$ of the maps is at "
+        r"most $3\,N_\mathrm{side} - 1$. The same seed always gives the same sky. Then pick a field and move the "
+        "zoom window."
     )
 
     def __init__(self, state, nthreads=None, delay: float = 0.1):
@@ -62,10 +63,11 @@ class SkySection(Section):
 
         self.nside = labelled(widgets.Dropdown(options=list(NSIDES), value=128, description="nside"), "18em")
         self.nside.add_class("lensrec-sky-nside")
-        self.lmax = labelled(widgets.IntText(value=256, description="lmax"), "18em")
+        self.lmax = labelled(widgets.IntText(value=256, description=r"band limit $\ell_\mathrm{max}$"), "18em")
         self.lmax.add_class("lensrec-sky-lmax")
         self.seed = labelled(widgets.IntText(value=0, description="seed"), "18em")
-        self.noise = widgets.Checkbox(value=True, description="add instrument noise", indent=False)
+        self.noise = widgets.Checkbox(value=True, description="add instrument noise", indent=False,
+                                      layout=widgets.Layout(width="18em", min_width="12em"))  # fmt: skip
         self.mask = labelled(widgets.Dropdown(options=list(MASKS.items()), value="none", description="mask"), "18em")
         self.b_min = labelled(widgets.FloatText(value=20.0, description="cut |b| < (deg)"), "18em")
         self.cap_lon = labelled(widgets.FloatText(value=0.0, description="cap center lon (deg)"), "18em")
@@ -74,11 +76,11 @@ class SkySection(Section):
         self.taper = labelled(widgets.FloatText(value=0.0, description="taper width (deg)"), "18em")
         self.simulate_button = widgets.Button(description="Simulate", icon="play", button_style="primary")
         self.simulate_button.add_class("lensrec-simulate")
-        self.task = LongTask(self.simulate_button, self.status, "Simulating the sky", "sky")
-        self.tasks.append(self.task)
+        self.cancel_button = widgets.Button(description="Cancel", icon="stop", button_style="warning")
+        self.cancel_button.add_class("lensrec-cancel-sky")
 
         self.field = widgets.ToggleButtons(options=[(v[0], k) for k, v in FIELDS.items()], value="T",
-                                           style={"button_width": "3.2em"})  # fmt: skip
+                                           style={"button_width": "4.6em"})  # fmt: skip
         self.field.add_class("lensrec-sky-field")
         self.zoom_lon = labelled(widgets.FloatSlider(value=0.0, min=-180, max=180, step=1, continuous_update=False,
                                                      description="zoom lon (deg)"), "26em")  # fmt: skip
@@ -87,6 +89,9 @@ class SkySection(Section):
         self.zoom_size = labelled(widgets.FloatSlider(value=20.0, min=1, max=90, step=1, continuous_update=False,
                                                       description="zoom size (deg)"), "26em")  # fmt: skip
         self.view = FigureView(MAP_FIGURE, name="sky-maps")
+        self.task = LongTask(self.simulate_button, self.status, "Simulating the sky", "sky",
+                             cancel_button=self.cancel_button, views=[self.view])  # fmt: skip
+        self.tasks.append(self.task)
         self._build_figure()
         self.viewer = LiveUpdate(self._draw, self.status, "Drawing the maps", delay=delay)
         self.live.append(self.viewer)
@@ -102,16 +107,16 @@ class SkySection(Section):
         self._show_mask_controls()
         self.layout(
             controls=[
-                widgets.HBox([
-                    widgets.VBox([heading("Resolution and seed"), self.nside, self.lmax, self.seed, self.noise]),
-                    widgets.VBox([heading("Mask"), self.mask_box]),
+                row([
+                    column([heading("Resolution and seed"), self.nside, self.lmax, self.seed, self.noise]),
+                    column([heading("Mask"), self.mask_box]),
                 ]),
-                widgets.HBox([self.simulate_button, self.task.widget]),
+                row([self.simulate_button, self.cancel_button, self.task.widget], align="center"),
             ],
             outputs=[
                 heading("Map viewer"),
                 self.field,
-                widgets.HBox([self.zoom_lon, self.zoom_lat, self.zoom_size]),
+                row([self.zoom_lon, self.zoom_lat, self.zoom_size]),
                 self.view.widget,
             ],
         )  # fmt: skip
@@ -163,16 +168,27 @@ class SkySection(Section):
         """Start a simulation in the background (what the Simulate button does)."""
         experiment, spectra = self.state.experiment, self.state.spectra
         settings = self.settings()
+        nside, lmax = settings["nside"], settings["lmax"]
+        if isinstance(lmax, int) and lmax > 3 * nside - 1:
+            # the library would allow it with aliasing; the workbench keeps maps within the HEALPix band limit
+            self.status.error(f"Simulating the sky: lmax={lmax} exceeds 3·nside − 1 = {3 * nside - 1} for nside "
+                              f"{nside}; lower the band limit to at most {3 * nside - 1} or raise nside.")  # fmt: skip
+            return False
 
         def work(report, cancel):
-            report(0.05, "building the mask…")
-            mask = self.build_mask(settings["nside"])
-            pixel_noise = self.build_noise(experiment, settings["nside"])
-            report(0.15, f"simulating the lensed sky at nside {settings['nside']}…")
-            sky = lensrec.simulate_sky(experiment, spectra, mask=mask, pixel_noise=pixel_noise,
-                                       nthreads=self.nthreads, **settings)  # fmt: skip
+            report(0.02, "building the mask…")
+            mask = self.build_mask(nside)
+            pixel_noise = self.build_noise(experiment, nside)
+
+            def stage(fraction, text):  # the library's progress (0…1) mapped onto 5–85% of the bar
+                report(0.05 + 0.8 * fraction, text, check_cancel=False)
+
+            sky = lensrec.simulate_sky(experiment, spectra, mask=mask, pixel_noise=pixel_noise, nthreads=self.nthreads,
+                                       **progress_arguments(lensrec.simulate_sky, stage, cancel), **settings)  # fmt: skip
+            if cancel.is_set():
+                raise Cancelled()
             report(0.85, "preparing the map viewer…")
-            maps = self._field_maps(sky)
+            maps = self._field_maps(sky, report)
             return sky, maps
 
         def finish(result):
@@ -188,11 +204,14 @@ class SkySection(Section):
 
         return self.task.start(work, finish)
 
-    def _field_maps(self, sky) -> dict[str, np.ndarray]:
+    def _field_maps(self, sky, report=None) -> dict[str, np.ndarray]:
         nside, lmax = sky.nside, sky.lmax
         lensed = sky.lensed_alm
+        report = report or (lambda fraction, text: None)
+        report(0.87, "deflection and convergence maps…")
         lensing = lensrec.deflection_maps(sky.phi_alm, nside, lmax, nthreads=self.nthreads)
         phi = harmonics.truncate_alm(sky.phi_alm, lmax, sky.lmax_unlensed)
+        report(0.93, "E, B and φ maps…")
         maps = {
             "T": sky.maps[0], "Q": sky.maps[1], "U": sky.maps[2],
             "E": harmonics.alm2map(lensed[1], nside, lmax, nthreads=self.nthreads),

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import functools
 import html
+import inspect
 import threading
 import time
 import traceback
@@ -20,7 +21,7 @@ import ipywidgets as widgets
 
 from lensrec import OutputExistsError
 
-__all__ = ["StatusArea", "guarded", "LongTask", "LiveUpdate", "Cancelled"]
+__all__ = ["StatusArea", "guarded", "LongTask", "LiveUpdate", "Cancelled", "progress_arguments"]
 
 # Exceptions whose message already says what was wrong and how to fix it (lensrec validates its inputs).
 USER_ERRORS = (ValueError, TypeError, FileNotFoundError, OutputExistsError, ImportError)
@@ -136,25 +137,33 @@ class LongTask:
         CSS class suffix for the progress widgets (``lensrec-progress-<name>``).
     cancel_button : ipywidgets.Button, optional
         Enabled only while the work runs; sets :attr:`cancel_event`.
+    views : sequence of FigureView, optional
+        Plots showing this work's last result: while a run goes, and after a cancelled or failed one, they
+        carry an out-of-date mark (a successful run redraws them, which removes it).
 
     Notes
     -----
     ``start(work, finish)`` runs ``work(report, cancel_event)`` in a daemon thread; ``report(fraction, text)``
     moves the bar. ``finish(result)`` (also in the thread) stores and draws the result and may return a
-    message for the status line. Tests call :meth:`join` to wait for the thread.
+    message for the status line, or a ``(kind, message)`` pair such as ``("warning", text)``. Tests call :meth:`join` to wait for the thread.
     """
 
-    def __init__(self, button, status: StatusArea, doing: str, name: str, cancel_button=None):
+    def __init__(self, button, status: StatusArea, doing: str, name: str, cancel_button=None, views=()):
         self.button = button
+        self.views = list(views)
         self.status = status
         self.doing = doing
         self.cancel_button = cancel_button
         self.cancel_event = threading.Event()
-        self.progress = widgets.FloatProgress(value=0.0, min=0.0, max=1.0, layout=widgets.Layout(width="240px"))
+        self.progress = widgets.FloatProgress(
+            value=0.0, min=0.0, max=1.0, layout=widgets.Layout(width="240px", min_width="120px")
+        )
         self.label = widgets.Label("", layout=widgets.Layout(min_width="18em"))
         self.progress.add_class(f"lensrec-progress-{name}")
         self.label.add_class(f"lensrec-progress-label-{name}")
-        self.widget = widgets.HBox([self.progress, self.label])
+        self.widget = widgets.HBox(
+            [self.progress, self.label], layout=widgets.Layout(flex_flow="row wrap", align_items="center")
+        )
         self.runs = 0
         self._thread: threading.Thread | None = None
         if cancel_button is not None:
@@ -195,6 +204,7 @@ class LongTask:
             self.progress.value = 0.0
             self.label.value = "starting…"
             self.status.info(f"{self.doing}…")
+            self._mark_views(f"previous result, shown while {self.doing[0].lower() + self.doing[1:]}…")
             if self.cancel_button is not None:
                 self.cancel_button.disabled = False
             self._thread = threading.Thread(
@@ -220,20 +230,29 @@ class LongTask:
             self.progress.value = 1.0
             self.progress.bar_style = "success"
             self.label.value = f"done in {seconds:.1f} s"
-            self.status.ok(message or f"{self.doing}: done in {seconds:.1f} s.")
+            if isinstance(message, tuple):  # (kind, text): a finished run whose result needs a caution
+                self.status.show(*message)
+            else:
+                self.status.ok(message or f"{self.doing}: done in {seconds:.1f} s.")
         except Cancelled as exc:
             self.progress.bar_style = "warning"
             self.label.value = "cancelled"
             self.status.warn(str(exc) or f"{self.doing} was cancelled; the previous results are unchanged.")
+            self._mark_views("out of date: from before the cancelled run")
         except Exception as exc:
             self.progress.bar_style = "danger"
             self.label.value = "failed"
+            self._mark_views("out of date: from before the failed run")
             self.status.report_exception(exc, self.doing)
         finally:
             self.runs += 1
             self.button.disabled = False
             if self.cancel_button is not None:
                 self.cancel_button.disabled = True
+
+    def _mark_views(self, text: str) -> None:
+        for view in self.views:
+            view.mark_stale(text)
 
     def join(self, timeout: float = 120.0) -> bool:
         """Wait for the current run (test hook); returns True when no run is left going."""
@@ -317,3 +336,14 @@ class LiveUpdate:
                 ):
                     return True
         return False
+
+
+def progress_arguments(function, progress, cancel) -> dict:
+    """``progress``/``cancel`` keyword arguments for a lensrec function that takes them (none otherwise)."""
+    parameters = inspect.signature(function).parameters
+    out = {}
+    if "progress" in parameters:
+        out["progress"] = progress
+    if "cancel" in parameters:
+        out["cancel"] = cancel
+    return out

@@ -140,3 +140,20 @@ def test_toml_load_errors_are_visible(section, tmp_path):
     section.load_button.click()
     assert section.status.kind == "error" and "did you mean 'noise_temperature'" in section.status.message
     assert not section.load_button.disabled
+
+
+def test_an_edited_example_is_renamed_and_titles_follow(section, app):
+    shipped = lensrec.load_experiment("deep_highland").name
+    section.controls["noise_temperature"].value = 9.0
+    assert section.state.experiment.name == f"{shipped} (modified)"
+    assert section.name_box.value == f"{shipped} (modified)"
+    assert section.picker.value == ""  # "custom settings": no shipped example has these values
+    assert app.wait(60)
+    assert f"{shipped} (modified)" in section.plot_title.get_text()
+    assert f"{shipped} (modified)" in app["noise"].plot_title.get_text()
+    section.name_box.value = "my survey"  # a name typed by the user is kept as typed
+    assert section.state.experiment.name == "my survey"
+    section.controls["beam_fwhm"].value = 2.5
+    assert section.state.experiment.name == "my survey"
+    assert app.wait(60)
+    assert "my survey" in app["noise"].plot_title.get_text()

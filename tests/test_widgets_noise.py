@@ -155,3 +155,29 @@ def test_n1_checkbox_adds_n0_plus_analytic_n1(app):
     section.with_n1.value = False
     assert app.wait(60)
     assert "EB N0+N1" not in section.plotted()
+
+
+def test_reticking_an_estimator_clears_the_warning_and_the_snr_follows_the_choice(app):
+    section = app["noise"]
+    for box in section.estimator_boxes.values():
+        box.value = False
+    assert section.wait(30)
+    assert section.status.kind == "warning" and section.table.value == ""  # no S/N left from before
+    section.estimator_boxes["EE"].value = True
+    assert section.wait(30)
+    # the earlier result for the same choice may be reused, but the status must say what is shown
+    assert section.status.kind == "ok" and "N0 of EE" in section.status.message, section.status.message
+    assert section.view.showing_plot and "EE" in section.table.value and "TT" not in section.table.value
+
+
+def test_convergence_units_name_the_convergence_in_the_legend(app):
+    section = app["noise"]
+    section.units.value = "kappa"
+    assert section.wait(30)
+    texts = [text.get_text() for text in section.ax.get_legend().get_texts()]
+    assert any(r"\kappa\kappa" in text for text in texts)
+    assert not any(r"\phi\phi" in text for text in texts)
+    section.units.value = "phi"
+    assert section.wait(30)
+    texts = [text.get_text() for text in section.ax.get_legend().get_texts()]
+    assert any(r"\phi\phi" in text for text in texts)

@@ -143,6 +143,40 @@ def test_template_is_built_from_the_reconstruction_as_lensrec_delens_does(app, e
     assert 0 < section.template.alens_residual < 1
 
 
+def test_the_measured_residual_sits_beside_a_forecast_for_the_same_sky(app, expected):
+    section = app["delensing"]
+    assert section.template is not None and section.sky_forecast is not None
+    experiment, spectra = app.state.sky_experiment, app.state.spectra
+    result, _ = expected
+    # the forecast for what this sky can do: its band limit, its reconstruction's N0 (inf above lmax_L)
+    n0 = np.full(spectra.lmax + 1, np.inf)
+    n0[: LMAX + 1] = result.n0["gradient"]
+    limited = experiment.replace(ell_max_temperature=min(experiment.ell_max_temperature, LMAX),
+                                 ell_max_polarization=min(experiment.ell_max_polarization, LMAX))  # fmt: skip
+    reference = lensrec.delensing_forecast(limited, spectra, n0=n0, lmax=LMAX, nthreads=2)
+    assert section.sky_forecast.alens_residual == pytest.approx(reference.alens_residual, rel=1e-6)
+    assert section.sky_forecast.ell_max == LMAX  # the sky's band limit, not the experiment's 1000 or more
+    summary = section.template_summary.value
+    assert "measured" in summary and "forecast for this sky" in summary
+    assert f"{reference.alens_residual:.3f}" in summary and f"{section.template.alens_residual:.3f}" in summary
+    # the experiment-wide forecast uses a much lower N0 and more modes: it must differ, or the two are confused
+    full = lensrec.delensing_forecast(experiment, spectra, n0=lensrec.reconstruction_noise(experiment, nthreads=2)
+                                      .n0["MV"]["gradient"], nthreads=2)  # fmt: skip
+    assert abs(full.alens_residual - reference.alens_residual) > 0.05
+
+
+def test_cancelled_template_keeps_the_previous_one_marked_out_of_date(app):
+    section = app["delensing"]
+    before = section.template
+    assert before is not None
+    section.build_button.click()
+    section.template_cancel.click()
+    assert app.wait(120)
+    assert section.status.kind == "warning" and "cancelled" in section.status.message
+    assert section.template is before and section.template_view.stale
+    assert not section.build_button.disabled and section.template_cancel.disabled
+
+
 def test_template_from_the_exact_phi_and_from_a_tracer(app):
     # exact phi: the perfect-knowledge bound removes lensing B (here only what E <= 128 sources: 0 < A < 1;
     # a phi that did not arrive would leave A = 1); tracer: a simulated invented tracer delenses part of it
@@ -193,6 +227,23 @@ def test_masked_sky_spectra_are_divided_by_the_mask_moments():
 
 
 # tests below change the shared state: keep them last
+def test_cancelled_reconstruction_keeps_the_previous_result_marked_out_of_date(app):
+    section = app["reconstruction"]
+    before = section.result
+    section.run_button.click()
+    assert section.maps_view.stale and section.spectra_view.stale  # marked as soon as the new run starts
+    section.cancel_button.click()
+    assert app.wait(120)
+    assert section.status.kind == "warning" and "cancelled" in section.status.message
+    assert section.result is before and app.state.reconstruction is before
+    assert section.maps_view.stale and section.spectra_view.stale
+    assert "cancelled" in section.maps_view.banner.value
+    assert not section.run_button.disabled and section.cancel_button.disabled
+    section.run_button.click()  # a finished run removes the mark
+    assert app.wait(120) and section.status.kind == "ok"
+    assert not section.maps_view.stale and not section.spectra_view.stale
+
+
 def test_a_new_sky_withdraws_the_old_reconstruction(app):
     section = app["reconstruction"]
     app.state.sky = None  # what a new simulation does first, in effect: the old result no longer applies

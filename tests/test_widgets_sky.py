@@ -156,3 +156,17 @@ def test_experiment_change_marks_the_sky_out_of_date(simulated):
     assert simulated.wait(60)
     assert section.status.kind == "warning" and "press Simulate" in section.status.message
     assert simulated.state.sky_experiment == lensrec.load_experiment("wide_lowland")
+
+
+def test_cancel_keeps_the_previous_sky_marked_out_of_date(simulated):
+    section = simulated["sky"]
+    before = simulated.state.sky
+    section.seed.value = 8
+    section.simulate_button.click()
+    section.cancel_button.click()
+    assert simulated.wait(120)
+    assert section.status.kind == "warning" and "cancelled" in section.status.message
+    assert simulated.state.sky is before and section.sky is before
+    assert section.view.stale and "cancelled" in section.view.banner.value
+    assert not section.simulate_button.disabled and section.cancel_button.disabled
+    section.seed.value = 7

@@ -52,6 +52,7 @@ class ExperimentSection(Section):
     def __init__(self, state, delay: float = 0.05):
         super().__init__(state)
         self._suspended = False
+        self._example = None
         names = lensrec.available_experiments()
         self.picker = labelled(
             widgets.Dropdown(
@@ -149,12 +150,10 @@ class ExperimentSection(Section):
 
     def _renamed_if_modified(self, experiment: lensrec.Experiment) -> lensrec.Experiment:
         """A shipped example whose settings were edited gets " (modified)" added to its name (shown at once)."""
-        name = experiment.name
-        if name not in lensrec.available_experiments():
+        example = self._example
+        if example is None or experiment.name != example.name or experiment == example:
             return experiment
-        if lensrec.load_experiment(name) == experiment:
-            return experiment
-        renamed = experiment.replace(name=f"{name} (modified)")
+        renamed = experiment.replace(name=f"{example.name} (modified)")
         with self._suspend():
             self.name_box.value = renamed.name
         return renamed
@@ -205,6 +204,8 @@ class ExperimentSection(Section):
     def _show_experiment(self, experiment: lensrec.Experiment) -> None:
         with self._suspend():
             self.picker.value = _shipped_name(experiment)
+            if self.picker.value != CUSTOM:
+                self._example = experiment  # edits to it are renamed, so titles never show a changed example
             self.name_box.value = experiment.name
             for key, control in self.controls.items():
                 control.value = getattr(experiment, key)

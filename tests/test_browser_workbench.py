@@ -1,8 +1,12 @@
 """The workbench in a real browser: JupyterLab on 127.0.0.1 with a token, driven by headless Debian chromium.
 
 The JupyterLab server runs in a temporary root folder holding a copy of notebooks/workbench.ipynb, with its
-own config, settings and runtime folders, and stops when the module's tests end. Screenshots go to
-test-artifacts/.
+own config, settings and runtime folders, and stops when the module's tests end. The tests run in order as
+a user would: first a laptop window (1280×800, JupyterLab's file browser open), where the whole chain is
+worked through (a small masked patch at nside 32, reconstruction, a cancelled reconstruction, a template,
+a tiny suite run and a cancelled one), then a 1920×1080 window. At both sizes every tab is checked: each
+figure keeps its aspect ratio (drawn width/height within 5% of the PNG's) and no control is narrower than
+60 px. Screenshots (what the window shows) go to test-artifacts/.
 """
 
 import contextlib
@@ -151,13 +155,17 @@ def browser(jupyterlab, tmp_path_factory):
             executable_path=CHROMIUM,
             headless=True,
             args=CHROMIUM_ARGS,
-            viewport={"width": 1300, "height": 1900},  # tall enough to hold a whole section
+            viewport=LAPTOP,
         )
         try:
             yield context
         finally:
             context.close()
 
+
+LAPTOP = {"width": 1280, "height": 800}
+DESKTOP = {"width": 1920, "height": 1080}
+TABS = ["Experiment", "Estimator noise", "Sky", "Reconstruction", "Delensing", "Validation", "Export"]
 
 KERNEL_READY = """async () => {
     const panel = window.jupyterapp.shell.currentWidget;
@@ -170,7 +178,7 @@ KERNEL_READY = """async () => {
 
 @pytest.fixture(scope="module")
 def workbench_page(jupyterlab, browser, artifacts_dir):
-    """The workbench notebook opened and run in JupyterLab, with the app rendered."""
+    """The workbench notebook opened and run in JupyterLab (file browser left open), with the app rendered."""
     page = browser.pages[0] if browser.pages else browser.new_page()
     page.set_default_timeout(60_000)
     page.goto(f"{jupyterlab.url}/lab/tree/workbench.ipynb?token={jupyterlab.token}")
@@ -188,16 +196,17 @@ def workbench_page(jupyterlab, browser, artifacts_dir):
         page.screenshot(path=os.path.join(artifacts_dir, "workbench-failed-to-open.png"))
         outputs = page.locator(".jp-OutputArea").all_inner_texts()
         raise AssertionError(f"the workbench did not open; cell outputs: {outputs}\n{jupyterlab.log()}") from None
-    page.evaluate("() => { window.jupyterapp.commands.execute('application:toggle-left-area'); }")
+    if page.locator(".jp-FileBrowser").count() == 0 or not page.locator(".jp-FileBrowser").first.is_visible():
+        page.evaluate("() => { window.jupyterapp.commands.execute('filebrowser:activate'); }")
     return page
 
 
-def _screenshot(page, artifacts_dir: str, name: str) -> str:
-    """Screenshot the workbench itself (scrolled into view) into test-artifacts/."""
+def _shot(page, artifacts_dir: str, name: str, anchor: str | None = None) -> str:
+    """Screenshot the window as the user sees it, scrolled to ``anchor`` (a selector) if given."""
+    if anchor is not None:
+        page.locator(anchor).first.scroll_into_view_if_needed()
     path = os.path.join(artifacts_dir, name)
-    app = page.locator(".lensrec-workbench")
-    app.scroll_into_view_if_needed()
-    app.screenshot(path=path)
+    page.screenshot(path=path)
     return path
 
 
@@ -219,14 +228,61 @@ def _open_tab(page, title: str) -> None:
     page.locator(".lensrec-tabs .lm-TabBar-tab", has_text=title).first.click()
 
 
+def _wait_label(page, name: str, prefix: str, timeout: float = 120_000) -> None:
+    page.wait_for_function(
+        "([name, prefix]) => { const e = document.querySelector('.lensrec-progress-label-' + name);"
+        " return e && e.innerText.startsWith(prefix); }",
+        arg=[name, prefix],
+        timeout=timeout,
+    )
+
+
+MEASURE = """() => {
+    const shown = (e) => { const r = e.getBoundingClientRect(); return e.offsetParent !== null && r.width > 0; };
+    const app = document.querySelector('.lensrec-workbench');
+    const figures = [...app.querySelectorAll('img[class*="lensrec-plot-"]')].filter(shown).filter(
+        (img) => img.naturalWidth > 0).map((img) => {
+            const r = img.getBoundingClientRect();
+            return {name: [...img.classList].find((c) => c.startsWith('lensrec-plot-')),
+                    drawn: r.width / r.height, png: img.naturalWidth / img.naturalHeight, width: r.width};
+        });
+    const selectors = ['.widget-text', '.widget-dropdown', '.widget-checkbox', '.widget-hslider',
+                       '.widget-slider .slider-container', 'button.jupyter-button', '.widget-toggle-button',
+                       '.widget-progress'];
+    const controls = [...app.querySelectorAll(selectors.join(','))].filter(shown).map((e) => ({
+        what: (e.className + ' ' + (e.innerText || '').slice(0, 30)).trim(), width: e.getBoundingClientRect().width,
+        right: e.getBoundingClientRect().right}));
+    const box = app.getBoundingClientRect();
+    return {figures, controls, right: box.right, width: box.width};
+}"""
+
+
+def _check_layout(page, artifacts_dir: str, size: str) -> dict:
+    """At the current window size, every tab: figures keep their aspect ratio, no control is under 60 px."""
+    seen = {}
+    for tab in TABS:
+        _open_tab(page, tab)
+        page.wait_for_timeout(150)
+        found = page.evaluate(MEASURE)
+        for figure in found["figures"]:
+            # the PNG is the figure rendered at its own size, so its ratio is the figure's
+            assert abs(figure["drawn"] / figure["png"] - 1.0) < 0.05, (size, tab, figure)
+        narrow = [c for c in found["controls"] if c["width"] < 60]
+        assert not narrow, (size, tab, narrow)
+        # nothing sticks out of the workbench on the right (cut-off inputs)
+        outside = [c for c in found["controls"] if c["right"] > found["right"] + 1]
+        assert not outside, (size, tab, outside)
+        seen[tab] = found
+        _shot(page, artifacts_dir, f"workbench-{size}-{tab.lower().replace(' ', '-')}.png", ".lensrec-tabs")
+    return seen
+
+
 def test_workbench_opens_and_shows_the_experiment(workbench_page, artifacts_dir):
     page = workbench_page
     tabs = page.locator(".lensrec-tabs .lm-TabBar-tab").all_inner_texts()
-    assert [t.strip() for t in tabs] == [
-        "Experiment", "Estimator noise", "Sky", "Reconstruction", "Delensing", "Validation",
-    ]  # fmt: skip
+    assert [t.strip() for t in tabs] == TABS
     assert page.locator(".lensrec-experiment-picker select").input_value() == "deep_highland"
-    _screenshot(page, artifacts_dir, "workbench-experiment.png")
+    _shot(page, artifacts_dir, "workbench-laptop-open.png")
 
 
 def test_changing_noise_redraws_the_noise_plot(workbench_page, artifacts_dir):
@@ -239,15 +295,14 @@ def test_changing_noise_redraws_the_noise_plot(workbench_page, artifacts_dir):
     field.press("Enter")
     _wait_src_change(page, selector, before)
     status = page.locator(".lensrec-status-experiment").inner_text()
-    assert "Δ_T = 12" in status
+    assert "Δ_T = 12" in status and "(modified)" in status  # an edited example is renamed at once
     field.fill("-1")  # refused by the experiment model; the message must appear in the page
     field.press("Enter")
     page.wait_for_function(
         "() => document.querySelector('.lensrec-status-experiment').innerText.includes('noise_temperature must be')"
     )
-    _screenshot(page, artifacts_dir, "workbench-experiment-error.png")
-    field.fill("1")
-    field.press("Enter")
+    _shot(page, artifacts_dir, "workbench-experiment-error.png", ".lensrec-status-experiment")
+    page.locator(".lensrec-experiment-picker select").select_option("deep_highland")
 
 
 def test_noise_change_redraws_the_n0_plot(workbench_page, artifacts_dir):
@@ -266,31 +321,31 @@ def test_noise_change_redraws_the_n0_plot(workbench_page, artifacts_dir):
         "() => document.querySelector('.lensrec-status-noise').innerText.includes('N0 of')"
     )  # fmt: skip
     assert "MV" in page.locator(".lensrec-snr-table").inner_text()
-    _screenshot(page, artifacts_dir, "workbench-estimator-noise.png")
+    _shot(page, artifacts_dir, "workbench-estimator-noise.png", selector)
 
 
-def _simulate_small_sky(page) -> None:
+def _simulate_small_patch(page) -> None:
     _open_tab(page, "Sky")
     page.locator(".lensrec-sky-nside select").select_option(label="32")
     page.wait_for_function("() => document.querySelector('.lensrec-sky-lmax input').value === '64'")
+    page.locator(".lensrec-sky-mask select").select_option(label="cap")
     page.locator("button.lensrec-simulate").click()
+    _wait_label(page, "sky", "done")
     page.wait_for_selector("img.lensrec-plot-sky-maps[src^='blob:']", state="visible", timeout=120_000)
-    page.wait_for_function(
-        "() => document.querySelector('.lensrec-progress-label-sky').innerText.startsWith('done')"
-    )  # fmt: skip
 
 
-def test_simulate_a_small_sky_and_view_it(workbench_page, artifacts_dir):
+def test_simulate_a_small_patch_and_view_it(workbench_page, artifacts_dir):
     page = workbench_page
     _open_tab(page, "Sky")
     assert page.locator(".lensrec-note-sky-maps").is_visible()  # says what to do before the first sky
-    _simulate_small_sky(page)
+    _simulate_small_patch(page)
     assert "rms deflection" in page.locator(".lensrec-status-sky").inner_text()
     assert not page.locator("button.lensrec-simulate").is_disabled()
+    assert page.locator("button.lensrec-cancel-sky").is_disabled()  # only while a simulation runs
     before = _src(page, "img.lensrec-plot-sky-maps")
     page.locator(".lensrec-sky-field button", has_text="κ").click()
     _wait_src_change(page, "img.lensrec-plot-sky-maps", before)
-    _screenshot(page, artifacts_dir, "workbench-sky.png")
+    _shot(page, artifacts_dir, "workbench-sky.png", "img.lensrec-plot-sky-maps")
 
 
 def test_delensing_forecast_appears(workbench_page, artifacts_dir):
@@ -299,33 +354,86 @@ def test_delensing_forecast_appears(workbench_page, artifacts_dir):
     page.locator("button.lensrec-forecast").click()
     page.wait_for_selector("img.lensrec-plot-delensing-bb[src^='blob:']", state="visible", timeout=120_000)
     summary = page.locator(".lensrec-delensing-summary").inner_text()
-    assert "A_lens^res" in summary and "σ(r), delensed" in summary
-    _screenshot(page, artifacts_dir, "workbench-delensing.png")
+    assert "lens" in summary and "σ(r), delensed" in summary
+    _shot(page, artifacts_dir, "workbench-delensing.png", "img.lensrec-plot-delensing-bb")
 
 
 @pytest.mark.skipif(not hasattr(lensrec, "reconstruct"), reason="this lensrec has no reconstruct()")
-def test_reconstruct_the_small_sky(workbench_page, artifacts_dir):
+def test_reconstruct_the_patch_and_cancel_a_second_run(workbench_page, artifacts_dir):
     page = workbench_page
-    _open_tab(page, "Sky")
-    if page.locator(".lensrec-note-sky-maps").is_visible():
-        _simulate_small_sky(page)
     _open_tab(page, "Reconstruction")
     page.locator("button.lensrec-reconstruct").click()
+    _wait_label(page, "reconstruction", "done")
     for name in ("reconstruction-maps", "reconstruction-spectra"):
         page.wait_for_selector(f"img.lensrec-plot-{name}[src^='blob:']", state="visible", timeout=120_000)
     assert "Reconstructed MV" in page.locator(".lensrec-status-reconstruction").inner_text()
+    _shot(page, artifacts_dir, "workbench-reconstruction.png", "img.lensrec-plot-reconstruction-maps")
+    # a second run, cancelled: the first result stays, marked out of date
+    page.locator("button.lensrec-reconstruct").click()
+    page.locator("button.lensrec-cancel-reconstruction").click()
+    _wait_label(page, "reconstruction", "cancelled")
+    assert "cancelled" in page.locator(".lensrec-status-reconstruction").inner_text()
+    assert page.locator(".lensrec-stale-reconstruction-maps").is_visible()
     assert not page.locator("button.lensrec-reconstruct").is_disabled()
-    _screenshot(page, artifacts_dir, "workbench-reconstruction.png")
+    _shot(page, artifacts_dir, "workbench-reconstruction-cancelled.png", ".lensrec-stale-reconstruction-maps")
+    page.locator("button.lensrec-reconstruct").click()  # a finished run clears the mark
+    _wait_label(page, "reconstruction", "done")
+    page.wait_for_selector(".lensrec-stale-reconstruction-maps", state="hidden")
 
 
 @pytest.mark.skipif(not hasattr(lensrec, "reconstruct"), reason="this lensrec has no reconstruct()")
 def test_build_a_template_from_the_reconstruction(workbench_page, artifacts_dir):
     page = workbench_page
-    _open_tab(page, "Reconstruction")
-    if page.locator(".lensrec-note-reconstruction-maps").is_visible():
-        test_reconstruct_the_small_sky(page, artifacts_dir)
     _open_tab(page, "Delensing")
     page.locator("button.lensrec-build-template").click()
+    _wait_label(page, "template", "done")
     page.wait_for_selector("img.lensrec-plot-delensing-template[src^='blob:']", state="visible", timeout=120_000)
-    assert "A_lens^res (measured)" in page.locator(".lensrec-template-summary").inner_text()
-    _screenshot(page, artifacts_dir, "workbench-delensing-template.png")
+    summary = page.locator(".lensrec-template-summary").inner_text()
+    assert "measured" in summary and "forecast for this sky" in summary
+    _shot(page, artifacts_dir, "workbench-delensing-template.png", "img.lensrec-plot-delensing-template")
+
+
+def test_run_a_tiny_suite_and_cancel_another(workbench_page, artifacts_dir):
+    page = workbench_page
+    _open_tab(page, "Validation")
+    page.locator("button.lensrec-validation-use-sky").click()  # nside 32 and the patch's mask
+    page.wait_for_function(
+        "() => document.querySelector('.lensrec-status-validation').innerText.includes('taken from the sky')"
+    )  # fmt: skip
+    n_sims = page.locator(".lensrec-validation-n-sims input")
+    n_sims.fill("4")
+    n_sims.press("Enter")
+    page.locator("button.lensrec-run-suite").click()
+    _wait_label(page, "validation", "done", timeout=240_000)
+    page.wait_for_selector("img.lensrec-plot-validation[src^='blob:']", state="visible")
+    assert "A_lens" in page.locator(".lensrec-status-validation").inner_text()
+    _shot(page, artifacts_dir, "workbench-validation.png", "img.lensrec-plot-validation")
+    n_sims.fill("12")
+    n_sims.press("Enter")
+    page.locator("button.lensrec-run-suite").click()
+    _wait_label(page, "validation", "simulations")  # the new simulations are being made
+    page.locator("button.lensrec-cancel-suite").click()
+    _wait_label(page, "validation", "cancelled")
+    assert "resume" in page.locator(".lensrec-status-validation").inner_text()
+    assert page.locator(".lensrec-stale-validation").is_visible()
+    _shot(page, artifacts_dir, "workbench-validation-cancelled.png", ".lensrec-stale-validation")
+
+
+def test_layout_holds_on_a_laptop_with_the_file_browser_open(workbench_page, artifacts_dir):
+    page = workbench_page
+    assert page.locator(".jp-FileBrowser").first.is_visible()
+    seen = _check_layout(page, artifacts_dir, "1280")
+    # the maps are scaled down to the narrow notebook, not cut or squashed
+    sky = [f for f in seen["Sky"]["figures"] if f["name"] == "lensrec-plot-sky-maps"]
+    assert sky and sky[0]["width"] < 10.4 * 96
+
+
+def test_layout_holds_on_a_wide_screen(workbench_page, artifacts_dir):
+    page = workbench_page
+    page.set_viewport_size(DESKTOP)
+    try:
+        seen = _check_layout(page, artifacts_dir, "1920")
+        sky = [f for f in seen["Sky"]["figures"] if f["name"] == "lensrec-plot-sky-maps"]
+        assert sky and abs(sky[0]["width"] - 10.4 * 96) < 2  # room enough: drawn at the figure's own size
+    finally:
+        page.set_viewport_size(LAPTOP)

@@ -226,6 +226,29 @@ def test_masked_sky_spectra_are_divided_by_the_mask_moments():
     assert "⟨w⁴⟩" in section.auto_title.get_text()
 
 
+def test_export_writes_the_reconstruction_and_template_spectra(app, expected, tmp_path):
+    import json
+
+    section = app["export"]
+    section.folder.value = str(tmp_path)
+    section.export_button.click()
+    assert section.status.kind == "ok", section.status.message
+    with open(tmp_path / "reconstruction_spectra.json") as handle:
+        spectra = json.load(handle)
+    result, _ = expected
+    assert spectra["estimator"] == "MV" and spectra["lmax_L"] == LMAX
+    np.testing.assert_allclose(spectra["n0"][2:], result.n0["gradient"][2:], rtol=1e-9)
+    assert spectra["sky"]["nside"] == NSIDE and "provenance" in spectra
+    with open(tmp_path / "delensing_template.json") as handle:
+        template = json.load(handle)
+    delensing = app["delensing"]
+    assert template["alens_residual_measured"] == pytest.approx(delensing.template.alens_residual, rel=1e-12)
+    assert template["alens_residual_forecast_for_this_sky"] == pytest.approx(
+        delensing.sky_forecast.alens_residual, rel=1e-12
+    )
+    assert (tmp_path / "reconstruction-maps.png").is_file() and (tmp_path / "delensing-template.pdf").is_file()
+
+
 # tests below change the shared state: keep them last
 def test_cancelled_reconstruction_keeps_the_previous_result_marked_out_of_date(app):
     section = app["reconstruction"]

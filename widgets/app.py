@@ -1,4 +1,4 @@
-"""The workbench app: one shared state object and six sections in tabs."""
+"""The workbench app: one shared state object and seven sections in tabs."""
 
 from __future__ import annotations
 
@@ -10,6 +10,7 @@ import lensrec
 
 from .delensing_panel import DelensingSection
 from .experiment_panel import ExperimentSection
+from .export_panel import ExportSection
 from .noise_panel import EstimatorNoiseSection
 from .reconstruction_panel import ReconstructionSection
 from .section import Section
@@ -52,7 +53,7 @@ class MissingLibrarySection(Section):
 
 
 class Workbench(widgets.VBox):
-    """The lensrec workbench: Experiment, Estimator noise, Sky, Reconstruction, Delensing, Validation.
+    """The lensrec workbench: Experiment, Estimator noise, Sky, Reconstruction, Delensing, Validation, Export.
 
     Parameters
     ----------
@@ -71,7 +72,8 @@ class Workbench(widgets.VBox):
     state : WorkbenchState
         The shared data every section reads and writes.
     sections : dict of str to Section
-        ``"experiment"``, ``"noise"``, ``"sky"``, ``"reconstruction"``, ``"delensing"``, ``"validation"``.
+        ``"experiment"``, ``"noise"``, ``"sky"``, ``"reconstruction"``, ``"delensing"``, ``"validation"``,
+        ``"export"``.
 
     Examples
     --------
@@ -101,6 +103,7 @@ class Workbench(widgets.VBox):
                 self.sections[name] = build()
             else:
                 self.sections[name] = MissingLibrarySection(self.state, title, name, needs, PURPOSES.get(name, ""))
+        self.sections["export"] = ExportSection(self.state, self.sections)
         self.tabs = widgets.Tab(
             children=[s.panel for s in self.sections.values()], titles=[s.title for s in self.sections.values()]
         )

@@ -189,6 +189,7 @@ class FigureView:
         self.figure = Figure(figsize=size, dpi=DPI)
         self.canvas = FigureCanvasAgg(self.figure)
         width, height = int(round(size[0] * DPI)), int(round(size[1] * DPI))
+        self.name = name
         self.size_px = (width, height)
         # The image is as wide as the figure, or as its container when that is narrower; its height follows
         # from the PNG's own aspect ratio (height auto), so a narrow window scales the figure down instead of

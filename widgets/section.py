@@ -43,7 +43,7 @@ def heading(text: str) -> widgets.HTML:
 
 
 class Section:
-    """Base of the six sections.
+    """Base of the workbench sections.
 
     Subclasses build ``self.panel`` children, register their long tasks in ``self.tasks`` and live
     updates in ``self.live``, and implement only reading widgets, calling lensrec and drawing.

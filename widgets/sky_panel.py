@@ -69,6 +69,7 @@ class SkySection(Section):
         self.noise = widgets.Checkbox(value=True, description="add instrument noise", indent=False,
                                       layout=widgets.Layout(width="18em", min_width="12em"))  # fmt: skip
         self.mask = labelled(widgets.Dropdown(options=list(MASKS.items()), value="none", description="mask"), "18em")
+        self.mask.add_class("lensrec-sky-mask")
         self.b_min = labelled(widgets.FloatText(value=20.0, description="cut |b| < (deg)"), "18em")
         self.cap_lon = labelled(widgets.FloatText(value=0.0, description="cap center lon (deg)"), "18em")
         self.cap_lat = labelled(widgets.FloatText(value=-60.0, description="cap center lat (deg)"), "18em")

@@ -251,7 +251,7 @@ class FigureView:
 
     def show_note(self, html: str) -> None:
         """Hide the plot and show ``html`` in its place (same size), e.g. what to do to get the plot."""
-        self.note.value = f"<div style='color:#515a5a;max-width:36em'>{html}</div>"
+        self.note.value = f"<div style='color:#515a5a;max-width:36em;line-height:1.45;white-space:normal'>{html}</div>"
         self.image.layout.display = "none"
         self.note.layout.display = "flex"
         self.clear_stale()

@@ -81,7 +81,7 @@ class SkySection(Section):
         self.cancel_button.add_class("lensrec-cancel-sky")
 
         self.field = widgets.ToggleButtons(options=[(v[0], k) for k, v in FIELDS.items()], value="T",
-                                           style={"button_width": "4.6em"})  # fmt: skip
+                                           style={"button_width": "5em"})  # fmt: skip
         self.field.add_class("lensrec-sky-field")
         self.zoom_lon = labelled(widgets.FloatSlider(value=0.0, min=-180, max=180, step=1, continuous_update=False,
                                                      description="zoom lon (deg)"), "26em")  # fmt: skip

@@ -61,10 +61,12 @@ class ValidationSection(Section):
     title = "Validation"
     name = "validation"
     guide = (
-        "Run a small suite of simulations of the current experiment: one 'data' sky and n_sims simulations, each "
-        "filtered and reconstructed. The suite debiases the data's lensing spectrum (half-split mean field, "
-        "realization-dependent N0, N1 from pairs of simulations sharing φ, the normalization correction) and fits "
-        "A_lens. Results are cached in the folder: Cancel keeps what is finished, Run again resumes."
+        "Run a small suite of simulations of the current experiment: one 'data' sky and the chosen number of "
+        "simulations, each filtered and reconstructed. The suite debiases the data's lensing spectrum (half-split "
+        "mean field, realization-dependent N0, N1 from pairs of simulations sharing φ, the normalization "
+        r"correction) and fits $A_\mathrm{lens}$. <i>Use the sky's settings</i> takes the resolution, band limit, "
+        "noise and mask of the Sky tab's sky, so biases are validated on the same cut sky. Results are cached in "
+        "the folder: Cancel keeps what is finished, Run again resumes."
     )
 
     def __init__(self, state, nthreads=None):

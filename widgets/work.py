@@ -71,7 +71,11 @@ class StatusArea:
             self.kind, self.message = kind, message
             if message:
                 self.history.append((kind, message))
-            self.line.value = f"<span style='color:{color}'>{mark} {html.escape(message)}</span>" if message else ""
+            self.line.value = (
+                f"<div style='color:{color};line-height:1.45;padding:2px 0'>{mark} {html.escape(message)}</div>"
+                if message
+                else ""
+            )
             self.details.outputs = ()
             if details:
                 self.details.append_stdout(details)

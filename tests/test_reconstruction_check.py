@@ -21,12 +21,20 @@ def _spectra(fiducial):
     return theory, n0
 
 
+def _gaussian_alm(cl, rng):
+    # a_lm in healpy's ordering: real for m = 0 with variance C_l, complex for m > 0 with ⟨|a_lm|²⟩ = C_l
+    ell, m = healpy.Alm.getlm(LMAX)
+    sigma = np.sqrt(np.asarray(cl)[ell])
+    alm = (rng.standard_normal(ell.size) + 1j * rng.standard_normal(ell.size)) * sigma / np.sqrt(2.0)
+    alm[m == 0] = rng.standard_normal(int(np.sum(m == 0))) * sigma[m == 0]
+    return alm
+
+
 def _realisation(theory, n0, rng_seed: int):
-    # a Gaussian input and a reconstruction = input + independent Gaussian noise of power N0 (healpy.synalm)
-    np.random.seed(rng_seed)
-    phi = healpy.synalm(theory, lmax=LMAX)
-    noise = healpy.synalm(n0, lmax=LMAX)
-    estimate = phi + noise
+    # a Gaussian input and a reconstruction = input + independent Gaussian noise of power N0
+    rng = np.random.default_rng(rng_seed)
+    phi = _gaussian_alm(theory, rng)
+    estimate = phi + _gaussian_alm(n0, rng)
     return SimpleNamespace(
         cross=healpy.alm2cl(estimate, phi), input_auto=healpy.alm2cl(phi), auto=healpy.alm2cl(estimate), n0=n0
     )

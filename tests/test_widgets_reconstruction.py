@@ -249,6 +249,23 @@ def test_export_writes_the_reconstruction_and_template_spectra(app, expected, tm
     assert (tmp_path / "reconstruction-maps.png").is_file() and (tmp_path / "delensing-template.pdf").is_file()
 
 
+def test_lensing_iterations_control_runs_the_iterative_estimate_and_reports_errors(app):
+    section = app["reconstruction"]
+    section.estimator.value, section.lensing_iterations.value = "EB", 1
+    try:
+        section.run_button.click()
+        assert app.wait(180) and section.status.kind == "ok", section.status.message
+        assert section.result.settings["lensing_iterations"] == 1
+        assert len(section.result.settings["n0_per_iteration"]) == 2
+        # an estimator without an iterative form: the message names it
+        section.estimator.value = "TT"
+        section.run_button.click()
+        assert app.wait(60) and section.status.kind == "error"
+        assert "'TT'" in section.status.message and "iterative form" in section.status.message
+    finally:
+        section.estimator.value, section.lensing_iterations.value = "MV", 0
+
+
 # tests below change the shared state: keep them last
 def test_cancelled_reconstruction_keeps_the_previous_result_marked_out_of_date(app):
     section = app["reconstruction"]
@@ -282,20 +299,3 @@ def test_template_without_reconstruction_says_what_to_do(app):
     assert "No reconstruction yet" in section.template_view.note.value
     assert section.build_template() is False
     assert section.status.kind == "error" and "Reconstruction tab" in section.status.message
-
-
-def test_lensing_iterations_control_runs_the_iterative_estimate_and_reports_errors(app):
-    section = app["reconstruction"]
-    section.estimator.value, section.lensing_iterations.value = "EB", 1
-    try:
-        section.run_button.click()
-        assert app.wait(180) and section.status.kind == "ok", section.status.message
-        assert section.result.settings["lensing_iterations"] == 1
-        assert len(section.result.settings["n0_per_iteration"]) == 2
-        # an estimator without an iterative form: the message names it
-        section.estimator.value = "TT"
-        section.run_button.click()
-        assert app.wait(60) and section.status.kind == "error"
-        assert "'TT'" in section.status.message and "iterative form" in section.status.message
-    finally:
-        section.estimator.value, section.lensing_iterations.value = "MV", 0

@@ -13,7 +13,7 @@ From the mask-corrected spectra of :func:`lensrec.compare_with_input` this gives
 Errors are those of Gaussian fields on a sky fraction f (Knox 1995, PRD 52, 4307):
 Var C_L = 2 (C_L + N_L)² / ((2L+1) f) for the auto-spectrum, Var C^{φ̂φ}_L = [C_L (C_L + N_L) + C_L²] /
 ((2L+1) f) for the cross-spectrum with the input, of which only the noise part C_L N_L / ((2L+1) f) scatters
-the ratio to the same realisation's input power. On a masked sky f is the effective sky fraction of
+the ratio to the same realization's input power. On a masked sky f is the effective sky fraction of
 spectra, ⟨w²⟩²/⟨w⁴⟩ (Hivon et al. 2002, ApJ 567, 2). These describe one simulated sky; they are not the
 errors of a survey analysis.
 """

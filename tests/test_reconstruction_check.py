@@ -30,7 +30,7 @@ def _gaussian_alm(cl, rng):
     return alm
 
 
-def _realisation(theory, n0, rng_seed: int):
+def _realization(theory, n0, rng_seed: int):
     # a Gaussian input and a reconstruction = input + independent Gaussian noise of power N0
     rng = np.random.default_rng(rng_seed)
     phi = _gaussian_alm(theory, rng)
@@ -44,7 +44,7 @@ def test_errors_match_the_scatter_and_rho_its_wiener_expectation(fiducial):
     theory, n0 = _spectra(fiducial)
     pulls_auto, pulls_response, rho, expected = [], [], [], None
     for seed in range(24):
-        check = check_reconstruction(_realisation(theory, n0, 100 + seed), theory, EDGES)
+        check = check_reconstruction(_realization(theory, n0, 100 + seed), theory, EDGES)
         pulls_auto.append((check.auto_minus_bias - check.theory) / check.auto_error)
         pulls_response.append((check.response - 1.0) / check.response_error)
         rho.append(check.rho)
@@ -56,7 +56,7 @@ def test_errors_match_the_scatter_and_rho_its_wiener_expectation(fiducial):
     assert 0.8 < np.std(pulls_response) < 1.2, np.std(pulls_response)
     assert abs(np.mean(pulls_auto)) < 0.25 and abs(np.mean(pulls_response)) < 0.25  # unbiased within ~4σ/√n
     # ρ of an estimate = truth + independent noise is √(C/(C+N)) (Wiener correlation); the mean over 24
-    # realisations agrees to a few percent (its scatter per band is ≲ 0.05 at the lowest L)
+    # realizations agrees to a few percent (its scatter per band is ≲ 0.05 at the lowest L)
     np.testing.assert_allclose(np.mean(rho, axis=0), expected, atol=0.03)
     assert expected[0] > expected[-1]  # the noise grows with L here: the correlation falls
 
@@ -80,7 +80,7 @@ def test_binned_theory_lies_on_the_theory_curve(fiducial):
 
 def test_errors_scale_with_the_sky_fraction_and_n1_is_subtracted(fiducial):
     theory, n0 = _spectra(fiducial)
-    data = _realisation(theory, n0, 7)
+    data = _realization(theory, n0, 7)
     full = check_reconstruction(data, theory, EDGES)
     quarter = check_reconstruction(data, theory, EDGES, sky_fraction=0.25)
     np.testing.assert_allclose(quarter.auto_error, 2.0 * full.auto_error, rtol=1e-12)  # σ ∝ 1/√f (Knox 1995)

@@ -115,7 +115,7 @@ def test_the_curl_view_follows_the_toggle_at_once(app):
     suite, runs = section.suite, section.task.runs
     section.component.value = "curl"
     assert section.wait(60)
-    assert section.task.runs == runs and section.suite is suite  # analysed again, not simulated again
+    assert section.task.runs == runs and section.suite is suite  # analyzed again, not simulated again
     assert section.result.component == "curl"
     reference = lensrec.lensing_bandpowers(suite, estimator="MV", component="curl")
     np.testing.assert_allclose(section.plotted()["bandpowers"], reference.debiased, rtol=1e-12)

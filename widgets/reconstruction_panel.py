@@ -40,7 +40,7 @@ SPECTRA_FIGURE = (10.4, 3.8)
 MOLLWEIDE_XSIZE = 600
 BANDS = 16
 # what reconstruct's progress(done, total) steps mean for the quadratic estimator
-RECONSTRUCTION_STEPS = {0: "filtering the maps…", 1: "forming the quadratic estimate…", 2: "normalising…"}
+RECONSTRUCTION_STEPS = {0: "filtering the maps…", 1: "forming the quadratic estimate…", 2: "normalizing…"}
 
 
 def band_average(values, L_min: int, L_max: int, bands: int = BANDS, scale=None):

@@ -121,7 +121,7 @@ class ValidationSection(Section):
         self.tasks.append(self.task)
         self._build_figure()
         # the gradient/curl switch redraws from the finished suite at once (no new simulations)
-        self.redraw = LiveUpdate(self._on_component, self.status, "Analysing the suite", delay=0.0)
+        self.redraw = LiveUpdate(self._on_component, self.status, "Analyzing the suite", delay=0.0)
         self.live.append(self.redraw)
 
         self.nside.observe(lambda change: setattr(self.lmax, "value", 2 * change["new"]), names="value")
@@ -238,7 +238,7 @@ class ValidationSection(Section):
         return self.task.start(work, finish)
 
     def _on_component(self) -> None:
-        """Analyse the finished suite for the component now chosen and redraw (no new simulations)."""
+        """Analyze the finished suite for the component now chosen and redraw (no new simulations)."""
         suite, component = self.suite, self.component.value
         if suite is None or self.task.busy:
             return

@@ -79,8 +79,9 @@ def test_labels_are_words_and_math_not_code_names(app):
     for name, section in app.sections.items():
         for widget in _walk(section.panel):
             texts = [getattr(widget, "description", "") or ""]
-            if isinstance(widget, widgets.ToggleButtons | widgets.Dropdown) and widget is not app["experiment"].picker:
-                texts += [str(label) for label in widget._options_labels]  # (experiment names are file names)
+            named_files = (app["experiment"].picker, getattr(app["delensing"], "tracer", None))
+            if isinstance(widget, widgets.ToggleButtons | widgets.Dropdown) and widget not in named_files:
+                texts += [str(label) for label in widget._options_labels]  # (shipped names are file names)
             for text in texts:
                 outside_math = re.sub(r"\$[^$]*\$|\S+\.(json|png|pdf|toml|ipynb)", "", text)  # math, file names
                 assert not CODE_NAME.search(outside_math), f"{name}: label {text!r} shows a code name"

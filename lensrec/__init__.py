@@ -14,6 +14,7 @@ from .estimator_engine import quadratic_estimates
 from .estimator_noise import ReconstructionNoise, reconstruction_noise
 from .experiment import Experiment, available_experiments, load_experiment
 from .filtering import FieldFilter, FilteredFields, IsotropicFilter
+from .gradient_spectra import lensed_gradient_spectra
 from .io import OutputExistsError
 from .iterative_noise import IterativeNoise, iterative_reconstruction_noise
 from .labels import COMPONENTS, ESTIMATORS, parse_estimators, uses_b_modes
@@ -87,6 +88,7 @@ __all__ = [
     "combined_phi",
     "tracer_delensing_forecasts",
     "lensed_cmb_spectra",
+    "lensed_gradient_spectra",
     "first_order_lensed_bb",
     "delensed_spectra",
     "delensing_forecast",

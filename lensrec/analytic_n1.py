@@ -71,6 +71,7 @@ from .estimator_weights import (
     spectrum_name,
 )
 from .experiment import as_experiment
+from .gradient_spectra import DEFAULT_WEIGHTS, parse_weights
 from .labels import (
     COMBINED_ESTIMATORS,
     ESTIMATOR_FIELDS,
@@ -598,13 +599,6 @@ def _hat_basis(L_grid: np.ndarray, size: int) -> np.ndarray:
     return basis
 
 
-def _parse_weights(weights) -> str:
-    allowed = ("lensed", "unlensed")
-    if weights not in allowed:
-        raise ValueError(f"weights must be one of {allowed}, got {weights!r}")
-    return weights
-
-
 def analytic_n1(
     experiment,
     spectra=None,
@@ -612,7 +606,7 @@ def analytic_n1(
     lmax_L=None,
     components=COMPONENTS,
     L_grid=None,
-    weights="lensed",
+    weights=None,
     matrix: bool = False,
     grid_size: int = DEFAULT_GRID_SIZE,
     noise=None,
@@ -637,8 +631,9 @@ def analytic_n1(
         "gradient" and/or "curl".
     L_grid : array_like of int, optional
         The coarse L grid (default :func:`default_n1_L_grid`, 24 log-spaced points from 2 to lmax_L).
-    weights : {"lensed", "unlensed"}
-        CMB spectra in the estimator weights (as in :func:`lensrec.reconstruction_noise`).
+    weights : {"lensed", "unlensed", "gradient"}, optional
+        CMB spectra in the estimator weights (as in :func:`lensrec.reconstruction_noise`; default
+        :data:`lensrec.gradient_spectra.DEFAULT_WEIGHTS`).
     matrix : bool
         Also return dN1_L/dC^φφ_L' on the grid (costs about one more pass per grid point).
     grid_size : int
@@ -672,7 +667,7 @@ def analytic_n1(
     experiment, spectra = as_experiment(experiment), as_spectra(spectra)
     labels = parse_estimators(estimators)
     components = parse_components(components)
-    weights = _parse_weights(weights)
+    weights = parse_weights(DEFAULT_WEIGHTS if weights is None else weights)
     lmax = max(experiment.ell_max_temperature, experiment.ell_max_polarization)
     if spectra.lmax < lmax:
         raise ValueError(
@@ -699,7 +694,7 @@ def analytic_n1(
             spectra,
             estimators=labels,
             lmax_L=lmax_L,
-            lensed_weights=weights == "lensed",
+            weights=weights,
             nthreads=nthreads,
             components=components,
         )
@@ -717,7 +712,7 @@ def analytic_n1(
     if missing:
         raise ValueError(f"the given noise does not hold the estimators {missing}; compute it with them")
     position = [list(noise.covariance_labels).index(label) for label in base]
-    factors = standard_factors(experiment, spectra, lmax, weights == "lensed")
+    factors = standard_factors(experiment, spectra, lmax, weights)
     for key in ("TT", "EE", "BB", "TE"):
         factors.add(f"{_LEG_PREFIX}:{key}", spectra.lensed[key][: lmax + 1])
     phi = np.asarray(spectra.phi, dtype=np.float64)
@@ -829,7 +824,8 @@ def reconstruction_n1(reconstruction, spectra=None, points: int = 16, nthreads=N
         estimators=[reconstruction.estimator],
         lmax_L=lmax_L,
         L_grid=default_n1_L_grid(lmax_L, points),
-        weights="lensed" if noise.settings.get("lensed_weights", True) else "unlensed",
+        weights=noise.settings.get("weights")
+        or ("lensed" if noise.settings.get("lensed_weights", True) else "unlensed"),
         grid_size=96,
         noise=noise if int(noise.L[-1]) == lmax_L else None,
         nthreads=nthreads,

@@ -90,6 +90,7 @@ from .estimator_weights import (
     spectrum_name,
 )
 from .filtering import FilteredFields
+from .gradient_spectra import resolve_weights, weight_spectra
 from .harmonics import ell_of_alm, gl_grid_for_band_limits, nalm
 from .labels import ESTIMATORS, PAIR_ESTIMATORS
 from .spectra import Spectra, fiducial_spectra
@@ -512,10 +513,11 @@ def quadratic_estimates(
     estimators=BASE_ESTIMATORS,
     lmax_L: int | None = None,
     spectra: Spectra | None = None,
-    lensed_weights: bool = True,
+    weights: str | None = None,
     nthreads: int | None = None,
     workspace_mb: int | None = None,
     symmetrize: bool = False,
+    lensed_weights: bool | None = None,
 ) -> QuadraticEstimates:
     """Unnormalized quadratic estimates ḡ^XY_LM[a, b] in position space (gradient and curl weights).
 
@@ -532,8 +534,10 @@ def quadratic_estimates(
         Highest L returned (default: the fields' lmax; at most 2·lmax, the band limit of the products).
     spectra : Spectra, optional
         CMB spectra in the weights f^XY (default: the fiducial cosmology).
-    lensed_weights : bool
-        Lensed (default, common practice) or unlensed spectra in the weights.
+    weights : {"lensed", "unlensed", "gradient"}, optional
+        CMB spectra in the weights (:func:`lensrec.gradient_spectra.weight_spectra`; default
+        :data:`lensrec.gradient_spectra.DEFAULT_WEIGHTS`). A bool here is read as the deprecated
+        ``lensed_weights``.
     nthreads : int, optional
     workspace_mb : float, optional
         Memory for one block of rings (the legs and products of those rings), in MB; default 1024. The grid
@@ -543,6 +547,8 @@ def quadratic_estimates(
         With two inputs: return ½ (ḡ[a, b] + ḡ[b, a]) in one pass (each input's legs synthesized once, one
         analysis per estimator), as realization-dependent N0 and N1 use mixed pairs; about half the cost of
         two calls. Ignored for one input (ḡ[a, a] is its own mirror).
+    lensed_weights : bool, optional
+        Deprecated: True means ``weights="lensed"``, False ``weights="unlensed"``.
 
     Returns
     -------
@@ -591,7 +597,8 @@ def quadratic_estimates(
     if spectra.lmax < lmax:
         raise ValueError(f"spectra reach l={spectra.lmax} but the filtered fields go to lmax={lmax}")
     nthreads = resolve_nthreads(nthreads)
-    signal = spectra.cmb(lensed=bool(lensed_weights))
+    weights = resolve_weights(weights, lensed_weights)
+    signal = weight_spectra(spectra, weights, lmax)
     factors = FactorTable({f"cmb:{key}": signal[key][: lmax + 1] for key in ("TT", "EE", "BB", "TE")})
     symmetrize = bool(symmetrize) and not shared
     plan = _plan(labels, factors, shared, symmetrize)
@@ -676,7 +683,8 @@ def quadratic_estimates(
     settings = {
         "lmax": lmax,
         "lmax_L": lmax_L,
-        "lensed_weights": bool(lensed_weights),
+        "weights": weights,
+        "lensed_weights": weights == "lensed",
         "estimators": list(labels),
         "symmetrized": symmetrize,
         "grid": [grid.ntheta, grid.nphi],

@@ -35,6 +35,7 @@ from .estimator_weights import (
 )
 from .experiment import Experiment, as_experiment
 from .filtering import joint_inverse_spectra
+from .gradient_spectra import resolve_weights, weight_spectra
 from .labels import (
     COMBINED_ESTIMATORS,
     COMPONENTS,
@@ -69,15 +70,17 @@ def standard_factors(
     experiment: Experiment,
     spectra: Spectra,
     lmax: int,
-    lensed_weights: bool = True,
+    weights: str | None = None,
     total_prefix: str = "total",
     filter_prefix: str = "inverse",
     spectra_prefix: str = "cmb",
     joint_prefix: str = "joint",
+    lensed_weights: bool | None = None,
 ) -> FactorTable:
     """The factor table lensrec's estimators use.
 
-    ``"cmb:XY"``: CMB spectra in the weights and response (lensed unless ``lensed_weights=False``);
+    ``"cmb:XY"``: CMB spectra in the weights and response (``weights``: lensed, unlensed or lensed-gradient,
+    :func:`lensrec.gradient_spectra.weight_spectra`);
     ``"total:XY"``: total spectra C_tot = lensed CMB + beam-deconvolved noise, set to 0 outside the ℓ cuts
     (where every filter vanishes); ``"inverse:X"``: the diagonal filters 1/C^XX_tot (0 outside the cuts);
     ``"joint:XY"``: elements of the inverse 3×3 total covariance C_tot⁻¹ (the joint filter,
@@ -89,12 +92,16 @@ def standard_factors(
     spectra : Spectra
     lmax : int
         Highest CMB multipole (≤ ``spectra.lmax``).
-    lensed_weights : bool
+    weights : {"lensed", "unlensed", "gradient"}, optional
+        Spectra in the weights and response (default :data:`lensrec.gradient_spectra.DEFAULT_WEIGHTS`).
     total_prefix, filter_prefix, spectra_prefix, joint_prefix : str
         Name prefixes (change them to hold several sets in one table).
+    lensed_weights : bool, optional
+        Deprecated: True means ``weights="lensed"``, False ``weights="unlensed"``.
     """
+    weights = resolve_weights(weights, lensed_weights)
     lmax = as_int(lmax, "lmax", minimum=2, maximum=spectra.lmax)
-    signal = spectra.cmb(lensed=bool(lensed_weights))
+    signal = weight_spectra(spectra, weights, lmax)
     total = experiment.total_spectra(spectra, lmax, lensed=True)
     table = FactorTable()
     for key in ("TT", "EE", "BB", "TE"):
@@ -353,7 +360,7 @@ class ReconstructionNoise:
     phi_spectrum : ndarray
         C_L^φφ of the spectra used (for :meth:`lensing_snr`).
     settings : mapping
-        lmax, lmax_L, lensed_weights, estimators, components, quadrature nodes.
+        lmax, lmax_L, weights (and the old lensed_weights flag), estimators, components, quadrature nodes.
     """
 
     L: np.ndarray
@@ -429,9 +436,10 @@ def reconstruction_noise(
     spectra=None,
     estimators=ESTIMATORS,
     lmax_L=None,
-    lensed_weights=True,
+    lensed_weights=None,
     nthreads=None,
     components=COMPONENTS,
+    weights=None,
 ) -> ReconstructionNoise:
     """Exact full-sky responses and Gaussian N0 of the quadratic estimators, their covariance and the MV.
 
@@ -447,13 +455,17 @@ def reconstruction_noise(
     lmax_L : int, optional
         Highest lensing multipole (default and maximum: the CMB ℓ_max, the larger of the experiment's
         temperature and polarization ℓ_max).
-    lensed_weights : bool
-        Use lensed CMB spectra in the weights and the response (default, common practice); False selects
-        unlensed spectra. The filters always use the total (lensed + noise) spectra.
+    lensed_weights : bool, optional
+        Deprecated (use ``weights``): True means "lensed", False "unlensed".
     nthreads : int, optional
         Threads (default: ``LENSREC_NTHREADS`` or all cores).
     components : sequence of str
         "gradient" and/or "curl" (default both).
+    weights : {"lensed", "unlensed", "gradient"}, optional
+        CMB spectra in the weights and the response: lensed C (common practice), unlensed C, or the
+        lensed-gradient C^{T∇T} of Lewis, Challinor & Hanson 2011 (JCAP 03, 018) for TT with lensed
+        polarization (:mod:`lensrec.gradient_spectra`). Default :data:`lensrec.gradient_spectra.DEFAULT_WEIGHTS`.
+        The filters always use the total (lensed + noise) spectra.
 
     Returns
     -------
@@ -478,6 +490,7 @@ def reconstruction_noise(
     >>> bool(result.n0["MV"]["gradient"][100] <= result.n0["EB"]["gradient"][100])
     True
     """
+    weights = resolve_weights(weights, lensed_weights)
     experiment, spectra = as_experiment(experiment), as_spectra(spectra)
     labels = parse_estimators(estimators)
     components = parse_components(components)
@@ -495,7 +508,7 @@ def reconstruction_noise(
     for key in ("TT", "EE", "BB", "TE"):
         for which in (spectra.lensed, spectra.unlensed):
             as_finite_array(which[key][: lmax + 1], f"spectra {key}")
-    factors = standard_factors(experiment, spectra, lmax, lensed_weights)
+    factors = standard_factors(experiment, spectra, lmax, weights)
     wanted = set(labels).union(*(COMBINED_ESTIMATORS.get(label, ()) for label in labels))
     base = tuple(label for label in ESTIMATOR_FIELDS if label in wanted)
     usable = []
@@ -558,18 +571,18 @@ def reconstruction_noise(
                 continue
             index = [i for i, pair in enumerate(base) if pair in COMBINED_ESTIMATORS[label]]
             part = cov[np.ix_(index, index)]
-            combined_n0, weights = minimum_variance(np.where(np.isnan(part), np.inf, part))
+            combined_n0, combination = minimum_variance(np.where(np.isnan(part), np.inf, part))
             combined_n0[low] = np.nan
-            weights[:, low] = np.nan
+            combination[:, low] = np.nan
             n0.setdefault(label, {})[component] = _frozen_array(combined_n0)
             with np.errstate(divide="ignore"):
                 response.setdefault(label, {})[component] = _frozen_array(1.0 / combined_n0)
             full = np.zeros((len(base), lmax_L + 1))
-            full[index] = weights
+            full[index] = combination
             full[:, low] = np.nan
             combined_weights.setdefault(label, {})[component] = _frozen_array(full)
             if label == "MV":  # MV combines every defined estimator: its weights run over covariance_labels
-                mv_weights[component] = _frozen_array(weights)
+                mv_weights[component] = _frozen_array(combination)
         if JOINT_ESTIMATOR in labels:
             joint_response = sum(values[k] for k in registry[component, "joint response"])
             _check_real(joint_response, np.abs(joint_response), "joint response")
@@ -587,7 +600,8 @@ def reconstruction_noise(
     settings = {
         "lmax": lmax,
         "lmax_L": lmax_L,
-        "lensed_weights": bool(lensed_weights),
+        "weights": weights,
+        "lensed_weights": weights == "lensed",
         "estimators": list(labels),
         "components": list(components),
         "quadrature_points": sums.last_counts["npoints"],

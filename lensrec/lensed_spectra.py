@@ -260,13 +260,13 @@ def _lensing_terms(cl):
     ]
 
 
-def _correlation_changes(cl, sigma2, cgl2, x, nthreads):
-    """ξ̃ − ξ at the nodes ``x`` for T, the spin-2 pair (+, −) and the cross (X)."""
+def _correlation_changes(cl, sigma2, cgl2, x, nthreads, terms=None):
+    """ξ̃ − ξ at the nodes ``x`` for T, the spin-2 pair (+, −) and the cross (X), or for the given terms."""
     lmax_in = cl["TT"].size - 1
     _, llp1, _ = _ell_arrays(lmax_in)
     half = 0.5 * llp1
-    terms = _lensing_terms(cl)
-    changes = {key: np.zeros(x.size) for key in ("T", "+", "-", "X")}
+    terms = _lensing_terms(cl) if terms is None else terms
+    changes = {key: np.zeros(x.size) for key in dict.fromkeys(term[0] for term in terms)}
     for key, m, n, coefficients, kernel, factor in terms:
         if kernel is None and np.any(coefficients):
             changes[key] += factor(sigma2, cgl2) * wigner_d_series(coefficients, m, n, x, nthreads=nthreads)

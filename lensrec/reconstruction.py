@@ -39,6 +39,7 @@ from .estimator_noise import JOINT_ESTIMATOR, ReconstructionNoise, reconstructio
 from .estimator_weights import COMPONENTS
 from .experiment import Experiment, load_experiment
 from .filtering import FieldFilter, FilteredFields, IsotropicFilter  # noqa: F401  (importable from here)
+from .gradient_spectra import resolve_weights
 from .harmonics import ell_of_alm, nalm, npix_to_nside
 from .labels import COMBINED_ESTIMATORS, ESTIMATORS
 from .mean_field_average import MeanField, _check_mean_field, mean_field
@@ -146,10 +147,11 @@ def reconstruct_filtered(
     estimator: str | None = None,
     lmax_L: int | None = None,
     mean_field: MeanField | None = None,
-    lensed_weights: bool = True,
+    lensed_weights: bool | None = None,
     noise: ReconstructionNoise | None = None,
     nthreads: int | None = None,
     symmetrize: bool = False,
+    weights: str | None = None,
 ) -> Reconstruction:
     """Normalized reconstruction from filtered fields (one input, or a mixed pair [a, b]).
 
@@ -171,8 +173,8 @@ def reconstruct_filtered(
         Highest L (default and maximum: the fields' lmax).
     mean_field : MeanField, optional
         Subtracted from the normalized estimate.
-    lensed_weights : bool
-        Lensed (default) or unlensed CMB spectra in the weights and response.
+    lensed_weights : bool, optional
+        Deprecated (use ``weights``): True means "lensed", False "unlensed".
     noise : ReconstructionNoise, optional
         A precomputed :func:`lensrec.reconstruction_noise` result for the same experiment, spectra, lmax_L
         and weights (it must contain the estimator, and all five for "MV"); saves recomputing it.
@@ -180,6 +182,9 @@ def reconstruct_filtered(
     symmetrize : bool
         For a mixed pair: the symmetrized φ̂{a, b} = ½ (φ̂[a, b] + φ̂[b, a]) in one pass (see
         :func:`lensrec.reconstruction.quadratic_estimates`), as realization-dependent N0 and N1 need it.
+    weights : {"lensed", "unlensed", "gradient"}, optional
+        CMB spectra in the weights and the response (see :func:`lensrec.reconstruction_noise`); the filters
+        keep the lensed spectra plus noise.
 
     Returns
     -------
@@ -189,6 +194,7 @@ def reconstruct_filtered(
     ----------
     Okamoto & Hu 2003, PRD 67, 083002, §III (normalization and minimum-variance combination).
     """
+    weights = resolve_weights(weights, lensed_weights)
     if not isinstance(first, FilteredFields):
         raise TypeError(f"first must be FilteredFields, got {type(first).__name__}")
     if estimator is None:
@@ -222,7 +228,7 @@ def reconstruct_filtered(
             spectra,
             estimators=labels + (estimator,) if combined else labels,
             lmax_L=lmax_L,
-            lensed_weights=lensed_weights,
+            weights=weights,
             nthreads=nthreads,
         )
     elif not isinstance(noise, ReconstructionNoise):
@@ -232,9 +238,7 @@ def reconstruct_filtered(
             f"noise must hold {estimator} (and its parts) to lmax_L={lmax_L}; got estimators "
             f"{list(noise.n0)} to lmax_L={int(noise.L[-1])}"
         )
-    estimates = quadratic_estimates(
-        first, second, labels, lmax_L, spectra, lensed_weights, nthreads, symmetrize=symmetrize
-    )
+    estimates = quadratic_estimates(first, second, labels, lmax_L, spectra, weights, nthreads, symmetrize=symmetrize)
 
     ell = ell_of_alm(lmax_L)
     low = ell < 2
@@ -305,7 +309,7 @@ def reconstruct(
     mean_field: MeanField | None = None,
     lmax: int | None = None,
     nthreads: int | None = None,
-    lensed_weights: bool = True,
+    lensed_weights: bool | None = None,
     field_filter: FieldFilter | None = None,
     lensing_iterations: int = 0,
     progress=None,
@@ -317,6 +321,7 @@ def reconstruct(
     cg_tolerance: float | None = None,
     cg_max_iterations: int | None = None,
     cg_progress=None,
+    weights: str | None = None,
 ) -> Reconstruction:
     """Reconstruct the lensing potential φ (and the curl Ω) from observed T, Q, U maps.
 
@@ -346,8 +351,8 @@ def reconstruct(
     lmax : int, optional
         CMB band limit of the filter (default: the experiment's largest ℓ_max; must be ≤ 3·nside − 1).
     nthreads : int, optional
-    lensed_weights : bool
-        Lensed (default, common practice) or unlensed spectra in the weights and response.
+    lensed_weights : bool, optional
+        Deprecated (use ``weights``): True means "lensed", False "unlensed".
     field_filter : FieldFilter, optional
         Another filter (anything with ``filter(maps) -> FilteredFields``); ``mask`` and ``lmax`` then belong
         to it. The analytic normalization still assumes ``experiment``'s isotropic filter.
@@ -375,6 +380,9 @@ def reconstruct(
         Conjugate-gradient settings of the optimal filter.
     cg_progress : callable, optional
         ``cg_progress(iteration, residual)`` after each conjugate-gradient iteration.
+    weights : {"lensed", "unlensed", "gradient"}, optional
+        CMB spectra in the weights and response only (see :func:`lensrec.reconstruction_noise`); the filter
+        keeps lensed C + N. Default :data:`lensrec.gradient_spectra.DEFAULT_WEIGHTS`.
 
     Returns
     -------
@@ -402,15 +410,19 @@ def reconstruct(
     ((561,), 'TT')
     """
     estimator = _check_label(estimator)
+    chosen = weights is not None or lensed_weights is not None
+    weights = resolve_weights(weights, lensed_weights)
     from .iterative_reconstruction import check_lensing_iterations, iterate_reconstruction
 
     if check_lensing_iterations(lensing_iterations, estimator) > 0:
         extras = {"mask": mask, "field_filter": field_filter, "mean_field": mean_field}
         given = [name for name, value in extras.items() if value is not None]
-        if given or not lensed_weights:
+        if chosen and weights != "lensed":
+            given.append(f"weights={weights!r}")
+        if given:
             raise ValueError(
                 f"lensing_iterations={lensing_iterations} works on the full sky with the isotropic filter and "
-                f"lensed weights; drop {', '.join(given) or 'lensed_weights=False'}"
+                f"its own (delensed) weights; drop {', '.join(given)}"
             )
         return iterate_reconstruction(
             maps,
@@ -470,7 +482,7 @@ def reconstruct(
         estimator=estimator,
         lmax_L=lmax_L,
         mean_field=mean_field,
-        lensed_weights=lensed_weights,
+        weights=weights,
         nthreads=nthreads,
     )
     settings = dict(result.settings, filter_choice=choice or fields.settings.get("filter"))

@@ -13,6 +13,7 @@ import numpy as np
 
 from ._checks import as_float, as_int, check_lmax_for_nside, check_nside
 from ._deprecation import renamed_arguments, upgrade_keys
+from .gradient_spectra import parse_weights
 from .labels import (  # noqa: F401  (COMPONENTS re-exported: it lived here)
     COMBINED_ESTIMATORS,
     COMPONENTS,
@@ -80,6 +81,7 @@ def lensing_suite_settings(
     data_maps=None,
     epsilon: float = 1e-7,
     lensing_iterations: int = 0,
+    weights: str = "lensed",
 ) -> dict:
     """Validated, plain-JSON settings of a lensing suite (the input of :func:`run_lensing_suite`).
 
@@ -137,6 +139,9 @@ def lensing_suite_settings(
         Monte-Carlo N0 from their autos are those of the iterated estimate; the mixed-pair estimates (RDN0)
         stay quadratic. The curl auto is the curl of the last step's residual deflection: a null test with the
         converged filters, whose noise is that step's curl N0.
+    weights : {"lensed", "unlensed", "gradient"}
+        CMB spectra in the estimator weights and the analytic response (:func:`lensrec.reconstruction_noise`);
+        default "lensed", under which suites made before the choice existed keep their fingerprints.
 
     Returns
     -------
@@ -230,6 +235,11 @@ def lensing_suite_settings(
     }
     if iterations:  # absent when 0, so quadratic suites keep their fingerprints
         settings["lensing_iterations"] = iterations
+    weights = parse_weights(weights)
+    if weights != "lensed":  # absent for lensed weights, so existing suites keep their fingerprints
+        if iterations:
+            raise ValueError(f"lensing_iterations={iterations} uses its own weights; drop weights={weights!r}")
+        settings["weights"] = weights
     if mask is not None:
         if not isinstance(mask, (str, os.PathLike)):
             raise TypeError(f"mask must be the path of a HEALPix FITS mask, got {type(mask).__name__}")

@@ -71,7 +71,12 @@ def _context(settings: dict) -> _Context:
             )
     field_filter = IsotropicFilter(experiment, spectra, lmax=settings["lmax"], mask=mask, nthreads=nthreads)
     noise = reconstruction_noise(
-        field_filter.experiment, spectra, estimators=ESTIMATORS, lmax_L=settings["lmax_L"], nthreads=nthreads
+        field_filter.experiment,
+        spectra,
+        estimators=ESTIMATORS,
+        lmax_L=settings["lmax_L"],
+        nthreads=nthreads,
+        weights=settings.get("weights", "lensed"),
     )
     context = _Context(experiment, field_filter, noise, spectra, mask, nthreads)
     with _CONTEXT_LOCK:
@@ -98,7 +103,7 @@ def suite_analytic_n0(settings: dict, estimator: str, component: str = "gradient
     """Analytic Gaussian N0 (C_L, L = 0 … lmax_L; NaN below L = 2) of one estimator of a suite.
 
     The full-sky N0 of the normalization the suite's reconstructions use: the suite's experiment with its
-    multipoles cut at the suite's lmax, the suite's spectra, lensed weights (Okamoto & Hu 2003, PRD 67,
+    multipoles cut at the suite's lmax, the suite's spectra and weights (lensed unless the suite chose others; Okamoto & Hu 2003, PRD 67,
     083002). Only this estimator is computed (and its pairs, for a combination); no filter or mask is built.
     """
     from .estimator_noise import reconstruction_noise
@@ -114,7 +119,12 @@ def suite_analytic_n0(settings: dict, estimator: str, component: str = "gradient
     ).experiment  # its multipoles cut at lmax, as in the suite's filter
     nthreads = int(settings["nthreads"]) if nthreads is None else nthreads
     noise = reconstruction_noise(
-        experiment, spectra, estimators=(estimator,), lmax_L=settings["lmax_L"], nthreads=nthreads
+        experiment,
+        spectra,
+        estimators=(estimator,),
+        lmax_L=settings["lmax_L"],
+        nthreads=nthreads,
+        weights=settings.get("weights", "lensed"),
     )
     return np.asarray(noise.n0[estimator][component])
 
@@ -136,6 +146,7 @@ def _reconstruct(first, second, estimator: str, context: _Context, settings: dic
         noise=context.noise,
         nthreads=context.nthreads,
         symmetrize=symmetrize,
+        weights=settings.get("weights", "lensed"),
     )
     return {"gradient": np.array(result.phi_alm), "curl": np.array(result.curl_alm)}
 

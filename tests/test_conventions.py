@@ -40,7 +40,7 @@ def _experiment(lmax):
 def _responses(lmax, lmax_L):
     """R of the + sign and − sign EB estimators (unlensed weights) to the true lensing and to themselves."""
     experiment = _experiment(lmax)
-    factors = standard_factors(experiment, _symmetric_spectra(), lmax, lensed_weights=False)
+    factors = standard_factors(experiment, _symmetric_spectra(), lmax, weights="unlensed")
     for key in ("TT", "EE", "TE"):
         factors.add(f"nobb:{key}", factors.values(f"cmb:{key}", lmax))
     factors.add("nobb:BB", np.zeros(lmax + 1))
@@ -88,7 +88,7 @@ def test_simulated_cross_over_input_is_one_for_the_plus_sign_and_zero_for_the_ot
         sky.lensed_alm * experiment.beam(lmax)[ell]
     )
     phi = harmonics.truncate_alm(sky.phi_alm, lmax_L, sky.lmax_unlensed)
-    common = dict(estimator="EB", lmax_L=lmax_L, lensed_weights=False, nthreads=2)
+    common = dict(estimator="EB", lmax_L=lmax_L, weights="unlensed", nthreads=2)
     plus = reconstruct_filtered(fields, experiment, spectra=spectra, **common)
     e_term = reconstruct_filtered(fields, experiment, spectra=_symmetric_spectra(no_bb_in_weights=True), **common)
     _, _, flipped_own = _responses(lmax, lmax_L)

@@ -221,9 +221,7 @@ def test_transform_counts(tiny_inputs):
     assert mixed.settings["transforms"]["synthesis"] == 16  # 7 legs of the first input, 9 of the second
     # unlensed weights have no B-mode power (r = 0), so EB drops the C^BB B legs: 3 syntheses + 1 analysis
     fiducial = lensrec.fiducial_spectra()
-    unlensed = quadratic_estimates(
-        fields, estimators="EB", lmax_L=4, spectra=fiducial, lensed_weights=False, nthreads=1
-    )
+    unlensed = quadratic_estimates(fields, estimators="EB", lmax_L=4, spectra=fiducial, weights="unlensed", nthreads=1)
     assert unlensed.settings["transforms"]["total"] == 4
 
 

@@ -250,7 +250,7 @@ def test_unlensed_weights_match_brute_force(fiducial):
         spectra,
         estimators=("TT", "EB"),
         lmax_L=60,
-        lensed_weights=False,
+        weights="unlensed",
         components=("gradient",),
         nthreads=2,
     )

@@ -10,7 +10,7 @@ HELP = "exact full-sky reconstruction noise N0 (gradient and curl) and lensing S
 EXAMPLES = """examples:
   lensrec forecast --experiment deep_highland --lmax-L 3000 --out n0.json
   lensrec forecast --experiment my_survey.toml --estimators TT,EB,MV --out n0_eb.json --force
-  lensrec forecast --experiment wide_lowland --lmax-L 2000 --unlensed-weights --out n0_unlensed.json
+  lensrec forecast --experiment wide_lowland --lmax-L 2000 --weights unlensed --out n0_unlensed.json
   lensrec forecast --experiment deep_highland --estimators TT,EB,MV --n1 --out n0_n1.json
 
 writes one JSON file: {"L": [0..lmax_L], "n0": {"TT": {"gradient": [...], "curl": [...]}, ...},
@@ -35,7 +35,7 @@ TABLE_L = (30, 100, 300, 1000, 2000, 3000)
 
 
 def add_arguments(parser) -> None:
-    from .options import add_common
+    from .options import add_common, add_weights_option
 
     add_common(parser, experiment=True, out=True)
     parser.add_argument(
@@ -50,11 +50,7 @@ def add_arguments(parser) -> None:
         default=",".join(ESTIMATORS),
         help=f"comma-separated estimators from {', '.join(ESTIMATORS)} (default: %(default)s)",
     )
-    parser.add_argument(
-        "--unlensed-weights",
-        action="store_true",
-        help="use unlensed CMB spectra in the weights and response (default: lensed)",
-    )
+    add_weights_option(parser)
     parser.add_argument(
         "--n1",
         action="store_true",
@@ -93,10 +89,11 @@ def forecast_document(
     experiment,
     estimators=ESTIMATORS,
     lmax_L=None,
-    lensed_weights=True,
+    lensed_weights=None,
     nthreads=None,
     spectra=None,
     noise=None,
+    weights=None,
 ) -> tuple[dict, object]:
     """Compute N0 and S/N and return (the JSON document without provenance, the ReconstructionNoise).
 
@@ -115,6 +112,7 @@ def forecast_document(
             lmax_L=lmax_L,
             lensed_weights=lensed_weights,
             nthreads=nthreads,
+            weights=weights,
         )
     else:
         if not isinstance(noise, ReconstructionNoise):
@@ -285,7 +283,7 @@ def run(args) -> int:
         experiment,
         estimators=args.estimators,
         lmax_L=args.lmax_L,
-        lensed_weights=not args.unlensed_weights,
+        weights=args.weights,
         nthreads=args.nthreads,
     )
     timings["reconstruction_noise"] = time.perf_counter() - start
@@ -298,7 +296,7 @@ def run(args) -> int:
             experiment,
             estimators=list(result.n0),
             lmax_L=int(result.L[-1]),
-            weights="lensed" if not args.unlensed_weights else "unlensed",
+            weights=args.weights,
             noise=result,
             nthreads=args.nthreads,
         )
@@ -371,7 +369,7 @@ def run(args) -> int:
         "experiment": args.experiment,
         "lmax_L": int(result.L[-1]),
         "estimators": args.estimators,
-        "unlensed_weights": bool(args.unlensed_weights),
+        "weights": args.weights,
         "n1": bool(args.n1),
         "delensing": bool(args.delensing),
         "iterative": bool(args.iterative),

@@ -170,6 +170,39 @@ class _DeprecatedOption(argparse.Action):
         setattr(namespace, self.dest, values)
 
 
+def add_weights_option(parser: argparse.ArgumentParser, default: str | None = None) -> None:
+    """``--weights {lensed,unlensed,gradient}``, and the deprecated ``--unlensed-weights`` (= unlensed)."""
+    from ..gradient_spectra import DEFAULT_WEIGHTS, WEIGHTS
+
+    default = DEFAULT_WEIGHTS if default is None else default
+    parser.add_argument(
+        "--weights",
+        choices=WEIGHTS,
+        default=default,
+        help="CMB spectra in the estimator weights and response: lensed, unlensed, or the lensed-gradient "
+        "spectra of Lewis, Challinor & Hanson 2011 (the filters always use lensed C + N; default: %(default)s)",
+    )
+    parser.add_argument(
+        "--unlensed-weights",
+        dest="weights",
+        action=_DeprecatedFlag,
+        const="unlensed",
+        nargs=0,
+        new_option="--weights unlensed",
+        help=argparse.SUPPRESS,
+    )
+
+
+class _DeprecatedFlag(_DeprecatedOption):
+    """A flag without value that stores ``const`` and warns that ``new_option`` replaces it."""
+
+    def __init__(self, option_strings, dest, new_option: str = "", const=None, nargs=0, **kwargs):
+        super().__init__(option_strings, dest, new_option=new_option, nargs=0, const=const, **kwargs)
+
+    def __call__(self, parser, namespace, values, option_string=None):
+        super().__call__(parser, namespace, self.const, option_string)
+
+
 def add_deprecated_option(parser: argparse.ArgumentParser, old: str, new: str, dest: str, **kwargs) -> None:
     """Accept the old option spelling ``old`` for ``new`` (hidden from --help; warns when used)."""
     parser.add_argument(old, dest=dest, action=_DeprecatedOption, new_option=new, help=argparse.SUPPRESS, **kwargs)

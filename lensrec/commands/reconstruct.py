@@ -33,7 +33,7 @@ OUTPUTS = ("phi_alm.fits", "curl_alm.fits", "n0.json", "run.json")
 
 
 def add_arguments(parser) -> None:
-    from .options import add_common, add_filter_options, add_map_reading, add_noise_model
+    from .options import add_common, add_filter_options, add_map_reading, add_noise_model, add_weights_option
 
     add_common(parser, experiment=True, out=True)
     add_map_reading(parser)
@@ -77,11 +77,7 @@ def add_arguments(parser) -> None:
         help="leave the B modes at l <= L out of the reconstruction, so that delensing them later carries no "
         "B-mode reuse bias (Baleato Lizancos, Challinor & Carron 2021); recorded in n0.json",
     )
-    parser.add_argument(
-        "--unlensed-weights",
-        action="store_true",
-        help="use unlensed CMB spectra in the weights and response (default: lensed)",
-    )
+    add_weights_option(parser)
 
 
 def _column_count(path: str) -> int:
@@ -140,6 +136,7 @@ def run(args) -> int:
     maps = read_maps(args.maps, **map_reading_options(args))
     nside = lensrec.harmonics.npix_to_nside(maps.shape[1], f"maps in {args.maps!r}")
     mask = lensrec.load_mask(args.mask, nside) if args.mask else None
+    from ..gradient_spectra import DEFAULT_WEIGHTS
     from ..io import map_is_masked
     from .options import cg_progress, default_lmax, load_noise_model
 
@@ -179,7 +176,7 @@ def run(args) -> int:
             mask=mask,
             lmax=lmax,
             nthreads=args.nthreads,
-            lensed_weights=not args.unlensed_weights,
+            weights=args.weights if not iterations or args.weights != DEFAULT_WEIGHTS else None,
             lensing_iterations=iterations,
             progress=progress if iterations else None,
             filter=args.filter,
@@ -209,7 +206,7 @@ def run(args) -> int:
             "settings": {
                 "estimator": estimator,
                 "lmax_L": result.lmax_L,
-                "lensed_weights": not args.unlensed_weights,
+                "weights": result.settings.get("weights"),
                 "lensing_iterations": iterations,
                 "b_excluded_ell_max": args.exclude_delensed_b,
                 "filter": result.settings.get("filter_choice", "isotropic"),

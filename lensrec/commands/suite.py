@@ -23,7 +23,7 @@ report/bias_budget_<estimator>_<component>.{json,txt,png} and report/run.json (p
 
 def add_arguments(parser) -> None:
     from ..suites import DEFAULT_LMAX_MARGIN
-    from .options import add_deprecated_option
+    from .options import add_deprecated_option, add_weights_option
 
     sub = parser.add_subparsers(dest="suite_command", metavar="ACTION", required=True)
     run = sub.add_parser("run", help="compute or resume a suite", description="compute or resume a lensing suite")
@@ -49,6 +49,7 @@ def add_arguments(parser) -> None:
         default=0,
         help="iterate each auto estimate N steps (estimator EB, full sky, no --n1; default 0 = quadratic)",
     )
+    add_weights_option(run, default="lensed")
     run.add_argument("--n1", action="store_true", help="also compute the Monte-Carlo N1 (three lensings per sim)")
     run.add_argument(
         "--n1-sims",
@@ -135,6 +136,7 @@ def _run_suite(args) -> int:
         data_seed=args.data_seed,
         data_maps=args.data_maps,
         lensing_iterations=args.lensing_iterations,
+        weights=args.weights,
     )
     client = cluster = None
     try:

@@ -72,7 +72,7 @@ def parse_weights(weights) -> str:
         raise TypeError(f"weights must be a string, one of {WEIGHTS}; got {type(weights).__name__}")
     value = weights.strip().lower()
     if value not in WEIGHTS:
-        raise ValueError(f"weights={weights!r} is not known; choose one of {', '.join(WEIGHTS)}")
+        raise ValueError(f"weights must be one of {', '.join(WEIGHTS)}; got {weights!r}")
     return value
 
 

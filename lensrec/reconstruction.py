@@ -362,7 +362,9 @@ def reconstruct(
         for estimator "EB" on the full sky (no mask, no field_filter, no mean_field).
     progress, cancel
         For ``lensing_iterations`` > 0: ``progress(done, total)`` per step, and a ``threading.Event`` that
-        stops after the current step.
+        stops after the current step. For the quadratic estimator: ``progress(done, 2)`` before filtering
+        (0), after filtering (1) and after forming and normalizing the estimate (2); an exception it raises
+        stops the reconstruction (nothing is returned), e.g. to cancel it.
     jacobi_iterations : int or "auto"
         Jacobi iterations of the filter's HEALPix analysis; "auto" (default) takes the fewest that keep the
         response within 1e-3 (0 up to lmax = 2·nside at nside ≥ 256, 1 below, else 3;
@@ -474,7 +476,11 @@ def reconstruct(
                 f"lmax_L={lmax_L} exceeds the CMB band limit lmax={cmb_lmax} the maps are filtered to; "
                 f"choose lmax_L <= {cmb_lmax}"
             )
+    if progress is not None:
+        progress(0, 2)
     fields = field_filter.filter(maps)
+    if progress is not None:
+        progress(1, 2)
     result = reconstruct_filtered(
         fields,
         experiment,
@@ -485,6 +491,8 @@ def reconstruct(
         weights=weights,
         nthreads=nthreads,
     )
+    if progress is not None:
+        progress(2, 2)
     settings = dict(result.settings, filter_choice=choice or fields.settings.get("filter"))
     return dataclasses.replace(result, settings=MappingProxyType(settings))
 

@@ -109,7 +109,7 @@ def check_reconstruction(
         Band edges in [2, lmax_L + 1] (see :func:`lensrec.power.bin_spectrum`).
     sky_fraction : float
         Sky fraction of the errors, in (0, 1]: 1 on the full sky, ``sky_fraction_moments(mask)
-        ["fsky_spectra"]`` on a masked one.
+        ["sky_fraction_spectra"]`` on a masked one.
     n1 : array, optional
         N1_L to subtract and to add to the noise of ρ's expectation and of the errors (e.g.
         :func:`lensrec.analytic_n1`).

@@ -177,10 +177,11 @@ def _check_lensing_inputs(phi_alm, curl_alm, lmax_L):
 
 
 def _lens_fields(
-    fields, phi_alm, curl_alm, lmax_L: int, lmax_in: int, lmax_out: int, epsilon: float, nthreads: int
+    fields, phi_alm, curl_alm, lmax_L: int, lmax_in: int, lmax_out: int, epsilon: float, nthreads: int, step=None
 ) -> list[np.ndarray]:
     """Lens several fields ((alm (ncomp, nalm(lmax_in)), spin), …) with one deflection; return their
-    lensed coefficients to ``lmax_out``."""
+    lensed coefficients to ``lmax_out``. ``step()``, if given, is called after the deflection and after each
+    field."""
     grid = lensing_grid(lmax_in, lmax_out, lmax_L)
     coefficients = _gradient_coefficients(phi_alm, curl_alm, lmax_L)
     deflection = _deflection_on_grid(coefficients, lmax_L, grid, nthreads)
@@ -190,6 +191,8 @@ def _lens_fields(
         raise ValueError(f"fields lensed together may have one nonzero spin, got spins {spins}")
     loc, rotation = _displaced_positions(deflection, grid, spins[0] if spins else 0, nthreads)
     del deflection
+    if step is not None:
+        step()
     results = []
     for alm, spin in fields:
         # full spin transform even for a zero curl part: ducc0's gradient-only mode is slower at these sizes
@@ -200,6 +203,8 @@ def _lens_fields(
             grid.analysis(values.reshape(values.shape[0], grid.ntheta, grid.nphi), lmax_out, spin, nthreads=nthreads)
         )
         del values
+        if step is not None:
+            step()
     return results
 
 
@@ -338,6 +343,7 @@ def lens_tqu_alm(
     curl_alm=None,
     epsilon: float = DEFAULT_EPSILON,
     nthreads: int | None = None,
+    progress=None,
 ) -> np.ndarray:
     """Lens unlensed (T, E, B) coefficients with one deflection; returns lensed (T, E, B) to ``lmax_out``.
 
@@ -348,6 +354,9 @@ def lens_tqu_alm(
     ----------
     alm : complex array, shape (3, nalm(lmax_in))
     phi_alm, lmax_out, lmax_in, curl_alm, epsilon, nthreads : see :func:`lens_alm`
+    progress : callable, optional
+        ``progress(done, 3)`` after the deflection, after T and after E, B; an exception it raises stops the
+        lensing (nothing is returned).
 
     Returns
     -------
@@ -358,6 +367,7 @@ def lens_tqu_alm(
     array = as_finite_array(alm, "alm", shape=(3, nalm(lmax_in)), dtype=np.complex128)
     phi_alm, curl_alm, lmax_L = _check_lensing_inputs(phi_alm, curl_alm, None)
     epsilon = as_float(epsilon, "epsilon", minimum=2e-13, maximum=0.1)
+    done = iter(range(1, 4))
     lensed_t, lensed_p = _lens_fields(
         [(array[:1], 0), (array[1:], 2)],
         phi_alm,
@@ -367,6 +377,7 @@ def lens_tqu_alm(
         lmax_out,
         epsilon,
         resolve_nthreads(nthreads),
+        step=None if progress is None else (lambda: progress(next(done), 3)),
     )
     return np.concatenate([lensed_t, lensed_p])
 

@@ -368,6 +368,7 @@ def simulate_sky(
     epsilon: float = DEFAULT_EPSILON,
     allow_high_lmax: bool = False,
     nthreads: int | None = None,
+    progress=None,
 ) -> SimulatedSky:
     """Simulate one observed, lensed CMB sky (T, Q, U on HEALPix) and keep its ingredients.
 
@@ -422,6 +423,10 @@ def simulate_sky(
         Accept lmax > 3·nside − 1.
     nthreads : int, optional
         Threads; default ``LENSREC_NTHREADS`` or all cores.
+    progress : callable, optional
+        ``progress(done, 6)`` before the work (done = 0) and after each of its six steps: the Gaussian CMB and
+        φ, the deflection field, lensing T, lensing E and B, beam and synthesis of the maps, noise and mask.
+        An exception it raises stops the simulation (nothing is returned), e.g. to cancel it.
 
     Returns
     -------
@@ -500,11 +505,25 @@ def simulate_sky(
     windows = _pixel_window(pixel_window, nside, lmax)
     nthreads = resolve_nthreads(nthreads)
 
+    def step(done: int) -> None:
+        if progress is not None:
+            progress(done, 6)
+
+    step(0)
     cmb = spectra.cmb(lensed=False, r=r)
     cls = {key: cmb[key][: lmax_unlensed + 1] for key in ("TT", "EE", "BB", "TE")}
     unlensed = gaussian_cmb_alm(cls, lmax_unlensed, rng_for(seed, index, "cmb"), nthreads=nthreads)
     phi_alm = gaussian_alm(spectra.phi, lmax_unlensed, rng_for(seed, index, "phi"), nthreads=nthreads)
-    lensed = lens_tqu_alm(unlensed, phi_alm, lmax, lmax_in=lmax_unlensed, epsilon=epsilon, nthreads=nthreads)
+    step(1)
+    lensed = lens_tqu_alm(
+        unlensed,
+        phi_alm,
+        lmax,
+        lmax_in=lmax_unlensed,
+        epsilon=epsilon,
+        nthreads=nthreads,
+        progress=None if progress is None else (lambda done, _total: step(1 + done)),
+    )
 
     ell = ell_of_alm(lmax)
     observed = lensed * experiment.beam(lmax)[ell]
@@ -513,6 +532,7 @@ def simulate_sky(
         observed[1:] *= windows[1][ell]
     maps = harmonics.alm2map_tqu(observed, nside, lmax, nthreads=nthreads, allow_high_lmax=allow_high_lmax)
     del observed
+    step(5)
     noise_model = None
     if noise and pixel_noise is not None:
         maps += pixel_noise.simulate(experiment, lmax, rng_for(seed, index, "noise"), nthreads=nthreads)
@@ -528,6 +548,7 @@ def simulate_sky(
         noise_model = _add_noise(maps, experiment, nside, lmax, seed, index, scale, nthreads, allow_high_lmax)
     if mask is not None:
         maps *= mask
+    step(6)
 
     grid = lensing_grid(lmax_unlensed, lmax, lmax_unlensed)
     settings = {

@@ -76,6 +76,38 @@ def test_spectra_are_the_library_spectra(app, expected):
     assert app.state.reconstruction is app["reconstruction"].result
 
 
+def test_binned_theory_lies_on_the_theory_curve(app):
+    # the bands bin the plotted quantity [L(L+1)]² C_L/2π with 2L+1 weights (lensrec.power.bin_spectrum), so each
+    # binned theory value lies within the curve's range over its band; binning C_L and multiplying by the band
+    # centre's factor put the first band (L = 2–3x) more than ten times above the curve
+    section = app["reconstruction"]
+    drawn = section.plotted()
+    theory_L, theory_curve = drawn["theory"]
+    centers, binned = drawn["theory_band"]
+    edges = section.products["check"].edges
+    assert edges[0] == 2 and edges[-1] == LMAX + 1
+    for b, (low, high) in enumerate(zip(edges[:-1], edges[1:], strict=True)):
+        inside = theory_curve[(theory_L >= low) & (theory_L < high)]
+        assert inside.min() * (1 - 1e-12) <= binned[b] <= inside.max() * (1 + 1e-12), (low, high)
+        assert low <= centers[b] < high
+    expected = lensrec.power.bin_spectrum(app.state.spectra.phi[: LMAX + 1], edges, weights="modes",
+                                          scale="lensing")[1]  # fmt: skip
+    np.testing.assert_allclose(binned, expected, rtol=1e-12)
+
+
+def test_bands_carry_the_gaussian_errors_of_the_library_check(app):
+    from lensrec.reconstruction_check import check_reconstruction
+
+    section = app["reconstruction"]
+    comparison = lensrec.compare_with_input(section.result, app.state.sky.phi_alm)
+    reference = check_reconstruction(comparison, app.state.spectra.phi, section.products["check"].edges)
+    response_errors, auto_errors = section.plotted()["errors"]
+    np.testing.assert_allclose(response_errors, reference.response_error, rtol=1e-9)
+    np.testing.assert_allclose(auto_errors, reference.auto_error, rtol=1e-9)
+    # errors shrink with the number of modes: the highest band is measured better than the lowest (Knox 1995)
+    assert reference.response_error[-1] < reference.response_error[0]
+
+
 def test_reconstruction_has_unit_response_to_the_input(app):
     # A normalized quadratic estimator has unit response: <C_L^(φ̂φ)> = C_L^φφ (Hu & Okamoto 2002, ApJ 574, 566).
     # Per L the ratio scatters with variance ≈ (1 + N0/C)/(2L+1) (Gaussian fields, common practice); the

@@ -170,3 +170,16 @@ def test_cancel_keeps_the_previous_sky_marked_out_of_date(simulated):
     assert section.view.stale and "cancelled" in section.view.banner.value
     assert not section.simulate_button.disabled and section.cancel_button.disabled
     section.seed.value = 7
+
+
+def test_simulation_progress_moves_through_its_steps(simulated):
+    section = simulated["sky"]
+    fractions, labels = [], []
+    section.task.progress.observe(lambda change: fractions.append(change["new"]), "value")
+    section.task.label.observe(lambda change: labels.append(change["new"]), "value")
+    section.seed.value = 9
+    section.simulate_button.click()
+    assert simulated.wait(120) and section.status.kind == "ok", section.status.message
+    # the bar moves with the library's steps (not one jump from 15% to done) and says what it is doing
+    assert len({round(f, 3) for f in fractions if 0.05 <= f <= 0.85}) >= 6, fractions
+    assert any("lensing Q and U" in text for text in labels) and any("noise and mask" in text for text in labels)

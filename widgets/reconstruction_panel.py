@@ -16,9 +16,10 @@ import ipywidgets as widgets
 import numpy as np
 
 import lensrec
-from lensrec import harmonics, power
+from lensrec import harmonics
 from lensrec.filter_choice import FILTERS
 from lensrec.labels import ESTIMATORS
+from lensrec.reconstruction_check import check_reconstruction
 
 from .plotting import (
     COLORS,
@@ -33,7 +34,7 @@ from .plotting import (
 from .section import Section, labelled, row
 from .work import Cancelled, LongTask
 
-__all__ = ["ReconstructionSection", "band_average"]
+__all__ = ["ReconstructionSection", "band_edges"]
 
 MAPS_FIGURE = (10.4, 3.4)
 SPECTRA_FIGURE = (10.4, 3.8)
@@ -43,18 +44,14 @@ BANDS = 16
 RECONSTRUCTION_STEPS = {0: "filtering the maps…", 1: "forming the quadratic estimate…", 2: "normalizing…"}
 
 
-def band_average(values, L_min: int, L_max: int, bands: int = BANDS, scale=None):
-    """(band centers, (2L+1)-weighted band means of ``scale`` × ``values``) over [L_min, L_max], by
-    :func:`lensrec.power.bin_spectrum` with non-finite entries left out and empty bands dropped.
-
-    A display aid: per-L spectra of one realization scatter by √(2/(2L+1)); bands make the trend visible.
-    """
-    values = np.asarray(values, dtype=float)[: L_max + 1]
-    edges = np.unique(np.linspace(L_min, L_max + 1, bands + 1).astype(int))
-    centers, means = power.bin_spectrum(np.where(np.isfinite(values), values, np.nan), edges, weights="modes",
-                                        scale=scale, skip_nan=True)  # fmt: skip
-    keep = np.isfinite(means)
-    return centers[keep], means[keep]
+def band_edges(lmax_L: int, bands: int = BANDS, L_min: int = 2) -> np.ndarray:
+    """Logarithmically spaced band edges over [L_min, lmax_L], each band at least two multipoles wide."""
+    edges = [L_min]
+    for edge in np.geomspace(L_min, lmax_L + 1, bands + 1)[1:].round().astype(int):
+        if edge - edges[-1] >= 2:
+            edges.append(int(edge))
+    edges[-1] = lmax_L + 1
+    return np.array(edges)
 
 
 class ReconstructionSection(Section):
@@ -165,7 +162,7 @@ class ReconstructionSection(Section):
             self.result, self.products = result, products
             self.state.reconstruction = result
             self._draw()
-            mean = band_average(products["cross_over_input"], 2, result.lmax_L, bands=1)[1][0]
+            mean = products["comparison"].mode_weighted_response(2, result.lmax_L)
             return (f"Reconstructed {estimator} up to L = {result.lmax_L}; cross/input averaged over L = 2–"
                     f"{result.lmax_L} with weights 2L+1: {mean:.2f} (1 for a unit-response estimator).")  # fmt: skip
 
@@ -182,16 +179,18 @@ class ReconstructionSection(Section):
         # on a masked sky the spectra are divided by the mask moments the fields carry (lensrec.power)
         comparison = lensrec.compare_with_input(result, sky.phi_alm)
         ratio, auto_minus_n0 = comparison.cross_over_input, comparison.auto_minus_n0
-        L_min = 2
+        # bands bin the plotted quantity (lensrec.power.bin_spectrum), with Gaussian errors for this sky fraction
+        sky_fraction = 1.0 if sky.mask is None else lensrec.sky_fraction_moments(sky.mask)["sky_fraction_spectra"]
+        check = check_reconstruction(comparison, spectra.phi, band_edges(lmax_L), sky_fraction=sky_fraction)
         return {
+            "comparison": comparison,
+            "check": check,
             "kappa_input": kappa_input,
             "kappa_wf": kappa_wf,
             "cross_over_input": ratio,
             "auto_minus_n0": auto_minus_n0,
             "n0": n0,
             "theory": np.asarray(spectra.phi[: lmax_L + 1]),
-            "cross_band": band_average(ratio, L_min, lmax_L),
-            "auto_band": band_average(auto_minus_n0, L_min, lmax_L, scale="lensing"),
             "mask": sky.mask,
         }
 
@@ -222,8 +221,8 @@ class ReconstructionSection(Section):
         self.ax_cross.axhline(1.0, color=COLORS["noise"], lw=1.0, ls="--")
         (self.cross_line,) = self.ax_cross.plot([], [], color=COLORS["reconstructed"], lw=0.8, alpha=0.35,
                                                 label="per L")  # fmt: skip
-        (self.cross_band,) = self.ax_cross.plot([], [], "o-", color=COLORS["reconstructed"], ms=4, lw=1.2,
-                                                label="band average")  # fmt: skip
+        (self.cross_band,) = self.ax_cross.plot([], [], "o", color=COLORS["reconstructed"], ms=4,
+                                                label="bands ± 1σ")  # fmt: skip
         self.ax_cross.set_xlabel("lensing multipole L")
         self.ax_cross.set_ylabel(r"$C_L^{\hat\phi\phi} / C_L^{\phi\phi}$ (input)")
         self.ax_cross.set_title("cross-spectrum with the input / input spectrum", fontsize=9.5)
@@ -231,9 +230,12 @@ class ReconstructionSection(Section):
         (self.theory_line,) = self.ax_auto.plot(
             [], [], color=COLORS["signal"], lw=3.0, label=r"theory $C_L^{\phi\phi}$"
         )
+        (self.theory_band,) = self.ax_auto.plot([], [], "_", color=COLORS["phi"], ms=9, mew=1.5,
+                                                label="theory, binned like the data")  # fmt: skip
         (self.n0_line,) = self.ax_auto.plot([], [], color=estimator_color("MV"), lw=1.2, ls="--", label="N0")
         (self.auto_band,) = self.ax_auto.plot([], [], "o", color=COLORS["reconstructed"], ms=4,
-                                              label="auto − N0 (band average)")  # fmt: skip
+                                              label="auto − N0, bands ± 1σ")  # fmt: skip
+        self.error_bars = []
         (self.auto_band_negative,) = self.ax_auto.plot([], [], "o", mfc="none", color=COLORS["reconstructed"], ms=4,
                                                        label="negative bands, |auto − N0|")  # fmt: skip
         self.ax_auto.set_xscale("log")
@@ -255,6 +257,11 @@ class ReconstructionSection(Section):
             "auto_band": (np.asarray(self.auto_band.get_xdata()), np.asarray(self.auto_band.get_ydata())),
             "n0": (np.asarray(self.n0_line.get_xdata()), np.asarray(self.n0_line.get_ydata())),
             "theory": (np.asarray(self.theory_line.get_xdata()), np.asarray(self.theory_line.get_ydata())),
+            "theory_band": (np.asarray(self.theory_band.get_xdata()), np.asarray(self.theory_band.get_ydata())),
+            "errors": [
+                np.asarray([(seg[1][1] - seg[0][1]) / 2.0 for seg in bars.lines[2][0].get_segments()])
+                for bars in self.error_bars
+            ],
         }
 
     def _draw(self) -> None:
@@ -280,13 +287,23 @@ class ReconstructionSection(Section):
         L = np.arange(result.lmax_L + 1)
         shown = L >= 2
         self.cross_line.set_data(L[shown], products["cross_over_input"][shown])
-        self.cross_band.set_data(*products["cross_band"])
+        check = products["check"]
+        self.cross_band.set_data(check.L_eff, check.response)
+        for bars in self.error_bars:
+            bars.remove()
+        self.error_bars = [
+            self.ax_cross.errorbar(check.L_eff, check.response, yerr=check.response_error, fmt="none",
+                                   ecolor=COLORS["reconstructed"], capsize=2),
+            self.ax_auto.errorbar(check.L_eff, np.abs(check.auto_minus_bias), yerr=check.auto_error, fmt="none",
+                                  ecolor=COLORS["reconstructed"], capsize=2),
+        ]  # fmt: skip
+        self.theory_band.set_data(check.L_eff, check.theory)
         self.ax_cross.set_xlim(2, result.lmax_L)
         self.ax_cross.set_ylim(-0.5, 2.5)
         units = "phi"
         self.theory_line.set_data(L[shown], phi_plot_units(products["theory"], units)[shown])
         self.n0_line.set_data(L[shown], phi_plot_units(products["n0"], units)[shown])
-        centers, means = products["auto_band"]  # binned [L(L+1)]^2 C_L / 2pi, like the theory line
+        centers, means = check.L_eff, check.auto_minus_bias  # binned [L(L+1)]^2 C_L / 2pi, like the theory
         self.auto_band.set_data(centers, np.where(means > 0, means, np.nan))
         self.auto_band_negative.set_data(centers, np.where(means < 0, -means, np.nan))
         set_log_range(self.ax_auto, 2, result.lmax_L)

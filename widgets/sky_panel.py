@@ -21,7 +21,7 @@ from lensrec.demo_patch import patch_footprint
 
 from .plotting import MAP_CMAP, POSITIVE_CMAP, FigureView, symmetric_limit
 from .section import Section, column, heading, labelled, row
-from .work import Cancelled, LiveUpdate, LongTask, progress_arguments
+from .work import LiveUpdate, LongTask
 
 __all__ = ["SkySection", "FIELDS", "MASKS"]
 
@@ -39,6 +39,16 @@ FIELDS = {
     "deflection": ("|d|", "input deflection |d|", "arcmin", False),
 }
 MAP_FIGURE = (10.4, 3.9)
+# what simulate_sky's progress(done, 6) steps are followed by
+SIMULATION_STEPS = {
+    0: "drawing the Gaussian CMB and φ…",
+    1: "computing the deflection field…",
+    2: "lensing T…",
+    3: "lensing Q and U…",
+    4: "beam and map synthesis…",
+    5: "noise and mask…",
+    6: "simulated",
+}
 MOLLWEIDE_XSIZE = 720
 GNOMONIC_XSIZE = 360
 
@@ -181,13 +191,11 @@ class SkySection(Section):
             mask = self.build_mask(nside)
             pixel_noise = self.build_noise(experiment, nside)
 
-            def stage(fraction, text):  # the library's progress (0…1) mapped onto 5–85% of the bar
-                report(0.05 + 0.8 * fraction, text, check_cancel=False)
+            def step(done, total):  # the library's steps mapped onto 5–85% of the bar; Cancel stops between them
+                report(0.05 + 0.8 * done / total, SIMULATION_STEPS.get(done, f"step {done} of {total}…"))
 
             sky = lensrec.simulate_sky(experiment, spectra, mask=mask, pixel_noise=pixel_noise, nthreads=self.nthreads,
-                                       **progress_arguments(lensrec.simulate_sky, stage, cancel), **settings)  # fmt: skip
-            if cancel.is_set():
-                raise Cancelled()
+                                       progress=step, **settings)  # fmt: skip
             report(0.85, "preparing the map viewer…")
             maps = self._field_maps(sky, report)
             return sky, maps

@@ -12,7 +12,6 @@ from __future__ import annotations
 
 import functools
 import html
-import inspect
 import threading
 import time
 import traceback
@@ -21,7 +20,7 @@ import ipywidgets as widgets
 
 from lensrec import OutputExistsError
 
-__all__ = ["StatusArea", "guarded", "LongTask", "LiveUpdate", "Cancelled", "progress_arguments"]
+__all__ = ["StatusArea", "guarded", "LongTask", "LiveUpdate", "Cancelled"]
 
 # Exceptions whose message already says what was wrong and how to fix it (lensrec validates its inputs).
 USER_ERRORS = (ValueError, TypeError, FileNotFoundError, OutputExistsError, ImportError)
@@ -340,14 +339,3 @@ class LiveUpdate:
                 ):
                     return True
         return False
-
-
-def progress_arguments(function, progress, cancel) -> dict:
-    """``progress``/``cancel`` keyword arguments for a lensrec function that takes them (none otherwise)."""
-    parameters = inspect.signature(function).parameters
-    out = {}
-    if "progress" in parameters:
-        out["progress"] = progress
-    if "cancel" in parameters:
-        out["cancel"] = cancel
-    return out

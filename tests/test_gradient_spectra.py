@@ -161,3 +161,13 @@ def test_cli_weights_option_and_deprecated_alias(tmp_path, capsys):
     assert a["provenance"]["arguments"]["weights"] == "unlensed"
     assert main([*common, "--weights", "bogus", "--out", str(tmp_path / "c.json")]) == 2
     assert "invalid choice: 'bogus'" in capsys.readouterr().err
+
+
+def test_suite_settings_record_weights_only_when_not_lensed():
+    from lensrec.suites import lensing_suite_settings
+
+    common = dict(nside=32, lmax=48, n_sims=4, lmax_margin=32)
+    assert "weights" not in lensing_suite_settings(_experiment(), **common)  # existing fingerprints unchanged
+    assert lensing_suite_settings(_experiment(), weights="gradient", **common)["weights"] == "gradient"
+    with pytest.raises(ValueError, match="weights must be one of"):
+        lensing_suite_settings(_experiment(), weights="lensd", **common)

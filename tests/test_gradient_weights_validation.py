@@ -26,7 +26,11 @@ def _measure(**kwargs):
 def test_gradient_weights_normalization_is_unbiased_at_lmax_3000():
     ratios = _measure(lmax=3000, margin=1000, sims=2, seed=7, nthreads=2)
     gradient = ratios["gradient"].mean(axis=0) - 1.0
-    # bins L = 100–1000 (~10⁶ modes each side of 300): the estimator noise of the cross with the input is
-    # ~0.1–0.2% there with 2 simulations, so 0.5% separates a percent-level bias from none; L = 30–100 holds
-    # too few modes for 0.5% with 2 simulations and is not asserted
-    assert np.all(np.abs(gradient[1:]) < 0.005), gradient
+    lensed = ratios["lensed"].mean(axis=0) - 1.0
+    # bins (30, 100, 300, 600, 1000); measured scatter of one simulation's cross/input: 0.25% at L = 300–1000,
+    # 0.7% at L = 100–300, 1% at L = 30–100 (6 simulations, docs/validation.md), so with 2 simulations only
+    # L = 300–1000 resolve 0.5% (2-simulation error 0.18%, 0.5% is 2.7 sigma)
+    assert np.all(np.abs(gradient[2:]) < 0.005), gradient
+    # the bias the gradient weights remove: lensed weights read 1.1–1.4% low there (from memory: Lewis, Challinor &
+    # Hanson 2011 find a percent-level bias of lensed weights at high l_max); -0.7% keeps the check sensitive
+    assert np.all(lensed[2:] < -0.007), lensed

@@ -6,6 +6,7 @@ All results describe simulations of idealized surveys, not survey-ready measurem
 
 from __future__ import annotations
 
+from . import tracers as _tracers_module
 from ._version import __version__
 from .analytic_n1 import AnalyticN1, analytic_n1
 from .bandpowers import LensingBandpowers, lensing_bandpowers
@@ -33,19 +34,11 @@ from .spectra import Spectra, fiducial_spectra, spectra_from_camb
 from .suite_settings import lensing_suite_settings
 from .suites import LensingSuite, open_lensing_suite, run_lensing_suite
 from .tensor_forecast import TensorFisher, delensing_forecast, power_law_foreground_bb, sigma_r, tensor_fisher
-from .tracers import (
-    Tracer,
-    TracerCombination,
-    TracerSet,
-    combine_tracers,
-    combined_phi,
-    load_tracers,
-    make_tracer,
-    simulate_tracers,
-    tracer_delensing_forecasts,
-    tracer_set,
-)
+from .tracers import *  # noqa: F403 (the tracer model's names, listed once in lensrec.tracers.__all__)
 from .wiener_filters import wiener_filter_phi
+
+# the tracer model's public names, as that module lists them (the shipped-tracer helpers stay in lensrec.tracers)
+_TRACER_NAMES = tuple(name for name in _tracers_module.__all__ if name not in ("available_tracers", "TRACER_NOTE"))
 
 __all__ = [
     "__version__",
@@ -77,16 +70,7 @@ __all__ = [
     "tensor_fisher",
     "TensorFisher",
     "power_law_foreground_bb",
-    "Tracer",
-    "TracerSet",
-    "TracerCombination",
-    "make_tracer",
-    "tracer_set",
-    "load_tracers",
-    "combine_tracers",
-    "simulate_tracers",
-    "combined_phi",
-    "tracer_delensing_forecasts",
+    *_TRACER_NAMES,
     "lensed_cmb_spectra",
     "lensed_gradient_spectra",
     "first_order_lensed_bb",

@@ -49,7 +49,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ._checks import as_finite_array, as_int, check_nside
+from ._checks import as_finite_array, as_int, check_nside, readonly_copy
 from .experiment import ARCMIN, Experiment, load_experiment
 from .harmonics import npix_to_nside
 from .masks import check_mask
@@ -61,12 +61,6 @@ NOISE_LEVELS = ("arithmetic", "inverse_variance")
 
 def _pixel_area_arcmin2(nside: int) -> float:
     return 4.0 * math.pi / (12 * nside * nside) / ARCMIN**2
-
-
-def _readonly(array: np.ndarray) -> np.ndarray:
-    array = np.array(array, dtype=np.float64, copy=True)
-    array.setflags(write=False)
-    return array
 
 
 @dataclass(frozen=True, eq=False)
@@ -116,8 +110,8 @@ class PixelNoise:
                 "pixels (mask = 0) or fix the variance map"
             )
         variance = np.where(observed, raw, 0.0)
-        object.__setattr__(self, "variance", _readonly(variance))
-        object.__setattr__(self, "mask", _readonly(mask))
+        object.__setattr__(self, "variance", readonly_copy(variance, np.float64))
+        object.__setattr__(self, "mask", readonly_copy(mask, np.float64))
 
     # ------------------------------------------------------------------------------------ constructors
     @classmethod
